@@ -1,0 +1,40 @@
+"""``dueroute`` command line: a thin layer over planner, policies and service."""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+from planner.errors import PlannerError
+
+#: Subcommand modules under ``service.commands``, in the order ``--help`` lists them.
+COMMAND_MODULES = ["graph"]
+
+
+def build_parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="dueroute",
+        description="Deadline-bound road routing: best route by the deadline, with a proven bound.",
+    )
+    sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+    for name in COMMAND_MODULES:
+        importlib.import_module(f"service.commands.{name}").register(sub)
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    try:
+        return int(args.func(args) or 0)
+    except PlannerError as exc:
+        print(f"dueroute: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("dueroute: interrupted", file=sys.stderr)
+        return 130
+
+
+if __name__ == "__main__":
+    sys.exit(main())

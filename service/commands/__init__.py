@@ -1,0 +1,1 @@
+"""CLI subcommands. Each module defines ``register(subparsers)``; ``service.cli`` lists them."""
