@@ -387,7 +387,7 @@ def save_graph(graph: RoadGraph, path: str | Path) -> Path:
     if path.suffix != ".npz":
         raise InvalidRequest(f"a compiled graph file must end in .npz, got {path.name!r}")
     path.parent.mkdir(parents=True, exist_ok=True)
-    arrays = {
+    arrays: dict[str, Any] = {
         name: np.ascontiguousarray(getattr(graph, name), dtype=dt)
         for name, dt in REQUIRED_ARRAYS.items()
     }

@@ -176,11 +176,11 @@ def parse_maxspeed(value: Any) -> float | None:
         parts = re.split(r"[;|]", value)
     else:
         return None
-    speeds = []
+    speeds: list[float] = []
     for part in parts:
-        v = parse_maxspeed(part) if not isinstance(part, str) else _parse_one(part)
-        if v is not None:
-            speeds.append(v)
+        parsed = parse_maxspeed(part) if not isinstance(part, str) else _parse_one(part)
+        if parsed is not None:
+            speeds.append(parsed)
     return min(speeds) if speeds else None
 
 
