@@ -1,0 +1,151 @@
+"""``dueroute loadtest``: latency against route quality for a running service on this machine."""
+
+from __future__ import annotations
+
+import argparse
+import asyncio
+import sys
+import time
+from typing import Any
+
+from planner.errors import InvalidRequest
+from service.commands.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
+
+
+def register(sub: Any) -> None:
+    p = sub.add_parser(
+        "loadtest",
+        help="load a running dueroute service on this machine: latency vs route quality",
+        description=(
+            "Send plan requests to a dueroute service on this machine (loopback only) for every "
+            "cell of controllers x concurrency x deadlines, each for --duration seconds, and "
+            "write summary.json, summary.md, requests.csv and plots to --out."
+        ),
+    )
+    p.add_argument("--url", default="http://127.0.0.1:8000", help="service base URL (loopback)")
+    p.add_argument("--graph", default=None, help=GRAPH_HELP + "; needed for --random/--reference")
+    src = p.add_mutually_exclusive_group()
+    src.add_argument("--queries", default=None, help="CSV of 'origin,destination' node indices")
+    src.add_argument(
+        "--random",
+        type=int,
+        default=None,
+        metavar="N",
+        help="N random pairs connected both ways in --graph (default 200 when --graph is given)",
+    )
+    p.add_argument("--concurrency", default="1,2,4,8", help="requests in flight, e.g. 1,2,4,8")
+    p.add_argument("--deadlines", default="5,10,20,50", help="deadline_ms values, e.g. 5,10,20")
+    p.add_argument("--duration", type=float, default=10.0, help="seconds per cell")
+    p.add_argument(
+        "--controller",
+        default="learned",
+        help="comma-separated controllers, e.g. learned,decreasing,fixed:1.5",
+    )
+    p.add_argument(
+        "--reference",
+        action="store_true",
+        help="compute exact costs locally (scipy) for true quality; needs --graph",
+    )
+    p.add_argument("--max-requests", type=int, default=20_000, help="most requests per cell")
+    p.add_argument(
+        "--tolerance-ms",
+        type=float,
+        default=5.0,
+        help="an answer later than deadline + this counts as late (default 5)",
+    )
+    p.add_argument("--ready-timeout", type=float, default=60.0, help="seconds to wait for /readyz")
+    p.add_argument("--warmup", type=int, default=3, help="unrecorded requests per controller")
+    p.add_argument("--seed", type=int, default=0, help="seed of the random queries and order")
+    p.add_argument("--out", required=True, help="directory for the summary and plots")
+    add_json_flag(p)
+    p.set_defaults(func=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    from service import loadtest as lt
+
+    controllers = tuple(dict.fromkeys(k.strip() for k in args.controller.split(",") if k.strip()))
+    if args.warmup < 0:
+        raise InvalidRequest(f"--warmup must be >= 0, got {args.warmup}")
+    if args.ready_timeout <= 0 or args.ready_timeout > 600:
+        raise InvalidRequest(
+            f"--ready-timeout must be in (0, 600] seconds, got {args.ready_timeout}"
+        )
+    config = lt.LoadTestConfig(
+        url=args.url,
+        concurrency=lt.parse_int_list(args.concurrency, "--concurrency"),
+        deadlines_ms=lt.parse_int_list(args.deadlines, "--deadlines"),
+        controllers=controllers,
+        duration_s=args.duration,
+        max_requests=args.max_requests,
+        tolerance_ms=args.tolerance_ms,
+        warmup_requests=args.warmup,
+        ready_timeout_s=args.ready_timeout,
+        seed=args.seed,
+    )
+    graph = load_graph_arg(args.graph) if args.graph is not None else None
+    if args.reference and graph is None:
+        raise InvalidRequest("--reference needs --graph (the graph the service searches)")
+    if args.queries is not None:
+        queries = lt.read_queries_csv(args.queries, graph.n_nodes if graph is not None else None)
+    elif graph is not None:
+        queries = lt.random_reachable_pairs(
+            graph, args.random if args.random is not None else 200, seed=args.seed
+        )
+    else:
+        raise InvalidRequest(
+            "no queries: pass --queries FILE.csv, or --graph GRAPH (with --random N) to draw them"
+        )
+    reference = lt.Reference(graph, queries) if args.reference else None
+
+    result = lt.LoadTestResult(config=config, queries=list(queries))
+    bar = progress(total=config.n_cells, unit="cell", desc="loadtest")
+    last_postfix = [0.0]
+
+    def on_record(rec: lt.RequestRecord) -> None:
+        now = time.monotonic()
+        if now - last_postfix[0] >= 0.5:
+            last_postfix[0] = now
+            cell = result.cells[-1]
+            bar.set_postfix_str(
+                f"{cell.controller} c={cell.concurrency} d={cell.deadline_ms}ms "
+                f"n={len(cell.records)}",
+                refresh=False,
+            )
+
+    def on_cell(cell: lt.CellResult) -> None:
+        bar.update(1)
+
+    code = 0
+    try:
+        asyncio.run(
+            lt.run_loadtest(
+                config,
+                queries,
+                graph=graph,
+                reference=reference,
+                result=result,
+                on_record=on_record,
+                on_cell=on_cell,
+            )
+        )
+    except KeyboardInterrupt:
+        result.interrupted = True
+        code = 130
+        print("dueroute: interrupted; writing the cells measured so far", file=sys.stderr)
+    finally:
+        bar.close()
+    if not result.cells:
+        if code:
+            return code
+        raise InvalidRequest("no cell ran; nothing to write")
+    paths = lt.write_outputs(result, args.out)
+    summary = lt.summarize(result)
+    if args.json:
+        emit({"summary": summary, "files": {k: str(v) for k, v in paths.items()}}, True)
+    else:
+        print(lt.markdown_table(summary))
+        print()
+        for name, path in paths.items():
+            print(f"{name}: {path}")
+    return code
