@@ -1,0 +1,480 @@
+"""Numba kernel of the anytime search: Anytime Weighted A* (Hansen & Zhou 2007) and ANA*.
+
+Private module: arrays and scalars in, status codes out, never raises. ``planner.session``
+validates requests, owns the workspaces and turns status codes into results.
+
+Heuristic contract (shared with ``planner.heuristics``)
+-------------------------------------------------------
+The kernel computes, for a node ``v`` and the destination ``t``::
+
+    h(v) = max(great_circle_m(v, t) * (1 - 1e-9) / max_speed_mps,
+               ALT(v, t) - lm_slack_s,
+               0)
+    ALT(v, t) = max over landmarks l of max(lm_to[v, l] - lm_to[t, l],
+                                            lm_from[t, l] - lm_from[v, l])
+
+``lm_from : float32[n, L]`` holds d(landmark l -> v) and ``lm_to : float32[n, L]`` holds
+d(v -> landmark l) in seconds of free-flow travel time, node-major (row = node, C order).
+``L`` may be 0 (pass arrays of shape ``(n, 0)`` or ``(1, 0)``). ``+inf`` marks "unreachable";
+``inf - inf`` gives NaN, which the max ignores, and ``inf - finite`` correctly proves that ``v``
+cannot reach ``t`` (the node is then pruned). ``lm_slack_s >= 0`` is subtracted once from the
+ALT term so that float32 rounding of the stored distances cannot make the bound inadmissible.
+
+Workspace layout (one per concurrently running search, reused across queries)
+-----------------------------------------------------------------------------
+``nodei : int32[n, 5]`` columns ``N_STAMP, N_POS, N_FPOS, N_PARENT, N_PEDGE`` and
+``nodef : float64[n, 2]`` columns ``N_G, N_H``. A row is valid only where
+``nodei[v, N_STAMP] == istate[I_GEN]``; a new query bumps the generation instead of clearing
+O(n) memory. ``heapf : float64[2, n]`` / ``heapi : int32[2, n]`` are two indexed binary heaps
+over the same node set (the open list): row 0 ordered by the search key (``g + w*h``, or the
+ANA* key), row 1 ordered by ``f = g + h`` so that ``min f`` over open (the lower bound) is
+``heapf[1, 0]``. ``N_POS`` / ``N_FPOS`` give a node's slot in each heap, -1 when not open.
+``istate : int64[I_LEN]`` and ``fstate : float64[F_LEN]`` carry everything else, so a chunk
+call passes 12 arguments.
+
+Invariants kept by :func:`run_chunk`
+------------------------------------
+* Every open node has ``g + h < incumbent`` when it was pushed; entries whose ``f`` reached the
+  incumbent later are discarded, unexpanded, when popped.
+* ``fstate[F_SUM_G]`` / ``fstate[F_SUM_H]`` are the sums of g / h over the open list.
+* The destination is never pushed: reaching it with a better g makes it the incumbent, the
+  current expansion is finished and the call returns ``IMPROVED`` so the caller can extract the
+  route at once (parent pointers of a route never change while the kernel is not running).
+* ``min(incumbent, heapf[1, 0])`` never exceeds the optimal cost (for an admissible h).
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit
+
+# ---- status codes returned by run_chunk ----
+CHUNK_DONE = 0  #: the expansion limit of this call was reached
+IMPROVED = 1  #: a cheaper route to the destination was found (new incumbent)
+PROVEN = 2  #: open list empty or min f >= incumbent: incumbent optimal (or no route if none)
+
+# ---- search modes ----
+MODE_WEIGHTED = 0  #: key g + w*h (Anytime Weighted A*)
+MODE_ANA = 1  #: ANA* key -(G - g)/h; greedy on h (ties on g) before the first route
+
+# ---- istate slots (int64) ----
+I_GEN = 0  #: generation stamp of the current query (>= 1)
+I_ORIGIN = 1
+I_TARGET = 2
+I_SIZE = 3  #: open-list size
+I_MODE = 4  #: MODE_WEIGHTED or MODE_ANA (caller may change it between calls)
+I_CHUNK = 5  #: expansion limit for the next call (input)
+I_EXPANSIONS = 6  #: total expansions of this query
+I_IMPROVEMENTS = 7
+I_KEYED_MODE = 8  #: mode the heap keys were computed with
+I_PUSHES = 9
+I_REOPENED = 10  #: pushes of a node that had been expanded or opened before
+I_PRUNED = 11  #: successors skipped or open entries discarded because g + h >= incumbent
+I_TOUCHED = 12  #: nodes stamped in this query (search footprint)
+I_LEN = 16
+
+# ---- fstate slots (float64) ----
+F_WEIGHT = 0  #: weight w of the key g + w*h (input)
+F_INCUMBENT = 1  #: cost of the best route found, +inf before (caller may lower it)
+F_KEYED_WEIGHT = 2  #: weight / incumbent the heap keys were computed with
+F_KEYED_INCUMBENT = 3
+F_SUM_G = 4  #: sum of g over open
+F_SUM_H = 5  #: sum of h over open
+F_GC_SCALE = 6  #: (1 - 1e-9) / max_speed_mps: metres -> admissible seconds
+F_LM_SLACK = 7  #: lm_slack_s
+F_T_LAT = 8  #: destination latitude / longitude in radians, cos(latitude)
+F_T_LON = 9
+F_T_COS = 10
+F_H_START = 11  #: h(origin)
+F_LEN = 16
+
+# ---- workspace columns ----
+N_STAMP = 0
+N_POS = 1
+N_FPOS = 2
+N_PARENT = 3
+N_PEDGE = 4
+N_ICOLS = 5
+N_G = 0
+N_H = 1
+N_FCOLS = 2
+
+#: Mean earth radius in metres (the value of planner.graph.EARTH_RADIUS_M, osmnx's).
+_EARTH_RADIUS_M = 6_371_009.0
+_INF = np.inf
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _heuristic(v, t, coords, lm_from, lm_to, fstate):
+    """Admissible estimate h(v) in seconds (see the module docstring)."""
+    s1 = math.sin(0.5 * (coords[v, 0] - fstate[F_T_LAT]))
+    s2 = math.sin(0.5 * (coords[v, 1] - fstate[F_T_LON]))
+    a = s1 * s1 + coords[v, 2] * fstate[F_T_COS] * s2 * s2
+    if a > 1.0:
+        a = 1.0
+    h = 2.0 * _EARTH_RADIUS_M * math.asin(math.sqrt(a)) * fstate[F_GC_SCALE]
+    n_lm = lm_from.shape[1]
+    if n_lm > 0:
+        best = -_INF
+        for k in range(n_lm):
+            d1 = np.float64(lm_to[v, k]) - np.float64(lm_to[t, k])
+            d2 = np.float64(lm_from[t, k]) - np.float64(lm_from[v, k])
+            if d1 > best:  # NaN (inf - inf) compares false and is ignored
+                best = d1
+            if d2 > best:
+                best = d2
+        best -= fstate[F_LM_SLACK]
+        if best > h:
+            h = best
+    if h < 0.0:
+        h = 0.0
+    return h
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _key(mode, g, h, w, incumbent):
+    if mode == MODE_WEIGHTED:
+        return g + w * h
+    if incumbent == _INF:
+        return h  # greedy before the first route
+    if h <= 0.0:
+        return -_INF
+    return -(incumbent - g) / h
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _sift_up(heapf, heapi, row, col, nodei, nodef, i):
+    """Move slot i of heap ``row`` up; ties on key go to the smaller g."""
+    key = heapf[row, i]
+    node = heapi[row, i]
+    g = nodef[node, N_G]
+    while i > 0:
+        p = (i - 1) >> 1
+        pk = heapf[row, p]
+        if pk < key:
+            break
+        pn = heapi[row, p]
+        if pk == key and nodef[pn, N_G] <= g:
+            break
+        heapf[row, i] = pk
+        heapi[row, i] = pn
+        nodei[pn, col] = i
+        i = p
+    heapf[row, i] = key
+    heapi[row, i] = node
+    nodei[node, col] = i
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _sift_down(heapf, heapi, row, col, nodei, nodef, i, size):
+    key = heapf[row, i]
+    node = heapi[row, i]
+    g = nodef[node, N_G]
+    while True:
+        c = 2 * i + 1
+        if c >= size:
+            break
+        ck = heapf[row, c]
+        cn = heapi[row, c]
+        r = c + 1
+        if r < size:
+            rk = heapf[row, r]
+            if rk < ck or (rk == ck and nodef[heapi[row, r], N_G] < nodef[cn, N_G]):
+                c = r
+                ck = rk
+                cn = heapi[row, r]
+        if key < ck or (key == ck and g <= nodef[cn, N_G]):
+            break
+        heapf[row, i] = ck
+        heapi[row, i] = cn
+        nodei[cn, col] = i
+        i = c
+    heapf[row, i] = key
+    heapi[row, i] = node
+    nodei[node, col] = i
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _remove_at(heapf, heapi, row, col, nodei, nodef, i, size):
+    """Remove slot i from a heap of ``size`` entries (the caller decrements the size)."""
+    nodei[heapi[row, i], col] = -1
+    last = size - 1
+    if i == last:
+        return
+    heapf[row, i] = heapf[row, last]
+    heapi[row, i] = heapi[row, last]
+    nodei[heapi[row, i], col] = i
+    if i > 0 and heapf[row, i] < heapf[row, (i - 1) >> 1]:
+        _sift_up(heapf, heapi, row, col, nodei, nodef, i)
+    else:
+        _sift_down(heapf, heapi, row, col, nodei, nodef, i, last)
+
+
+@njit(cache=True, nogil=True)
+def start_query(coords, lm_from, lm_to, nodei, nodef, heapf, heapi, istate, fstate):
+    """Open a query: stamp origin and destination, push the origin. O(1) in the graph size.
+
+    The caller has set ``I_GEN`` (a fresh generation), ``I_ORIGIN``, ``I_TARGET``, ``I_MODE``,
+    ``F_WEIGHT``, ``F_GC_SCALE``, ``F_LM_SLACK`` and zeroed the counters.
+    Returns h(origin).
+    """
+    gen = istate[I_GEN]
+    s = istate[I_ORIGIN]
+    t = istate[I_TARGET]
+    fstate[F_T_LAT] = coords[t, 0]
+    fstate[F_T_LON] = coords[t, 1]
+    fstate[F_T_COS] = coords[t, 2]
+    fstate[F_INCUMBENT] = _INF
+    nodei[t, N_STAMP] = gen
+    nodei[t, N_POS] = -1
+    nodei[t, N_FPOS] = -1
+    nodei[t, N_PARENT] = -1
+    nodei[t, N_PEDGE] = -1
+    nodef[t, N_G] = _INF
+    nodef[t, N_H] = 0.0
+    hs = _heuristic(s, t, coords, lm_from, lm_to, fstate)
+    nodei[s, N_STAMP] = gen
+    nodei[s, N_POS] = -1
+    nodei[s, N_FPOS] = -1
+    nodei[s, N_PARENT] = -1
+    nodei[s, N_PEDGE] = -1
+    nodef[s, N_G] = 0.0
+    nodef[s, N_H] = hs
+    fstate[F_H_START] = hs
+    istate[I_SIZE] = 0
+    istate[I_TOUCHED] = 2
+    fstate[F_SUM_G] = 0.0
+    fstate[F_SUM_H] = 0.0
+    mode = istate[I_MODE]
+    w = fstate[F_WEIGHT]
+    istate[I_KEYED_MODE] = mode
+    fstate[F_KEYED_WEIGHT] = w
+    fstate[F_KEYED_INCUMBENT] = _INF
+    if hs < _INF:  # h = inf: the landmarks prove the destination unreachable
+        heapf[0, 0] = _key(mode, 0.0, hs, w, _INF)
+        heapi[0, 0] = s
+        heapf[1, 0] = hs
+        heapi[1, 0] = s
+        nodei[s, N_POS] = 0
+        nodei[s, N_FPOS] = 0
+        istate[I_SIZE] = 1
+        istate[I_PUSHES] = 1
+        fstate[F_SUM_H] = hs
+    return hs
+
+
+@njit(cache=True, nogil=True)
+def run_chunk(
+    indptr, head, cost, coords, lm_from, lm_to, nodei, nodef, heapf, heapi, istate, fstate
+):
+    """Expand at most ``istate[I_CHUNK]`` nodes; return CHUNK_DONE, IMPROVED or PROVEN.
+
+    Parameters
+    ----------
+    indptr : int64[n + 1]; head : int32[m]; cost : float64[m]
+        CSR road graph, ``cost`` = travel_time_s (>= 0).
+    coords : float64[n, 3]
+        latitude (rad), longitude (rad), cos(latitude) per node.
+    lm_from, lm_to : float32[n, L]
+        Landmark distances (see the module docstring); L may be 0.
+    nodei, nodef, heapf, heapi, istate, fstate
+        The workspace (see the module docstring).
+    """
+    gen = istate[I_GEN]
+    t = istate[I_TARGET]
+    mode = istate[I_MODE]
+    w = fstate[F_WEIGHT]
+    inc = fstate[F_INCUMBENT]
+    size = istate[I_SIZE]
+
+    # Re-key the open list when the ordering changed (weight, mode, or G under ANA*): O(open).
+    if (
+        mode != istate[I_KEYED_MODE]
+        or w != fstate[F_KEYED_WEIGHT]
+        or (mode == MODE_ANA and inc != fstate[F_KEYED_INCUMBENT])
+    ):
+        for i in range(size):
+            v = heapi[0, i]
+            heapf[0, i] = _key(mode, nodef[v, N_G], nodef[v, N_H], w, inc)
+        for i in range(size // 2 - 1, -1, -1):
+            _sift_down(heapf, heapi, 0, N_POS, nodei, nodef, i, size)
+        istate[I_KEYED_MODE] = mode
+        fstate[F_KEYED_WEIGHT] = w
+        fstate[F_KEYED_INCUMBENT] = inc
+
+    limit = istate[I_CHUNK]
+    done = 0
+    sum_g = fstate[F_SUM_G]
+    sum_h = fstate[F_SUM_H]
+    pushes = 0
+    reopened = 0
+    pruned = 0
+    touched = 0
+    status = CHUNK_DONE
+    while True:
+        if size == 0 or heapf[1, 0] >= inc:
+            status = PROVEN
+            break
+        if done >= limit:
+            break
+        # pop the node with the smallest search key from both heaps
+        u = heapi[0, 0]
+        _remove_at(heapf, heapi, 1, N_FPOS, nodei, nodef, nodei[u, N_FPOS], size)
+        _remove_at(heapf, heapi, 0, N_POS, nodei, nodef, 0, size)
+        size -= 1
+        gu = nodef[u, N_G]
+        hu = nodef[u, N_H]
+        sum_g -= gu
+        sum_h -= hu
+        if size == 0:  # cancel drift of the running sums
+            sum_g = 0.0
+            sum_h = 0.0
+        if gu + hu >= inc:
+            pruned += 1
+            continue
+        done += 1
+        improved = False
+        for e in range(indptr[u], indptr[u + 1]):
+            v = head[e]
+            nv = gu + cost[e]
+            if nodei[v, N_STAMP] != gen:
+                nodei[v, N_STAMP] = gen
+                nodei[v, N_POS] = -1
+                nodei[v, N_FPOS] = -1
+                nodef[v, N_G] = _INF
+                nodef[v, N_H] = _heuristic(v, t, coords, lm_from, lm_to, fstate)
+                touched += 1
+            old = nodef[v, N_G]
+            if nv >= old:
+                continue
+            if v == t:
+                if nv < inc:
+                    inc = nv
+                    nodef[v, N_G] = nv
+                    nodei[v, N_PARENT] = u
+                    nodei[v, N_PEDGE] = e
+                    improved = True
+                continue
+            hv = nodef[v, N_H]
+            if nv + hv >= inc:
+                pruned += 1
+                continue
+            nodef[v, N_G] = nv
+            nodei[v, N_PARENT] = u
+            nodei[v, N_PEDGE] = e
+            p = nodei[v, N_POS]
+            if p >= 0:  # decrease-key in both heaps
+                sum_g += nv - old
+                heapf[0, p] = _key(mode, nv, hv, w, inc)
+                _sift_up(heapf, heapi, 0, N_POS, nodei, nodef, p)
+                fp = nodei[v, N_FPOS]
+                heapf[1, fp] = nv + hv
+                _sift_up(heapf, heapi, 1, N_FPOS, nodei, nodef, fp)
+            else:
+                if old < _INF:
+                    reopened += 1
+                pushes += 1
+                heapf[0, size] = _key(mode, nv, hv, w, inc)
+                heapi[0, size] = v
+                _sift_up(heapf, heapi, 0, N_POS, nodei, nodef, size)
+                heapf[1, size] = nv + hv
+                heapi[1, size] = v
+                _sift_up(heapf, heapi, 1, N_FPOS, nodei, nodef, size)
+                size += 1
+                sum_g += nv
+                sum_h += hv
+        if improved:
+            istate[I_IMPROVEMENTS] += 1
+            status = IMPROVED
+            break
+
+    istate[I_SIZE] = size
+    istate[I_EXPANSIONS] += done
+    istate[I_PUSHES] += pushes
+    istate[I_REOPENED] += reopened
+    istate[I_PRUNED] += pruned
+    istate[I_TOUCHED] += touched
+    fstate[F_SUM_G] = sum_g
+    fstate[F_SUM_H] = sum_h
+    fstate[F_INCUMBENT] = inc
+    return status
+
+
+@njit(cache=True, nogil=True)
+def extract_route(nodei, origin, target, max_len):
+    """Walk parent pointers from ``target`` back to ``origin``.
+
+    Returns ``(nodes int64[k + 1], edges int64[k])`` in travel order, or empty arrays when the
+    walk does not reach the origin within ``max_len`` edges (cannot happen for a valid search).
+    """
+    k = 0
+    v = target
+    while v != origin and k < max_len:
+        v = nodei[v, N_PARENT]
+        if v < 0:
+            return np.empty(0, np.int64), np.empty(0, np.int64)
+        k += 1
+    if v != origin:
+        return np.empty(0, np.int64), np.empty(0, np.int64)
+    nodes = np.empty(k + 1, np.int64)
+    edges = np.empty(k, np.int64)
+    v = target
+    for i in range(k, 0, -1):
+        nodes[i] = v
+        edges[i - 1] = nodei[v, N_PEDGE]
+        v = nodei[v, N_PARENT]
+    nodes[0] = origin
+    return nodes, edges
+
+
+def new_workspace(n_nodes: int) -> tuple[np.ndarray, ...]:
+    """Allocate ``(nodei, nodef, heapf, heapi, istate, fstate)`` for a graph of ``n_nodes``.
+
+    Stamps start at 0 and generations at 1, so no row is valid until a query stamps it.
+    """
+    n = max(int(n_nodes), 1)
+    nodei = np.zeros((n, N_ICOLS), dtype=np.int32)
+    nodef = np.zeros((n, N_FCOLS), dtype=np.float64)
+    heapf = np.zeros((2, n), dtype=np.float64)
+    heapi = np.zeros((2, n), dtype=np.int32)
+    istate = np.zeros(I_LEN, dtype=np.int64)
+    fstate = np.zeros(F_LEN, dtype=np.float64)
+    return nodei, nodef, heapf, heapi, istate, fstate
+
+
+def node_coords(lat_deg: np.ndarray, lon_deg: np.ndarray) -> np.ndarray:
+    """float64[n, 3]: latitude and longitude in radians and cos(latitude), node-major."""
+    lat = np.radians(np.asarray(lat_deg, dtype=np.float64))
+    lon = np.radians(np.asarray(lon_deg, dtype=np.float64))
+    return np.ascontiguousarray(np.column_stack((lat, lon, np.cos(lat))))
+
+
+@njit(cache=True, nogil=True)
+def dag_reachable(dindptr, dhead, src, dst):
+    """Whether component ``dst`` is reachable from ``src`` in the condensation DAG (CSR).
+
+    Breadth-first over components only: O(components reached), never O(graph nodes).
+    """
+    if src == dst:
+        return True
+    n = dindptr.shape[0] - 1
+    seen = np.zeros(n, np.bool_)
+    queue = np.empty(n, np.int64)
+    queue[0] = src
+    seen[src] = True
+    lo = 0
+    hi = 1
+    while lo < hi:
+        c = queue[lo]
+        lo += 1
+        for e in range(dindptr[c], dindptr[c + 1]):
+            d = dhead[e]
+            if d == dst:
+                return True
+            if not seen[d]:
+                seen[d] = True
+                queue[hi] = d
+                hi += 1
+    return False
