@@ -1,0 +1,646 @@
+"""Lower bounds on travel time: the great-circle bound and ALT landmarks.
+
+Kernel contract (agreed with ``planner/_kernel.py``, checked against it)
+-----------------------------------------------------------------------
+The kernel receives, from a :class:`Landmarks`, the arrays ``lm_from`` and ``lm_to``
+(``float32[n, L]``, node-major and C-contiguous: row ``v`` holds ``L`` values, ``L`` may be 0) and
+the scalar ``slack_s``, and computes for a node ``v`` and destination ``t``, in float64::
+
+    h(v) = max(great_circle_m(v, t) * (1 - 1e-9) / max_speed_mps,
+               max_i max(lm_from[t, i] - lm_from[v, i], lm_to[v, i] - lm_to[t, i]) - slack_s,
+               0)
+
+with ``lm_from[v, i] = d(landmark_i -> v)`` and ``lm_to[v, i] = d(v -> landmark_i)`` in seconds on
+free-flow costs. ``(1 - 1e-9)`` absorbs the last-bit differences between two haversine
+evaluations of a straight edge driven at top speed.
+
+Missing distances are stored as ``+inf``; the arrays never hold NaN or negative values. The
+kernel must skip a NaN difference (``inf - inf``): it compares ``d > best``, which is false for
+NaN, and starts from ``best = -inf``. Every case of an ALT difference is then a valid bound
+(shown for ``lm_from``, ``D = d(landmark -> .)``; ``lm_to`` is the mirror image):
+
+===========  ===========  ===========  ===================================================
+``D(t)``     ``D(v)``     term         why it is admissible
+===========  ===========  ===========  ===================================================
+finite       finite       D(t) - D(v)  triangle inequality D(t) <= D(v) + d(v, t)
+finite       inf          -inf         trivially
+inf          finite       +inf         the landmark reaches v but not t, so v cannot reach
+                                       t: d(v, t) = inf, and the kernel prunes v
+inf          inf          NaN, skipped the landmark says nothing about this pair
+===========  ===========  ===========  ===================================================
+
+``h = +inf`` is exact (no path), so the session can report ``no_route`` when even the origin
+gets it. Consistency ``h(v) <= c(v, w) + h(w)`` holds wherever ``h(v)`` is finite:
+``D(w) <= D(v) + c(v, w)``, and a node the landmark reaches has successors it reaches.
+
+Float32 rounding and the slack (the math)
+-----------------------------------------
+Finite distances ``A, B`` in ``[0, Dmax]`` are computed in float64 and stored rounded to nearest in
+float32, ``a = A (1 + e1)``, ``b = B (1 + e2)``, ``|e| <= u = 2**-24``. Then
+``|(a - b) - (A - B)| <= u (A + B) <= 2 u Dmax``. Subtracting in float32 adds at most
+``u |a - b| <= u (1 + u) Dmax``; subtracting ``slack_s`` in float32 adds at most
+``u (Dmax + slack)``. Total rounding error ``E <= (4 u + 2 u^2) Dmax`` for any precision the
+kernel uses. We store ``slack_s = 8 u Dmax`` (rounded up to a float32), so
+``stored term - slack_s <= A - B - (8u - 4u - 2u^2) Dmax < A - B``: admissible, with a margin
+of about ``4 u Dmax`` that also covers float64 summation error in the path costs (relative
+``k * 2**-53`` for a ``k``-edge path, far below ``4 u`` for any road graph).
+
+Consistency survives up to the rounding: for an edge ``v -> w``,
+``h(v) <= c(v, w) + h(w) + 2 E`` (and ``2 E <= slack_s``), i.e. the stored heuristic is
+consistent within :attr:`Landmarks.consistency_tolerance_s`, a few milliseconds on a region
+whose longest trip takes hours. Subtracting a constant keeps the exact ALT potentials
+consistent, and a max of consistent heuristics is consistent; only this rounding term is
+left (so "consistent" holds up to ``slack_s``, not exactly), and the kernel's reopening of
+closed nodes keeps the search exact regardless.
+
+Costs that only go up
+---------------------
+Landmark distances are computed on free-flow costs (``graph.travel_time_s``). If a caller later
+raises some edge costs (congestion, closures as large costs), every true distance ``d'(v, t)``
+is >= the free-flow ``d(v, t)`` >= ``h(v)``, so the bound stays admissible, and
+``h(v) <= c(v, w) + h(w) <= c'(v, w) + h(w)`` keeps it consistent. Lowered costs would break
+both: rebuild the landmarks for such a graph. A graph compiled with other costs has another
+fingerprint, so its stale landmark file is refused (``load_landmarks``) or rebuilt
+(``load_or_build_landmarks``); ``Landmarks.check_graph(graph)`` makes the same test.
+
+Landmark file
+-------------
+``<graph>.landmarks.npz`` beside the compiled graph (``demo.npz`` -> ``demo.landmarks.npz``),
+an uncompressed ``.npz`` so :func:`load_landmarks` maps the arrays from the file:
+
+==========  ===============  ===========================================================
+name        dtype, shape     meaning
+==========  ===============  ===========================================================
+``nodes``   int32[L]         landmark node indices (all in the largest strong component)
+``lm_from`` float32[n, L]    d(landmark_i -> v), ``+inf`` when there is no path
+``lm_to``   float32[n, L]    d(v -> landmark_i), ``+inf`` when there is no path
+``meta``    str (0-d)        JSON: kind, format version, graph fingerprint, method, seed,
+                             count, slack_s, max_distance_s, build_s
+==========  ===============  ===========================================================
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import sys
+import time
+import zipfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numba import njit
+from scipy.sparse.csgraph import dijkstra
+
+from planner.errors import CorruptGraphFile, GraphFileNotFound, InvalidRequest
+from planner.graph import RoadGraph, _npz_member_offsets, great_circle_m
+
+LANDMARK_FORMAT_VERSION = 1
+
+#: Landmark selection methods: Goldberg & Harrelson 2005 (farthest), Goldberg & Werneck 2005 (avoid).
+METHODS = ("avoid", "farthest")
+
+DEFAULT_COUNT = 16
+
+#: Upper limit on the landmark count (memory is 8 bytes x nodes x count).
+MAX_COUNT = 64
+
+#: Unit roundoff of float32 (round to nearest).
+_U32 = 2.0**-24
+
+#: Slack as a multiple of the largest stored distance (see the module docstring).
+SLACK_FACTOR = 8.0 * _U32
+
+#: Multiplies the great-circle bound (the kernel uses the same factor), see great_circle_bound_s.
+GREAT_CIRCLE_SAFETY = 1.0 - 1e-9
+
+
+def great_circle_bound_s(graph: RoadGraph, v: Any, t: int) -> Any:
+    """Great-circle lower bound on travel time from ``v`` to ``t`` in seconds.
+
+    Admissible by construction: every edge's length is at least the great-circle distance
+    between its ends, and no edge is faster than ``graph.max_speed_mps``. The factor
+    :data:`GREAT_CIRCLE_SAFETY` (as in the kernel) absorbs floating-point differences between
+    this haversine and the one that measured the edge.
+
+    Parameters
+    ----------
+    graph : RoadGraph
+    v : int or int[k]
+        Node index or indices.
+    t : int
+        Destination node index.
+
+    Returns
+    -------
+    float or float64[k]
+    """
+    dist_m = great_circle_m(graph.lat[v], graph.lon[v], graph.lat[t], graph.lon[t])
+    return dist_m * GREAT_CIRCLE_SAFETY / graph.max_speed_mps
+
+
+def slack_for(max_distance_s: float) -> float:
+    """Slack in seconds that keeps float32-stored ALT bounds admissible (module docstring).
+
+    The value is rounded up to the next float32, so a kernel holding it in float32 loses
+    nothing.
+    """
+    slack = SLACK_FACTOR * float(max_distance_s)
+    as32 = np.float32(slack)
+    if float(as32) < slack:
+        as32 = np.nextafter(as32, np.float32(np.inf))
+    return float(as32)
+
+
+@dataclass(frozen=True, eq=False)
+class Landmarks:
+    """ALT landmark distances for one graph (see the module docstring for the kernel contract).
+
+    Attributes
+    ----------
+    nodes : int32[L]
+        Landmark node indices, distinct, all in the graph's largest strong component.
+    lm_from : float32[n, L]
+        ``d(nodes[i] -> v)`` in seconds, row ``v``; ``+inf`` where no path exists.
+    lm_to : float32[n, L]
+        ``d(v -> nodes[i])`` in seconds, row ``v``; ``+inf`` where no path exists.
+    slack_s : float
+        Subtracted from the landmark bound so float32 rounding never makes it inadmissible.
+    max_distance_s : float
+        Largest finite distance stored (``slack_s = slack_for(max_distance_s)``).
+    method : str
+        ``"avoid"`` or ``"farthest"``.
+    graph_fingerprint : str
+        :attr:`RoadGraph.fingerprint` of the graph the distances belong to.
+    """
+
+    nodes: np.ndarray
+    lm_from: np.ndarray
+    lm_to: np.ndarray
+    slack_s: float
+    max_distance_s: float
+    method: str
+    graph_fingerprint: str
+    meta: dict[str, Any] = field(default_factory=dict)
+    path: Path | None = None
+
+    @property
+    def count(self) -> int:
+        return int(self.nodes.shape[0])
+
+    @property
+    def n_nodes(self) -> int:
+        return int(self.lm_from.shape[0])
+
+    @property
+    def consistency_tolerance_s(self) -> float:
+        """``h(v) <= c(v, w) + h(w) + tolerance`` for every edge (float32 rounding only)."""
+        return self.slack_s
+
+    def check_graph(self, graph: RoadGraph) -> None:
+        """Raise :class:`InvalidRequest` unless these landmarks were built for ``graph``."""
+        if self.graph_fingerprint != graph.fingerprint or self.n_nodes != graph.n_nodes:
+            where = f" in {self.path}" if self.path is not None else ""
+            raise InvalidRequest(
+                f"the landmarks{where} belong to another graph (fingerprint "
+                f"{self.graph_fingerprint[:12]}..., {self.n_nodes} nodes), not to "
+                f"{graph.name} (fingerprint {graph.fingerprint[:12]}..., {graph.n_nodes} nodes); "
+                "rebuild them for this graph"
+            )
+
+
+def alt_bound_s(landmarks: Landmarks, v: Any, t: int) -> Any:
+    """The kernel's landmark term ``max(ALT - slack_s, 0)`` in float64 (numpy reference).
+
+    ``+inf`` means the landmarks prove there is no path from ``v`` to ``t``.
+
+    Parameters
+    ----------
+    v : int or int[k]
+    t : int
+
+    Returns
+    -------
+    float or float64[k]
+    """
+    v_arr = np.atleast_1d(np.asarray(v, dtype=np.int64))
+    if landmarks.count == 0:
+        out = np.zeros(v_arr.shape[0])
+    else:
+        f_t = landmarks.lm_from[t].astype(np.float64)
+        to_t = landmarks.lm_to[t].astype(np.float64)
+        with np.errstate(invalid="ignore"):  # inf - inf: no information, skipped like the kernel
+            fwd = f_t[None, :] - landmarks.lm_from[v_arr].astype(np.float64)
+            bwd = landmarks.lm_to[v_arr].astype(np.float64) - to_t[None, :]
+        both = np.fmax(fwd, bwd)  # fmax ignores a NaN operand
+        both[np.isnan(both)] = -np.inf
+        out = np.maximum(np.max(both, axis=1) - landmarks.slack_s, 0.0)
+    return float(out[0]) if np.ndim(v) == 0 else out
+
+
+def heuristic_s(graph: RoadGraph, landmarks: Landmarks | None, v: Any, t: int) -> Any:
+    """``max(great-circle bound, landmark bound, 0)``: what the kernel uses as ``h``."""
+    gc = great_circle_bound_s(graph, v, t)
+    if landmarks is None:
+        return gc
+    return np.maximum(gc, alt_bound_s(landmarks, v, t))
+
+
+# --------------------------------------------------------------------------------------------
+# Building
+
+
+def landmarks_path(graph_path: str | Path) -> Path:
+    """``<graph>.landmarks.npz`` beside a compiled graph file."""
+    p = Path(graph_path)
+    return p.with_name(p.stem + ".landmarks.npz")
+
+
+def largest_component_nodes(graph: RoadGraph) -> np.ndarray:
+    """int64[k]: nodes of the largest strongly connected component (ties: lowest label)."""
+    if graph.n_nodes == 0:
+        return np.zeros(0, dtype=np.int64)
+    comp = np.asarray(graph.component)
+    label = int(np.argmax(np.bincount(comp)))
+    return np.flatnonzero(comp == label)
+
+
+def build_landmarks(
+    graph: RoadGraph,
+    count: int = DEFAULT_COUNT,
+    method: str = "avoid",
+    seed: int = 0,
+    progress: bool = True,
+) -> Landmarks:
+    """Choose ``count`` landmarks and compute their distances in both directions.
+
+    Distances come from ``scipy.sparse.csgraph.dijkstra`` on the free-flow costs
+    (``graph.csr()``); ``d(v -> landmark)`` uses the transposed matrix. Landmarks are chosen
+    inside the largest strongly connected component, so each reaches, and is reached from, a
+    large part of the map.
+
+    Parameters
+    ----------
+    graph : RoadGraph
+    count : int
+        Number of landmarks, 0..MAX_COUNT; fewer when the largest component is smaller.
+    method : {"avoid", "farthest"}
+        ``farthest`` (Goldberg & Harrelson 2005): each new landmark is the node farthest
+        (round trip) from those chosen so far. ``avoid`` (Goldberg & Werneck 2005): grow a
+        shortest-path tree from a random root, weigh each node by how badly the current
+        landmarks bound its distance, and descend into the heaviest landmark-free subtree.
+    seed : int
+        Seeds the random start (farthest) and roots (avoid).
+    progress : bool
+        Show a tqdm bar on stderr, one step per landmark.
+    """
+    if isinstance(count, bool) or not isinstance(count, (int, np.integer)):
+        raise InvalidRequest(f"landmark count must be an integer, got {count!r}")
+    if not 0 <= int(count) <= MAX_COUNT:
+        raise InvalidRequest(f"landmark count must be in 0..{MAX_COUNT}, got {count}")
+    if method not in METHODS:
+        raise InvalidRequest(f"landmark method must be one of {', '.join(METHODS)}, got {method!r}")
+    started = time.perf_counter()
+    n = graph.n_nodes
+    scc = largest_component_nodes(graph)
+    count = min(int(count), int(scc.shape[0]))
+    rng = np.random.default_rng(seed)
+    forward = graph.csr()
+    backward = forward.T.tocsr()
+    scc_forward = forward[scc][:, scc] if method == "avoid" and count else None
+
+    nodes: list[int] = []
+    dist_from = np.empty((count, n))  # row i: d(landmark_i -> v), float64, inf = no path
+    dist_to = np.empty((count, n))  # row i: d(v -> landmark_i)
+    # round-trip distance from the nearest chosen landmark, per SCC node (farthest selection)
+    nearest_round_trip = np.full(scc.shape[0], np.inf)
+
+    from tqdm import tqdm
+
+    bar = tqdm(
+        total=count,
+        desc=f"landmarks ({method})",
+        unit="lm",
+        file=sys.stderr,
+        disable=not progress,
+        dynamic_ncols=True,
+    )
+    try:
+        if method == "farthest" and count:
+            start = int(scc[rng.integers(scc.shape[0])])
+            round_trip = (
+                dijkstra(forward, indices=start)[scc] + dijkstra(backward, indices=start)[scc]
+            )
+            candidate = int(scc[int(np.argmax(round_trip))])
+        for i in range(count):
+            if method == "farthest":
+                if i > 0:
+                    score = nearest_round_trip.copy()
+                    score[np.isin(scc, nodes)] = -np.inf
+                    candidate = int(scc[int(np.argmax(score))])
+            else:
+                assert scc_forward is not None
+                candidate = _avoid_pick(scc, scc_forward, dist_from[:i], dist_to[:i], nodes, rng)
+            nodes.append(candidate)
+            dist_from[i] = dijkstra(forward, indices=candidate)
+            dist_to[i] = dijkstra(backward, indices=candidate)
+            nearest_round_trip = np.minimum(nearest_round_trip, dist_from[i][scc] + dist_to[i][scc])
+            bar.update(1)
+    finally:
+        bar.close()
+
+    max_distance_s = max(_finite_max(dist_from), _finite_max(dist_to))
+    lm_from = _store(dist_from)
+    lm_to = _store(dist_to)
+    build_s = time.perf_counter() - started
+    return Landmarks(
+        nodes=np.asarray(nodes, dtype=np.int32),
+        lm_from=lm_from,
+        lm_to=lm_to,
+        slack_s=slack_for(max_distance_s),
+        max_distance_s=max_distance_s,
+        method=method,
+        graph_fingerprint=graph.fingerprint,
+        meta={"seed": int(seed), "requested_count": int(count), "build_s": build_s},
+    )
+
+
+def _finite_max(dist: np.ndarray) -> float:
+    if dist.size == 0:
+        return 0.0
+    return float(np.max(np.where(np.isfinite(dist), dist, 0.0)))
+
+
+def _store(dist: np.ndarray) -> np.ndarray:
+    """float64[L, n] -> float32[n, L], node-major, rounded to nearest (inf stays inf).
+
+    No finite distance can overflow to inf: float32 reaches 3.4e38 s.
+    """
+    return np.ascontiguousarray(dist.T.astype(np.float32))
+
+
+def _avoid_pick(
+    scc: np.ndarray,
+    scc_forward: Any,
+    dist_from: np.ndarray,
+    dist_to: np.ndarray,
+    chosen: list[int],
+    rng: np.random.Generator,
+) -> int:
+    """One step of avoid selection (Goldberg & Werneck 2005), inside the largest component.
+
+    Root ``r`` is a random non-landmark node. In the shortest-path tree from ``r`` every node
+    weighs ``d(r, v) - lb(r, v)`` (how much the current landmarks underestimate); a subtree
+    that holds a landmark weighs 0. From ``r`` we walk to the heaviest child until a leaf,
+    which becomes the new landmark. Falls back to the node farthest from ``r`` when every
+    subtree is covered.
+    """
+    k = scc.shape[0]
+    local_chosen = np.searchsorted(scc, np.asarray(chosen, dtype=np.int64))
+    is_landmark = np.zeros(k, dtype=np.bool_)
+    is_landmark[local_chosen] = True
+    free = np.flatnonzero(~is_landmark)
+    root = int(free[rng.integers(free.shape[0])])
+    dist, pred = dijkstra(scc_forward, indices=root, return_predecessors=True)
+    if dist_from.shape[0]:
+        d_from = dist_from[:, scc]  # [i, local v]
+        d_to = dist_to[:, scc]
+        lower = np.maximum(
+            d_from - d_from[:, root : root + 1], d_to[:, root : root + 1] - d_to
+        ).max(axis=0)
+        lower = np.maximum(lower, 0.0)
+    else:
+        lower = np.zeros(k)
+    weight = np.where(np.isfinite(dist), np.maximum(dist - lower, 0.0), 0.0)
+    parent = np.where(pred < 0, -1, pred).astype(np.int64)
+    order = np.argsort(parent, kind="stable")
+    child_ptr = np.zeros(k + 1, dtype=np.int64)
+    np.cumsum(np.bincount(parent[parent >= 0], minlength=k), out=child_ptr[1:])
+    children = order[np.count_nonzero(parent < 0) :]
+    leaf = _avoid_descend(root, parent, child_ptr, children, weight, is_landmark)
+    if leaf < 0 or is_landmark[leaf]:
+        score = np.where(is_landmark | ~np.isfinite(dist), -np.inf, dist)
+        leaf = int(np.argmax(score))
+    return int(scc[leaf])
+
+
+@njit(cache=True, nogil=True)
+def _avoid_descend(
+    root: int,
+    parent: np.ndarray,
+    child_ptr: np.ndarray,
+    children: np.ndarray,
+    weight: np.ndarray,
+    is_landmark: np.ndarray,
+) -> int:
+    """Subtree weights (zero where a landmark is inside), then the heaviest descent from root.
+
+    ``children[child_ptr[p]:child_ptr[p + 1]]`` are the tree children of ``p``. Returns the
+    leaf reached, or -1 when no child of the root has a positive landmark-free weight.
+    """
+    k = parent.shape[0]
+    # breadth-first order from the root: every parent precedes its children
+    bfs = np.empty(k, dtype=np.int64)
+    bfs[0] = root
+    head = 0
+    tail = 1
+    while head < tail:
+        p = bfs[head]
+        head += 1
+        for j in range(child_ptr[p], child_ptr[p + 1]):
+            bfs[tail] = children[j]
+            tail += 1
+    size = np.zeros(k)
+    covered = np.zeros(k, dtype=np.bool_)
+    for j in range(tail - 1, -1, -1):  # children before parents
+        v = bfs[j]
+        size[v] += weight[v]
+        covered[v] = covered[v] or is_landmark[v]
+        p = parent[v]
+        if p >= 0 and v != root:
+            size[p] += size[v]
+            covered[p] = covered[p] or covered[v]
+    for j in range(tail):
+        if covered[bfs[j]]:
+            size[bfs[j]] = 0.0
+    v = root
+    while True:
+        best = -1
+        best_size = 0.0
+        for j in range(child_ptr[v], child_ptr[v + 1]):
+            c = children[j]
+            if size[c] > best_size or (best < 0 and v != root and not covered[c]):
+                best = c
+                best_size = size[c]
+        if best < 0:
+            return v if v != root else -1
+        v = best
+
+
+# --------------------------------------------------------------------------------------------
+# Saving and loading
+
+
+def save_landmarks(landmarks: Landmarks, path: str | Path) -> Path:
+    """Write ``landmarks`` as one uncompressed ``.npz`` (temp file, then rename)."""
+    path = Path(path)
+    if path.suffix != ".npz":
+        raise InvalidRequest(f"a landmark file must end in .npz, got {path.name!r}")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    meta = dict(landmarks.meta)
+    meta.update(
+        format_version=LANDMARK_FORMAT_VERSION,
+        kind="dueroute-landmarks",
+        graph_fingerprint=landmarks.graph_fingerprint,
+        method=landmarks.method,
+        count=landmarks.count,
+        nodes=landmarks.n_nodes,
+        slack_s=landmarks.slack_s,
+        max_distance_s=landmarks.max_distance_s,
+    )
+    tmp = path.with_name(path.name + ".tmp")
+    with open(tmp, "wb") as fh:
+        np.savez(
+            fh,
+            meta=np.array(json.dumps(meta, sort_keys=True)),
+            nodes=np.ascontiguousarray(landmarks.nodes, dtype=np.int32),
+            lm_from=np.ascontiguousarray(landmarks.lm_from, dtype=np.float32),
+            lm_to=np.ascontiguousarray(landmarks.lm_to, dtype=np.float32),
+        )
+    tmp.replace(path)
+    return path
+
+
+_LANDMARK_ARRAYS = {"nodes": np.int32, "lm_from": np.float32, "lm_to": np.float32}
+
+
+def load_landmarks(
+    path: str | Path, graph: RoadGraph | None = None, *, mmap: bool = True
+) -> Landmarks:
+    """Load a landmark file; with ``mmap`` the distance arrays are read-only views of the file.
+
+    Raises :class:`GraphFileNotFound`, :class:`CorruptGraphFile` (unreadable, missing or
+    mis-shaped arrays, non-finite values) or :class:`InvalidRequest` (built for another graph,
+    when ``graph`` is given).
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise GraphFileNotFound(f"landmark file not found: {path}")
+    try:
+        members = _npz_member_offsets(path)
+        with np.load(path, allow_pickle=False) as npz:
+            if "meta" not in npz.files:
+                raise CorruptGraphFile(f"{path}: not a dueroute landmark file (no meta)")
+            meta = json.loads(str(npz["meta"][()]))
+            if not isinstance(meta, dict) or meta.get("kind") != "dueroute-landmarks":
+                raise CorruptGraphFile(f"{path}: not a dueroute landmark file")
+            missing = sorted(set(_LANDMARK_ARRAYS) - set(npz.files))
+            if missing:
+                raise CorruptGraphFile(f"{path}: landmark file is missing arrays {missing}")
+            arrays: dict[str, np.ndarray] = {}
+            for name, dtype in _LANDMARK_ARRAYS.items():
+                offset, dt, shape, fortran = members[name]
+                if dt != np.dtype(dtype):
+                    raise CorruptGraphFile(
+                        f"{path}: array {name} has dtype {dt}, expected {np.dtype(dtype)}"
+                    )
+                if fortran and len(shape) > 1:
+                    raise CorruptGraphFile(f"{path}: array {name} is not node-major (C order)")
+                count = int(np.prod(shape)) if shape else 1
+                if mmap and count:
+                    arrays[name] = np.memmap(path, dtype=dt, mode="r", offset=offset, shape=shape)
+                else:
+                    arrays[name] = np.ascontiguousarray(npz[name])
+            fields = {
+                "slack_s": float(meta["slack_s"]),
+                "max_distance_s": float(meta["max_distance_s"]),
+                "method": str(meta["method"]),
+                "graph_fingerprint": str(meta["graph_fingerprint"]),
+            }
+    except (CorruptGraphFile, GraphFileNotFound):
+        raise
+    except (
+        zipfile.BadZipFile,
+        ValueError,
+        TypeError,
+        OSError,
+        KeyError,
+        EOFError,
+        json.JSONDecodeError,
+    ) as exc:
+        raise CorruptGraphFile(f"{path}: not a readable landmark file ({exc})") from exc
+    landmarks = Landmarks(**arrays, **fields, meta=meta, path=path)
+    _validate(landmarks, path)
+    if graph is not None:
+        landmarks.check_graph(graph)
+    return landmarks
+
+
+def _validate(lm: Landmarks, path: Path) -> None:
+    """Structural checks, plus the slack the admissibility proof relies on."""
+    problems = []
+    n, k = lm.lm_from.shape[0] if lm.lm_from.ndim == 2 else -1, lm.nodes.shape[0]
+    if lm.nodes.ndim != 1:
+        problems.append("nodes is not one-dimensional")
+    if lm.lm_from.shape != (n, k) or lm.lm_to.shape != (n, k):
+        problems.append(
+            f"lm_from {lm.lm_from.shape} and lm_to {lm.lm_to.shape} must both be "
+            f"(nodes, {k} landmarks)"
+        )
+    elif k and (int(lm.nodes.min()) < 0 or int(lm.nodes.max()) >= n):
+        problems.append("nodes holds indices outside the graph")
+    if lm.method not in METHODS:
+        problems.append(f"unknown method {lm.method!r}")
+    if not (math.isfinite(lm.max_distance_s) and lm.max_distance_s >= 0):
+        problems.append("max_distance_s is not a finite non-negative number")
+    elif not lm.slack_s >= slack_for(lm.max_distance_s):
+        problems.append("slack_s is too small for the stored distances")
+    if not problems and k and n:
+        for name in ("lm_from", "lm_to"):
+            arr = getattr(lm, name)
+            # NaN fails both comparisons; +inf (no path) is allowed, -inf is not
+            if not bool(np.all(arr >= 0)):
+                problems.append(f"{name} holds negative or NaN distances")
+            elif _finite_max(arr) > lm.max_distance_s * (1 + 2 * _U32):
+                problems.append(f"{name} holds distances above the recorded maximum")
+    if problems:
+        raise CorruptGraphFile(f"{path}: " + "; ".join(problems))
+
+
+def load_or_build_landmarks(
+    graph: RoadGraph,
+    count: int = DEFAULT_COUNT,
+    method: str = "avoid",
+    seed: int = 0,
+    progress: bool = True,
+    *,
+    path: str | Path | None = None,
+    rebuild: bool = False,
+) -> Landmarks:
+    """Landmarks stored beside the graph, built (and saved) when missing or stale.
+
+    The file is ``path`` or ``<graph>.landmarks.npz``. A file built for another version of the
+    graph (fingerprint differs) or with another count or method is rebuilt and replaced; a
+    corrupt file raises :class:`CorruptGraphFile` (delete it, or pass ``rebuild=True``). A graph
+    that was never saved (``graph.path is None``) and no ``path`` gives landmarks in memory.
+    """
+    target = Path(path) if path is not None else None
+    if target is None and graph.path is not None:
+        target = landmarks_path(graph.path)
+    if target is not None and target.is_file() and not rebuild:
+        found = load_landmarks(target)
+        wanted = min(int(count), int(largest_component_nodes(graph).shape[0]))
+        if (
+            found.graph_fingerprint == graph.fingerprint
+            and found.n_nodes == graph.n_nodes
+            and found.count == wanted
+            and found.method == method
+        ):
+            return found
+    built = build_landmarks(graph, count=count, method=method, seed=seed, progress=progress)
+    if target is None:
+        return built
+    save_landmarks(built, target)
+    return load_landmarks(target, graph)

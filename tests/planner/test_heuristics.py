@@ -1,0 +1,356 @@
+"""Great-circle and ALT landmark bounds checked against exact distances from scipy csgraph."""
+
+from __future__ import annotations
+
+import dataclasses
+import importlib
+import zipfile
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.sparse.csgraph import dijkstra
+
+from planner.errors import CorruptGraphFile, GraphFileNotFound, InvalidRequest
+from planner.graph import build_graph, great_circle_m, save_graph
+from planner.heuristics import (
+    METHODS,
+    Landmarks,
+    alt_bound_s,
+    build_landmarks,
+    great_circle_bound_s,
+    heuristic_s,
+    landmarks_path,
+    largest_component_nodes,
+    load_landmarks,
+    load_or_build_landmarks,
+    save_landmarks,
+)
+
+OSM_DIR = Path(__file__).resolve().parents[3] / "shared" / "data" / "osm"
+
+
+def random_graph(
+    seed: int, n: int = 120, m: int = 420, *, zero_cost: bool = False, stretch: float = 2.0
+):
+    """Random directed road-like graph: several strong components, some unreachable pairs.
+
+    Edge lengths are >= the great-circle distance between the ends (as on real roads), so the
+    great-circle bound must hold.
+    """
+    rng = np.random.default_rng(seed)
+    lat = rng.uniform(48.0, 48.05, n)
+    lon = rng.uniform(11.0, 11.07, n)
+    tail = rng.integers(n, size=m)
+    head = rng.integers(n, size=m)
+    length = great_circle_m(lat[tail], lon[tail], lat[head], lon[head])
+    length = length * rng.uniform(1.0, stretch, m)
+    if zero_cost:
+        length[rng.random(m) < 0.1] = 0.0
+    return build_graph(
+        lat=lat,
+        lon=lon,
+        osm_id=np.arange(n, dtype=np.int64),
+        tail=tail,
+        head=head,
+        length_m=length,
+        speed_kph=rng.choice([30.0, 50.0, 90.0, 130.0], m).astype(np.float32),
+        road_class=np.zeros(m, dtype=np.int8),
+        speed_source=np.ones(m, dtype=np.int8),
+        meta={"name": f"random-{seed}"},
+    )
+
+
+def line_graph(costs_s: np.ndarray):
+    """Two-way chain 0 - 1 - ... - k with the given edge travel times (speed 3.6 km/h = 1 m/s)."""
+    k = costs_s.shape[0]
+    n = k + 1
+    tail = np.concatenate([np.arange(k), np.arange(1, n)])
+    head = np.concatenate([np.arange(1, n), np.arange(k)])
+    length = np.concatenate([costs_s, costs_s])
+    return build_graph(
+        lat=np.full(n, 10.0),
+        lon=np.full(n, 20.0),  # every node at one point: the great-circle bound is 0
+        osm_id=np.arange(n, dtype=np.int64),
+        tail=tail,
+        head=head,
+        length_m=length,
+        speed_kph=np.full(2 * k, 3.6, dtype=np.float32),
+        road_class=np.zeros(2 * k, dtype=np.int8),
+        speed_source=np.ones(2 * k, dtype=np.int8),
+        spatial_order=False,
+    )
+
+
+def all_bounds(graph, landmarks: Landmarks | None, great_circle: bool = True) -> np.ndarray:
+    """h[v, t] for every pair, as the kernel computes it (or the landmark term alone)."""
+    n = graph.n_nodes
+    if not great_circle:
+        assert landmarks is not None
+        return np.stack([alt_bound_s(landmarks, np.arange(n), t) for t in range(n)], axis=1)
+    return np.stack([heuristic_s(graph, landmarks, np.arange(n), t) for t in range(n)], axis=1)
+
+
+def assert_admissible_and_consistent(
+    graph, landmarks: Landmarks, great_circle: bool = True
+) -> None:
+    exact = dijkstra(graph.csr())  # exact[v, t] = d(v -> t), inf where no path
+    h = all_bounds(graph, landmarks, great_circle)
+    assert not np.any(np.isnan(h)), "a bound must never be NaN"
+    assert np.all(h >= 0.0)
+    reachable = np.isfinite(exact)
+    over = h[reachable] - exact[reachable]
+    assert over.max() <= 0.0, f"bound exceeds the true distance by {over.max()} s"
+    # h = inf only proves "no path"; with several components some pairs must get it
+    assert np.any(np.isinf(h)) == bool(np.any(~reachable))
+    # consistency h(v) <= c(v, w) + h(w) on every edge and destination where h(v) is finite
+    c = np.asarray(graph.travel_time_s)[:, None]
+    hv, hw = h[graph.tail], h[graph.head]
+    finite = np.isfinite(hv)
+    violation = hv[finite] - np.broadcast_to(c, hv.shape)[finite] - hw[finite]
+    assert violation.max() <= landmarks.consistency_tolerance_s
+
+
+@pytest.mark.parametrize("method", METHODS)
+@pytest.mark.parametrize("seed", [0, 1, 2])
+def test_alt_admissible_and_consistent_on_random_graphs(method: str, seed: int) -> None:
+    """ALT bounds never exceed the exact distance and are consistent (Goldberg & Harrelson 2005).
+
+    Reference: all-pairs distances from ``scipy.sparse.csgraph.dijkstra``. The graphs have
+    several strong components, so many pairs have no path. Seed 2 adds zero-cost edges between
+    distant points (the great-circle bound does not hold there, so only the landmark term is
+    checked on that graph).
+    """
+    zero_cost = seed == 2
+    graph = random_graph(seed, zero_cost=zero_cost)
+    assert int(graph.component.max()) > 0, "the test graph should have several components"
+    landmarks = build_landmarks(graph, count=6, method=method, seed=seed, progress=False)
+    assert landmarks.count == 6
+    assert_admissible_and_consistent(graph, landmarks, great_circle=not zero_cost)
+
+
+@pytest.mark.parametrize("method", METHODS)
+def test_stored_distances_match_scipy(method: str) -> None:
+    """lm_from / lm_to equal scipy csgraph.dijkstra distances to float32 rounding (IEEE 754
+    round to nearest); missing distances are +inf, as in scipy, never NaN."""
+    graph = random_graph(5)
+    lm = build_landmarks(graph, count=5, method=method, progress=False)
+    exact_from = dijkstra(graph.csr(), indices=lm.nodes)  # [i, v]
+    exact_to = dijkstra(graph.csr().T.tocsr(), indices=lm.nodes)
+    for stored, exact in ((lm.lm_from, exact_from.T), (lm.lm_to, exact_to.T)):
+        assert stored.dtype == np.float32 and stored.flags.c_contiguous
+        assert stored.shape == (graph.n_nodes, 5)
+        finite = np.isfinite(exact)
+        assert (~finite).any(), "the test graph should have unreachable nodes"
+        np.testing.assert_allclose(stored[finite], exact[finite], rtol=2.0**-24, atol=0)
+        assert np.all(np.isposinf(stored[~finite]))
+    assert lm.max_distance_s == pytest.approx(
+        max(exact_from[np.isfinite(exact_from)].max(), exact_to[np.isfinite(exact_to)].max())
+    )
+
+
+def test_great_circle_bound_admissible() -> None:
+    """Great-circle length / top speed never exceeds the exact travel time (scipy csgraph)."""
+    graph = random_graph(3, stretch=1.0)
+    exact = dijkstra(graph.csr())
+    h = all_bounds(graph, None)
+    reachable = np.isfinite(exact)
+    assert np.all(h[reachable] <= exact[reachable])
+    v, t = 4, 9
+    assert great_circle_bound_s(graph, v, t) == pytest.approx(h[v, t])
+
+
+@pytest.mark.parametrize("method", METHODS)
+def test_landmarks_distinct_and_in_largest_component(method: str) -> None:
+    """Selection picks distinct nodes inside the largest strong component (scipy labels)."""
+    graph = random_graph(7)
+    from scipy.sparse.csgraph import connected_components
+
+    _, labels = connected_components(graph.csr(), directed=True, connection="strong")
+    biggest = np.argmax(np.bincount(labels))
+    lm = build_landmarks(graph, count=12, method=method, seed=3, progress=False)
+    assert len(set(lm.nodes.tolist())) == lm.count == 12
+    assert np.all(labels[lm.nodes] == biggest)
+    np.testing.assert_array_equal(
+        np.sort(largest_component_nodes(graph)), np.flatnonzero(labels == biggest)
+    )
+
+
+def test_farthest_selection_follows_the_definition() -> None:
+    """Farthest selection (Goldberg & Harrelson 2005): landmark k+1 maximises the round-trip
+    distance to the nearest of landmarks 1..k, recomputed here with scipy csgraph.dijkstra."""
+    graph = random_graph(11)
+    lm = build_landmarks(graph, count=5, method="farthest", seed=0, progress=False)
+    scc = largest_component_nodes(graph)
+    fwd = dijkstra(graph.csr(), indices=lm.nodes)[:, scc]
+    bwd = dijkstra(graph.csr().T.tocsr(), indices=lm.nodes)[:, scc]
+    round_trip = fwd + bwd
+    for k in range(1, 5):
+        nearest = round_trip[:k].min(axis=0)
+        chosen = np.flatnonzero(scc == lm.nodes[k])[0]
+        assert nearest[chosen] == pytest.approx(nearest.max(), rel=1e-12)
+        assert nearest[chosen] > 0
+
+
+def test_distinct_even_when_the_component_is_tiny() -> None:
+    """A two-node component gets two landmarks, not sixteen copies."""
+    graph = line_graph(np.array([5.0]))
+    lm = build_landmarks(graph, count=16, method="farthest", progress=False)
+    assert sorted(lm.nodes.tolist()) == [0, 1]
+    assert build_landmarks(graph, count=16, method="avoid", progress=False).count == 2
+
+
+def test_float32_slack_on_adversarial_large_distances() -> None:
+    """Distances of ~1e7 s with fractional parts, chosen so float32 rounding (2**-24 relative,
+    IEEE 754) goes both ways: with ``slack_s`` every bound stays admissible against scipy
+    csgraph.dijkstra, also when the kernel evaluates the formula in float32; without the slack
+    some bound would exceed the true distance, so the slack is doing real work."""
+    rng = np.random.default_rng(0)
+    costs = 2.0**23 / 40 * rng.uniform(0.999, 1.001, 40) + rng.uniform(0, 1, 40) / 3.0
+    graph = line_graph(costs)
+    lm = build_landmarks(graph, count=3, method="farthest", progress=False)
+    exact = dijkstra(graph.csr())
+    h = all_bounds(graph, lm)
+    assert np.all(h <= exact)
+
+    # the same formula evaluated entirely in float32
+    f32 = np.float32
+    for t in range(graph.n_nodes):
+        fwd = lm.lm_from[t][None, :] - lm.lm_from
+        bwd = lm.lm_to - lm.lm_to[t][None, :]
+        term = np.max(np.maximum(fwd, bwd), axis=1) - f32(lm.slack_s)
+        assert term.dtype == np.float32
+        assert np.all(np.maximum(term, f32(0)).astype(np.float64) <= exact[:, t])
+
+    unslacked = dataclasses.replace(lm, slack_s=0.0)
+    assert np.any(all_bounds(graph, unslacked) > exact), "adversarial case not adversarial"
+
+
+def test_zero_landmarks_leave_the_great_circle_bound() -> None:
+    graph = random_graph(4)
+    lm = build_landmarks(graph, count=0, progress=False)
+    assert lm.lm_from.shape == (graph.n_nodes, 0) and lm.lm_to.shape == (graph.n_nodes, 0)
+    assert alt_bound_s(lm, 3, 7) == 0.0
+    assert heuristic_s(graph, lm, 3, 7) == pytest.approx(great_circle_bound_s(graph, 3, 7))
+
+
+@pytest.mark.parametrize(
+    ("kwargs", "message"),
+    [
+        ({"count": -1}, "landmark count must be in 0..64"),
+        ({"count": 2.5}, "must be an integer"),
+        ({"method": "random"}, "must be one of avoid, farthest"),
+    ],
+)
+def test_bad_arguments_are_refused(kwargs: dict, message: str) -> None:
+    graph = random_graph(0, n=20, m=60)
+    with pytest.raises(InvalidRequest, match=message):
+        build_landmarks(graph, progress=False, **kwargs)
+
+
+# ---------------------------------------------------------------------------------------------
+# Files
+
+
+def test_file_round_trip_is_memory_mapped(tmp_path: Path) -> None:
+    graph = random_graph(8)
+    lm = build_landmarks(graph, count=4, method="avoid", progress=False)
+    path = save_landmarks(lm, tmp_path / "g.landmarks.npz")
+    with zipfile.ZipFile(path) as zf:  # numpy alone can read it, members stored uncompressed
+        assert {i.compress_type for i in zf.infolist()} == {zipfile.ZIP_STORED}
+    loaded = load_landmarks(path, graph)
+    assert isinstance(loaded.lm_from, np.memmap) and isinstance(loaded.lm_to, np.memmap)
+    assert loaded.lm_from.flags.c_contiguous
+    np.testing.assert_array_equal(loaded.nodes, lm.nodes)
+    np.testing.assert_array_equal(loaded.lm_from, lm.lm_from)
+    np.testing.assert_array_equal(loaded.lm_to, lm.lm_to)
+    assert loaded.slack_s == lm.slack_s and loaded.max_distance_s == lm.max_distance_s
+    assert loaded.method == "avoid" and loaded.graph_fingerprint == graph.fingerprint
+    with np.load(path) as plain:
+        np.testing.assert_array_equal(plain["lm_to"], lm.lm_to)
+
+
+def test_landmarks_of_another_graph_are_refused(tmp_path: Path) -> None:
+    graph, other = random_graph(8), random_graph(9)
+    path = save_landmarks(build_landmarks(graph, count=3, progress=False), tmp_path / "a.npz")
+    with pytest.raises(InvalidRequest, match="belong to another graph"):
+        load_landmarks(path, other)
+
+
+@pytest.mark.parametrize("damage", ["truncate", "garbage", "missing", "shape", "negative", "nan"])
+def test_corrupt_landmark_files_are_refused(tmp_path: Path, damage: str) -> None:
+    graph = random_graph(8)
+    lm = build_landmarks(graph, count=3, progress=False)
+    path = save_landmarks(lm, tmp_path / "lm.npz")
+    if damage == "truncate":
+        path.write_bytes(path.read_bytes()[: path.stat().st_size // 2])
+    elif damage == "garbage":
+        path.write_bytes(b"this is not a zip file at all")
+    else:
+        meta = np.load(path)["meta"]
+        arrays = {"meta": meta, "nodes": lm.nodes, "lm_from": lm.lm_from, "lm_to": lm.lm_to}
+        if damage == "missing":
+            del arrays["lm_to"]
+        elif damage == "shape":
+            arrays["lm_to"] = lm.lm_to[:-1]
+        else:
+            bad = lm.lm_from.copy()
+            bad[0, 0] = -5.0 if damage == "negative" else np.nan
+            arrays["lm_from"] = bad
+        with open(path, "wb") as fh:
+            np.savez(fh, **arrays)
+    with pytest.raises(CorruptGraphFile, match=str(path.name)):
+        load_landmarks(path, graph)
+
+
+def test_missing_file_is_reported(tmp_path: Path) -> None:
+    with pytest.raises(GraphFileNotFound, match="landmark file not found"):
+        load_landmarks(tmp_path / "nope.landmarks.npz")
+
+
+def test_load_or_build_stores_beside_the_graph_and_rebuilds_when_stale(tmp_path: Path) -> None:
+    graph_path = save_graph(random_graph(8), tmp_path / "town.npz")
+    from planner.graph import load_graph
+
+    graph = load_graph(graph_path)
+    first = load_or_build_landmarks(graph, count=3, progress=False)
+    assert first.path == landmarks_path(graph_path) == tmp_path / "town.landmarks.npz"
+    stamp = first.path.stat().st_mtime_ns
+    again = load_or_build_landmarks(graph, count=3, progress=False)
+    assert again.path.stat().st_mtime_ns == stamp  # reused, not rebuilt
+    np.testing.assert_array_equal(again.lm_from, first.lm_from)
+
+    # the graph is recompiled with other costs: the old file is stale and gets replaced
+    other_path = save_graph(random_graph(9), graph_path)
+    other = load_graph(other_path)
+    fresh = load_or_build_landmarks(other, count=3, progress=False)
+    assert fresh.graph_fingerprint == other.fingerprint
+    more = load_or_build_landmarks(other, count=5, progress=False)
+    assert more.count == 5
+
+
+# ---------------------------------------------------------------------------------------------
+# Real OpenStreetMap fixtures
+
+
+def _import_fixture(name: str):
+    path = OSM_DIR / name
+    if not path.is_file():
+        pytest.skip(f"OSM fixture {path} is absent")
+    try:
+        osm_import = importlib.import_module("planner.osm_import")
+    except ImportError:
+        pytest.skip("planner.osm_import is not available yet")
+    return osm_import.import_map(path)
+
+
+@pytest.mark.parametrize("name", ["west-oakland.osm.bz2", "aguascalientes.osm.bz2"])
+@pytest.mark.parametrize("method", METHODS)
+def test_alt_admissible_on_osm_fixtures(name: str, method: str) -> None:
+    """ALT bounds on real OpenStreetMap roads (fixtures published with osmnx) are admissible
+    and consistent against scipy csgraph.dijkstra (Goldberg & Harrelson 2005)."""
+    graph = _import_fixture(name)
+    if graph.n_nodes > 1200:  # all-pairs check: keep a sample of destinations
+        pytest.skip("fixture larger than expected for an all-pairs check")
+    landmarks = build_landmarks(graph, count=8, method=method, progress=False)
+    assert_admissible_and_consistent(graph, landmarks)
