@@ -1,0 +1,179 @@
+"""Admission control: worker slots, a FIFO queue, and shedding what cannot start in time.
+
+Every admitted plan holds a *search deadline* ``search_deadline_s`` (``perf_counter`` seconds):
+arrival + deadline_ms - response headroom. The search never runs past it, whenever it starts,
+so a plan occupies a worker slot until at most its search deadline. That gives a worst-case
+schedule that needs no guess about how long searches take:
+
+* a running plan frees its slot by its search deadline (earlier if it proves the optimum);
+* queued plans take slots in FIFO order (the thread pool's order) and each frees its slot by
+  its own search deadline, or at once if it can no longer start in time.
+
+A new request is admitted only if, in that worst case, it starts at least ``min_search_ms``
+before its own search deadline; otherwise it is shed at once (503 + ``Retry-After``). The
+estimate is pessimistic when searches finish early, never optimistic — but an admitted plan
+never waits past its deadline in any case: a plan that starts late simply searches for less time
+(and one that cannot start at all answers at once without searching).
+"""
+
+from __future__ import annotations
+
+import heapq
+import itertools
+import math
+import threading
+import time
+from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass, field
+from typing import Any
+
+
+@dataclass(eq=False)
+class Ticket:
+    """One admitted plan's claim on a worker slot."""
+
+    ticket_id: int
+    arrival_s: float
+    search_deadline_s: float
+    started_s: float | None = None
+    finished_s: float | None = None
+    cancel: threading.Event = field(default_factory=threading.Event)
+
+
+class Shed(Exception):
+    """The request cannot start in time; ``retry_after_s`` is when a slot is expected free."""
+
+    def __init__(self, message: str, retry_after_s: int) -> None:
+        super().__init__(message)
+        self.retry_after_s = retry_after_s
+
+
+class Admission:
+    """Bounded worker pool with deadline-aware admission.
+
+    Parameters
+    ----------
+    workers : int
+        Searches that run at once; each runs in its own thread (the search kernel releases
+        the GIL, so threads run on separate cores).
+    min_search_ms : float
+        A plan must be able to search at least this long or it is shed.
+    clock : callable
+        ``time.perf_counter`` (injected in tests).
+    """
+
+    def __init__(
+        self,
+        workers: int,
+        min_search_ms: float,
+        clock: Callable[[], float] = time.perf_counter,
+    ) -> None:
+        if workers < 1:
+            raise ValueError(f"workers must be >= 1, got {workers}")
+        self.workers = workers
+        self.min_search_s = min_search_ms / 1000.0
+        self.clock = clock
+        self._lock = threading.Lock()
+        # Invariant: every admitted, unfinished ticket is in exactly one of these two.
+        self._running: dict[int, Ticket] = {}
+        self._queued: dict[int, Ticket] = {}  # insertion order == FIFO order of the pool
+        self._ids = itertools.count(1)
+        self._executor = ThreadPoolExecutor(
+            max_workers=workers, thread_name_prefix="dueroute-search"
+        )
+        self.admitted_total = 0
+        self.shed_total = 0
+
+    # ---------------------------------------------------------------------------------------
+    def estimate_start_s(self, now_s: float) -> float:
+        """Worst-case time at which a plan arriving now would get a worker slot."""
+        with self._lock:
+            return self._estimate_locked(now_s)
+
+    def _estimate_locked(self, now_s: float) -> float:
+        free = [max(now_s, t.search_deadline_s) for t in self._running.values()]
+        free += [now_s] * (self.workers - len(free))
+        heapq.heapify(free)
+        for t in self._queued.values():
+            start = heapq.heappop(free)
+            # Starts at ``start`` and frees the slot by its deadline (at once if too late).
+            heapq.heappush(free, max(start, t.search_deadline_s))
+        return free[0]
+
+    def admit(self, arrival_s: float, search_deadline_s: float) -> Ticket:
+        """Admit a plan or raise :class:`Shed` (never blocks)."""
+        now = self.clock()
+        with self._lock:
+            start = self._estimate_locked(now)
+            if start + self.min_search_s > search_deadline_s:
+                self.shed_total += 1
+                wait_s = max(0.0, start - now)
+                busy = len(self._running)
+                queued = len(self._queued)
+                raise Shed(
+                    f"overloaded: {busy} of {self.workers} workers busy and {queued} plans "
+                    f"queued; a worker is expected free in {wait_s * 1000:.0f} ms, too late to "
+                    f"search at least {self.min_search_s * 1000:.0f} ms before the deadline. "
+                    "Retry later or with a longer deadline_ms.",
+                    retry_after_s=max(1, math.ceil(wait_s)),
+                )
+            ticket = Ticket(next(self._ids), arrival_s, search_deadline_s)
+            self._queued[ticket.ticket_id] = ticket
+            self.admitted_total += 1
+            return ticket
+
+    def submit(self, ticket: Ticket, fn: Callable[[Ticket], Any]) -> Future[Any]:
+        """Run ``fn(ticket)`` on a worker thread; the ticket moves queued -> running -> done."""
+
+        def run() -> Any:
+            with self._lock:
+                self._queued.pop(ticket.ticket_id, None)
+                self._running[ticket.ticket_id] = ticket
+                ticket.started_s = self.clock()
+            try:
+                return fn(ticket)
+            finally:
+                with self._lock:
+                    self._running.pop(ticket.ticket_id, None)
+                    ticket.finished_s = self.clock()
+
+        try:
+            return self._executor.submit(run)
+        except RuntimeError:  # pool shut down: release the claim
+            with self._lock:
+                self._queued.pop(ticket.ticket_id, None)
+            raise
+
+    def release(self, ticket: Ticket) -> None:
+        """Drop a ticket that was admitted but never submitted (the request failed early)."""
+        with self._lock:
+            self._queued.pop(ticket.ticket_id, None)
+
+    @property
+    def busy(self) -> int:
+        return len(self._running)
+
+    @property
+    def queued(self) -> int:
+        return len(self._queued)
+
+    def snapshot(self) -> dict[str, Any]:
+        now = self.clock()
+        with self._lock:
+            start = self._estimate_locked(now)
+            return {
+                "workers": self.workers,
+                "busy": len(self._running),
+                "queued": len(self._queued),
+                "next_free_in_ms": max(0.0, (start - now) * 1000.0),
+                "admitted_total": self.admitted_total,
+                "shed_total": self.shed_total,
+            }
+
+    def shutdown(self) -> None:
+        with self._lock:
+            tickets = list(self._running.values()) + list(self._queued.values())
+        for t in tickets:
+            t.cancel.set()
+        self._executor.shutdown(wait=True, cancel_futures=False)

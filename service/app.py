@@ -1,0 +1,365 @@
+"""Build the FastAPI app: state, middleware, error shapes, routers, start-up warm-up.
+
+``create_app(settings)`` builds an independent app (own metrics registry, worker pool, plan
+store and policy store), so tests can run several side by side. ``dueroute serve`` calls it
+with the settings from the environment and flags.
+
+Start-up order: settings are validated and the policy store chooses the active policy before
+the server accepts connections (a bad ``--policy`` stops the start with a message); loading the
+graph, the landmarks and the JIT warm-up searches then run in a background thread, during
+which ``/healthz`` answers and ``/readyz`` and ``POST /v1/plans`` say 503 "warming up".
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import json
+import logging
+import sys
+import time
+from collections.abc import AsyncIterator, Awaitable, Callable, MutableMapping
+from contextlib import asynccontextmanager
+from pathlib import Path
+from typing import Any
+
+from fastapi import FastAPI, HTTPException, Request
+from fastapi.exceptions import RequestValidationError
+from fastapi.responses import JSONResponse
+
+from service.admission import Admission
+from service.deps import AppState
+from service.jobs import PlanningEngine, PlanStore
+from service.metrics import ServiceMetrics
+from service.policy_store import PolicyStore
+from service.settings import Settings, get_settings
+
+log = logging.getLogger("dueroute.service")
+
+Scope = MutableMapping[str, Any]
+Message = MutableMapping[str, Any]
+Receive = Callable[[], Awaitable[Message]]
+Send = Callable[[Message], Awaitable[None]]
+
+#: Shipped default policy (may not exist yet: then ``learned`` uses the fallback controller).
+DEFAULT_POLICY = Path(__file__).resolve().parent.parent / "policies" / "default.onnx"
+
+# Hints appended to validation messages: what each field allows.
+_ALLOWED = {
+    "origin": 'an object {"node": <index 0..n_nodes-1>} or {"lat": -90..90, "lon": -180..180}',
+    "destination": 'an object {"node": <index 0..n_nodes-1>} or {"lat": -90..90, "lon": -180..180}',
+    "deadline_ms": "an integer number of milliseconds, 1..{max_deadline_ms}",
+    "controller": "one of learned, decreasing, ana, random, fixed:W with W in 1..5",
+    "wait": "true or false",
+}
+
+
+# ------------------------------------------------------------------------------------------
+# Structured logs
+
+
+class JsonLogFormatter(logging.Formatter):
+    """One JSON object per line: time, level, logger, message and any ``extra`` fields."""
+
+    _std = set(vars(logging.makeLogRecord({}))) | {"message", "asctime"}
+
+    def format(self, record: logging.LogRecord) -> str:
+        out: dict[str, Any] = {
+            "ts": time.strftime("%Y-%m-%dT%H:%M:%S", time.gmtime(record.created))
+            + f".{int(record.msecs):03d}Z",
+            "level": record.levelname.lower(),
+            "logger": record.name,
+            "msg": record.getMessage(),
+        }
+        for key, value in vars(record).items():
+            if key not in self._std and not key.startswith("_"):
+                out[key] = value
+        if record.exc_info:
+            out["exc"] = self.formatException(record.exc_info)
+        return json.dumps(out, default=str)
+
+
+def configure_logging(level: str = "info", as_json: bool = True) -> None:
+    """Send ``dueroute.*`` logs to stderr, as JSON lines unless ``as_json`` is false."""
+    root = logging.getLogger("dueroute")
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(
+        JsonLogFormatter() if as_json else logging.Formatter("%(levelname)s %(name)s %(message)s")
+    )
+    root.handlers[:] = [handler]
+    root.setLevel(level.upper())
+    root.propagate = False
+
+
+# ------------------------------------------------------------------------------------------
+# Edge middleware: arrival time, body limit, access log (pure ASGI: no per-request task)
+
+
+class EdgeMiddleware:
+    """Stamps the arrival time, enforces the body limit (413) and writes one log line."""
+
+    def __init__(self, app: Any, settings: Settings) -> None:
+        self.app = app
+        self.settings = settings
+
+    def _limit(self, scope: Scope) -> int:
+        if scope.get("path") == "/v1/policy" and scope.get("method") == "PUT":
+            return self.settings.max_policy_bytes
+        return self.settings.max_body_bytes
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        arrival_s = time.perf_counter()
+        scope.setdefault("state", {})["arrival_s"] = arrival_s
+        limit = self._limit(scope)
+        status = {"code": 0}
+
+        async def send_logged(message: Message) -> None:
+            if message["type"] == "http.response.start":
+                status["code"] = message["status"]
+            await send(message)
+
+        length = None
+        for key, value in scope.get("headers", []):
+            if key == b"content-length":
+                with contextlib.suppress(ValueError):
+                    length = int(value)
+        if length is not None and length > limit:
+            await _too_large(send_logged, length, limit)
+        else:
+            received = 0
+
+            async def receive_limited() -> Message:
+                nonlocal received
+                message = await receive()
+                if message["type"] == "http.request":
+                    received += len(message.get("body", b""))
+                    if received > limit:
+                        raise HTTPException(
+                            status_code=413, detail=_too_large_text(received, limit)
+                        )
+                return message
+
+            await self.app(scope, receive_limited, send_logged)
+        if log.isEnabledFor(logging.INFO):
+            log.info(
+                "request",
+                extra={
+                    "method": scope.get("method"),
+                    "path": scope.get("path"),
+                    "status": status["code"],
+                    "duration_ms": round((time.perf_counter() - arrival_s) * 1000.0, 3),
+                },
+            )
+
+
+def _too_large_text(size: int, limit: int) -> str:
+    return f"request body is {size} bytes or more; the limit for this endpoint is {limit} bytes"
+
+
+async def _too_large(send: Send, size: int, limit: int) -> None:
+    body = json.dumps({"detail": _too_large_text(size, limit)}).encode()
+    await send(
+        {
+            "type": "http.response.start",
+            "status": 413,
+            "headers": [
+                (b"content-type", b"application/json"),
+                (b"content-length", str(len(body)).encode()),
+                (b"connection", b"close"),
+            ],
+        }
+    )
+    await send({"type": "http.response.body", "body": body})
+
+
+# ------------------------------------------------------------------------------------------
+# Error shapes
+
+
+def _validation_message(exc: RequestValidationError, settings: Settings) -> str:
+    parts = []
+    for err in exc.errors():
+        loc = [str(p) for p in err.get("loc", ()) if p != "body"]
+        kind = str(err.get("type", ""))
+        if kind == "json_invalid":
+            ctx = err.get("ctx") or {}
+            parts.append(
+                f"the body is not valid JSON ({ctx.get('error', 'parse error')}); send a JSON "
+                'object such as {"origin": {"node": 0}, "destination": {"node": 1}, '
+                '"deadline_ms": 100}'
+            )
+            continue
+        # Union members add their class name to the location; keep only field names.
+        loc = [p for p in loc if p not in ("NodeRef", "PointRef") and not p.startswith("function")]
+        where = ".".join(loc) or "body"
+        msg = str(err.get("msg", "invalid value"))
+        field = next((p for p in loc if p in _ALLOWED), None)
+        if field in ("origin", "destination"):
+            # One line per place, not one per union member.
+            given = json.dumps(err.get("input"), default=str)[:80]
+            text = f"{field}: {given} is not a valid place (allowed: {_ALLOWED[field]})"
+            if text not in parts:
+                parts.append(text)
+            continue
+        hint = (
+            _ALLOWED[field].replace("{max_deadline_ms}", str(settings.max_deadline_ms))
+            if field
+            else None
+        )
+        text = f"{where}: {msg}"
+        if kind == "missing":
+            text = f"{where}: field required"
+        if hint:
+            text += f" (allowed: {hint})"
+        if text not in parts:
+            parts.append(text)
+    return "; ".join(parts) or "invalid request"
+
+
+# ------------------------------------------------------------------------------------------
+# Warm-up
+
+
+def warm_up(state: AppState) -> None:
+    """Load the graph and landmarks, build the planner, run the JIT warm-up searches.
+
+    Runs on a thread at start-up; sets ``state.engine`` and ``state.ready`` when done.
+    """
+    from planner.heuristics import load_or_build_landmarks
+    from planner.session import Planner
+    from service.commands.common import resolve_graph_path
+
+    t0 = time.perf_counter()
+    settings = state.settings
+    from planner.graph import load_graph
+
+    graph = load_graph(resolve_graph_path(settings.graph))
+    t_graph = time.perf_counter()
+    landmarks = load_or_build_landmarks(graph, progress=False)
+    t_lm = time.perf_counter()
+    planner = Planner(graph, landmarks=landmarks)
+    engine = PlanningEngine(graph, planner, steps=settings.steps)
+    searches = _warmup_searches(engine, state, settings.warmup_searches)
+    t_done = time.perf_counter()
+    state.warmup = {
+        "graph": str(graph.path),
+        "nodes": graph.n_nodes,
+        "edges": graph.n_edges,
+        "load_graph_ms": round((t_graph - t0) * 1000.0, 1),
+        "landmarks_ms": round((t_lm - t_graph) * 1000.0, 1),
+        "warmup_ms": round((t_done - t_lm) * 1000.0, 1),
+        "warmup_searches": searches,
+    }
+    state.engine = engine
+    state.ready = True
+    state.metrics.ready.set(1)
+    log.info("ready", extra=state.warmup)
+
+
+def _warmup_searches(engine: PlanningEngine, state: AppState, count: int) -> int:
+    """Run ``count`` searches per controller kind so numba compiles before the first request."""
+    import numpy as np
+
+    from planner.session import plan
+
+    graph = engine.graph
+    if graph.n_nodes < 2 or count <= 0:
+        return 0
+    comp = np.asarray(graph.component)
+    biggest = int(np.bincount(comp).argmax())
+    nodes = np.flatnonzero(comp == biggest)
+    rng = np.random.default_rng(0)
+    active = state.policies.active
+    specs = ["decreasing", "ana", "learned" if active.policy is not None else "fixed:2"]
+    done = 0
+    for spec in specs:
+        for _ in range(count):
+            o, d = (int(x) for x in rng.choice(nodes, size=2))
+            controller = engine.make_controller(spec, active.policy)
+            plan(engine.planner, o, d, deadline_ms=200.0, controller=controller, steps=engine.steps)
+            done += 1
+    return done
+
+
+# ------------------------------------------------------------------------------------------
+# App factory
+
+
+def create_app(settings: Settings | None = None) -> FastAPI:
+    """A new app. ``settings`` default: :func:`get_settings` (environment, validated now)."""
+    settings = settings if settings is not None else get_settings()
+    metrics = ServiceMetrics()
+    policies = PolicyStore(settings.policy_dir, settings.max_policy_bytes)
+    # Choose the active policy now: a bad --policy file fails the start, loudly.
+    active = policies.startup(settings.policy, DEFAULT_POLICY)
+    metrics.set_policy(active.sha256, active.source, active.fallback_controller)
+    state = AppState(
+        settings=settings,
+        metrics=metrics,
+        admission=Admission(settings.workers, settings.min_search_ms),
+        plans=PlanStore(settings.background_max, settings.background_ttl_s),
+        policies=policies,
+    )
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        state.tasks.append(asyncio.create_task(_warm(state)))
+        state.tasks.append(asyncio.create_task(_sweep(state)))
+        try:
+            yield
+        finally:
+            for task in state.tasks:
+                task.cancel()
+            for task in state.tasks:
+                with contextlib.suppress(asyncio.CancelledError, Exception):
+                    await task
+            await asyncio.to_thread(state.admission.shutdown)
+
+    app = FastAPI(
+        title="dueroute",
+        version="1",
+        summary="Best road route by a deadline, with a proven lower bound and gap.",
+        lifespan=lifespan,
+    )
+    app.state.dueroute = state
+
+    @app.exception_handler(RequestValidationError)
+    async def _on_validation(request: Request, exc: RequestValidationError) -> JSONResponse:
+        if request.url.path == "/v1/plans":
+            state.metrics.plans.labels(outcome="rejected").inc()
+        return JSONResponse(status_code=422, content={"detail": _validation_message(exc, settings)})
+
+    @app.exception_handler(Exception)
+    async def _on_error(request: Request, exc: Exception) -> JSONResponse:
+        log.exception("unhandled error", extra={"path": request.url.path})
+        return JSONResponse(
+            status_code=500,
+            content={"detail": f"internal error ({type(exc).__name__}); see the service log"},
+        )
+
+    from service.routes import health, plans, policy
+
+    app.include_router(plans.router)
+    app.include_router(policy.router)
+    app.include_router(health.router)
+    app.add_middleware(EdgeMiddleware, settings=settings)
+    return app
+
+
+async def _warm(state: AppState) -> None:
+    try:
+        await asyncio.to_thread(warm_up, state)
+    except Exception as exc:  # keep serving /healthz; /readyz reports the reason
+        state.warmup_error = f"{type(exc).__name__}: {exc}"
+        log.error("warm-up failed", extra={"error": state.warmup_error})
+
+
+async def _sweep(state: AppState) -> None:
+    """Expire finished plans once a second, and keep the gauges current."""
+    while True:
+        await asyncio.sleep(1.0)
+        state.plans.expire()
+        state.metrics.background.set(len(state.plans))

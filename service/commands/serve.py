@@ -1,0 +1,138 @@
+"""``dueroute serve``: run the HTTP service (FastAPI on uvicorn, one process, worker threads)."""
+
+from __future__ import annotations
+
+import argparse
+from pathlib import Path
+from typing import Any
+
+from planner.errors import InvalidRequest
+from service.commands.common import GRAPH_HELP
+
+# flag name -> Settings field (every flag defaults to None: the environment / default applies)
+_FLAGS = {
+    "graph": "graph",
+    "policy": "policy",
+    "policy_dir": "policy_dir",
+    "host": "host",
+    "port": "port",
+    "workers": "workers",
+    "deadline_tolerance_ms": "deadline_tolerance_ms",
+    "response_headroom_ms": "response_headroom_ms",
+    "max_body_bytes": "max_body_bytes",
+    "background_max": "background_max",
+    "background_ttl_s": "background_ttl_s",
+    "log_level": "log_level",
+}
+
+
+def register(sub: Any) -> None:
+    p = sub.add_parser(
+        "serve",
+        help="run the HTTP routing service",
+        description=(
+            "Serve POST /v1/plans and friends (OpenAPI at /docs). Every flag can also be set "
+            "with the environment variable DUEROUTE_<FLAG> (e.g. DUEROUTE_WORKERS=4); flags win. "
+            "With no arguments: the demo region and the default policy on 127.0.0.1:8000."
+        ),
+    )
+    p.add_argument("--graph", default=None, help=GRAPH_HELP + " (default demo)")
+    p.add_argument("--policy", type=Path, default=None, help="ONNX policy file to activate")
+    p.add_argument(
+        "--policy-dir",
+        type=Path,
+        default=None,
+        help="where uploaded policies and the active one persist (default .dueroute/policies)",
+    )
+    p.add_argument("--host", default=None, help="address to listen on (default 127.0.0.1)")
+    p.add_argument("--port", type=int, default=None, help="TCP port (default 8000)")
+    p.add_argument(
+        "--workers", type=int, default=None, help="searches at once (default: CPU count)"
+    )
+    p.add_argument(
+        "--admin-token-file",
+        type=Path,
+        default=None,
+        help="file holding the bearer token that enables PUT /v1/policy and rollback "
+        "(or set DUEROUTE_ADMIN_TOKEN; a token on the command line would show in 'ps')",
+    )
+    p.add_argument(
+        "--deadline-tolerance-ms",
+        type=float,
+        default=None,
+        help="promised lateness bound beyond deadline_ms (default 5)",
+    )
+    p.add_argument(
+        "--response-headroom-ms",
+        type=float,
+        default=None,
+        help="the search stops this long before the deadline to build the answer (default 2)",
+    )
+    p.add_argument("--max-body-bytes", type=int, default=None, help="request body limit (16384)")
+    p.add_argument(
+        "--background-max", type=int, default=None, help="plans kept at once (default 64)"
+    )
+    p.add_argument(
+        "--background-ttl-s", type=float, default=None, help="finished plans kept (default 300)"
+    )
+    p.add_argument("--log-level", default=None, help="debug, info, warning, error")
+    p.add_argument("--plain-logs", action="store_true", help="human-readable instead of JSON logs")
+    p.set_defaults(func=run)
+
+
+def build_settings(args: argparse.Namespace) -> Any:
+    """Settings from the environment with the given flags on top (raises on a bad value)."""
+    from pydantic import ValidationError
+
+    from service.settings import Settings
+
+    overrides: dict[str, Any] = {
+        field: getattr(args, flag)
+        for flag, field in _FLAGS.items()
+        if getattr(args, flag, None) is not None
+    }
+    if getattr(args, "plain_logs", False):
+        overrides["log_json"] = False
+    token_file = getattr(args, "admin_token_file", None)
+    if token_file is not None:
+        try:
+            overrides["admin_token"] = Path(token_file).read_text().strip()
+        except OSError as exc:
+            raise InvalidRequest(f"cannot read --admin-token-file {token_file}: {exc}") from exc
+    try:
+        return Settings(**overrides)
+    except ValidationError as exc:
+        problems = "; ".join(
+            f"{'.'.join(str(p) for p in e['loc']) or 'settings'}: {e['msg']}" for e in exc.errors()
+        )
+        raise InvalidRequest(f"invalid service settings ({problems})") from None
+
+
+def run(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    from service.app import configure_logging, create_app
+    from service.commands.common import resolve_graph_path
+    from service.policy_store import PolicyRejected
+
+    settings = build_settings(args)
+    configure_logging(settings.log_level, settings.log_json)
+    if settings.graph != "demo":
+        path = resolve_graph_path(settings.graph)  # fail now, not in the warm-up thread
+        if not path.is_file():
+            raise InvalidRequest(f"graph file not found: {path}")
+    try:
+        app = create_app(settings)
+    except PolicyRejected as exc:
+        raise InvalidRequest(f"policy refused: {'; '.join(exc.problems)}") from None
+    config = uvicorn.Config(
+        app,
+        host=settings.host,
+        port=settings.port,
+        log_config=None,
+        access_log=False,  # the service writes its own structured request log
+        lifespan="on",
+        timeout_graceful_shutdown=5,
+    )
+    uvicorn.Server(config).run()
+    return 0

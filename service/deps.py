@@ -1,0 +1,78 @@
+"""``Annotated`` dependencies shared by the routers."""
+
+from __future__ import annotations
+
+import asyncio
+import hmac
+import time
+from dataclasses import dataclass, field
+from typing import Annotated, Any
+
+from fastapi import Depends, HTTPException, Request
+
+from service.admission import Admission
+from service.jobs import PlanningEngine, PlanStore
+from service.metrics import ServiceMetrics
+from service.policy_store import PolicyStore
+from service.settings import Settings
+
+
+@dataclass(eq=False)
+class AppState:
+    """Everything one app instance owns (tests build several apps side by side)."""
+
+    settings: Settings
+    metrics: ServiceMetrics
+    admission: Admission
+    plans: PlanStore
+    policies: PolicyStore
+    engine: PlanningEngine | None = None  # set once the graph is loaded and warmed up
+    ready: bool = False
+    warmup_error: str | None = None
+    warmup: dict[str, Any] = field(default_factory=dict)
+    started_wall: float = field(default_factory=time.time)
+    tasks: list[asyncio.Task[Any]] = field(default_factory=list)
+
+
+def get_state(request: Request) -> AppState:
+    state: AppState = request.app.state.dueroute
+    return state
+
+
+StateDep = Annotated[AppState, Depends(get_state)]
+
+
+def get_app_settings(state: StateDep) -> Settings:
+    return state.settings
+
+
+SettingsDep = Annotated[Settings, Depends(get_app_settings)]
+
+
+def require_admin(request: Request, state: StateDep) -> None:
+    """Admin endpoints: 404 when no token is configured, 401 unless the bearer token matches.
+
+    The token is compared with :func:`hmac.compare_digest`, whose time does not depend on
+    where the first difference is.
+    """
+    expected = state.settings.admin_token
+    if expected is None:
+        raise HTTPException(
+            status_code=404,
+            detail="policy administration is disabled: no admin token is configured "
+            "(set DUEROUTE_ADMIN_TOKEN or pass --admin-token to enable it)",
+        )
+    header = request.headers.get("authorization", "")
+    scheme, _, given = header.partition(" ")
+    ok = scheme.lower() == "bearer" and hmac.compare_digest(
+        given.strip().encode(), expected.get_secret_value().encode()
+    )
+    if not ok:
+        raise HTTPException(
+            status_code=401,
+            detail="missing or wrong admin token: send 'Authorization: Bearer <token>'",
+            headers={"WWW-Authenticate": "Bearer"},
+        )
+
+
+AdminDep = Annotated[None, Depends(require_admin)]

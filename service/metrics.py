@@ -1,0 +1,99 @@
+"""Prometheus metrics, one :class:`CollectorRegistry` per app (tests build several apps)."""
+
+from __future__ import annotations
+
+from prometheus_client import (
+    CONTENT_TYPE_LATEST,
+    CollectorRegistry,
+    Counter,
+    Gauge,
+    Histogram,
+    Info,
+    generate_latest,
+)
+
+# Buckets in seconds: the interesting range is a few ms to a minute (deadline_ms <= 60000).
+_LATENCY_BUCKETS_S = (
+    0.001,
+    0.0025,
+    0.005,
+    0.01,
+    0.025,
+    0.05,
+    0.1,
+    0.25,
+    0.5,
+    1.0,
+    2.5,
+    5.0,
+    10.0,
+    30.0,
+    60.0,
+)
+_GAP_BUCKETS = (0.0, 0.001, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0)
+_LATE_BUCKETS_MS = (0.0, 0.5, 1.0, 2.0, 5.0, 10.0, 25.0, 100.0)
+
+
+class ServiceMetrics:
+    """Every metric the service exports; ``render()`` is the ``/metrics`` body."""
+
+    content_type = CONTENT_TYPE_LATEST
+
+    def __init__(self) -> None:
+        self.registry = CollectorRegistry(auto_describe=True)
+        r = self.registry
+        self.plans = Counter(
+            "dueroute_plans",
+            "Plan requests by outcome (optimal, contract_spent, no_route, cancelled, shed, "
+            "rejected)",
+            ["outcome"],
+            registry=r,
+        )
+        self.sheds = Counter(
+            "dueroute_sheds", "Requests refused by admission control (503)", registry=r
+        )
+        self.latency = Histogram(
+            "dueroute_plan_latency_seconds",
+            "Arrival to answer built, for plans answered with wait=true",
+            buckets=_LATENCY_BUCKETS_S,
+            registry=r,
+        )
+        self.overhead = Histogram(
+            "dueroute_plan_overhead_seconds",
+            "Answer time minus search time (queue + snapping + serialisation)",
+            buckets=_LATENCY_BUCKETS_S,
+            registry=r,
+        )
+        self.gap = Histogram(
+            "dueroute_plan_gap",
+            "Gap of the answered route, (cost - bound) / cost",
+            buckets=_GAP_BUCKETS,
+            registry=r,
+        )
+        self.late = Histogram(
+            "dueroute_plan_late_ms",
+            "How far past arrival + deadline_ms an answer was built (0 when on time)",
+            buckets=_LATE_BUCKETS_MS,
+            registry=r,
+        )
+        self.busy_workers = Gauge("dueroute_busy_workers", "Searches running now", registry=r)
+        self.queued = Gauge(
+            "dueroute_queued_plans", "Admitted plans waiting for a worker", registry=r
+        )
+        self.background = Gauge("dueroute_stored_plans", "Plans held in the plan store", registry=r)
+        self.policy_swaps = Counter(
+            "dueroute_policy_changes",
+            "Policy swaps and rollbacks by result",
+            ["result"],
+            registry=r,
+        )
+        self.policy = Info("dueroute_active_policy", "The active policy", registry=r)
+        self.ready = Gauge("dueroute_ready", "1 once the graph is loaded and warmed up", registry=r)
+
+    def set_policy(self, sha256: str | None, source: str, fallback: str | None) -> None:
+        self.policy.info(
+            {"sha256": sha256 or "", "source": source, "fallback_controller": fallback or ""}
+        )
+
+    def render(self) -> bytes:
+        return generate_latest(self.registry)

@@ -1,0 +1,179 @@
+"""Request and response models of the HTTP API (contract: ``/work/briefs/http_api.md``).
+
+Field constraints here are what OpenAPI publishes and what a 422 explains; limits that depend
+on settings (the largest deadline) are checked in the route with a message of the same shape.
+"""
+
+from __future__ import annotations
+
+import re
+from typing import Any, Literal
+
+from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictInt, field_validator
+
+#: Largest deadline the schema allows; the service may be configured lower.
+MAX_DEADLINE_MS = 60_000
+
+CONTROLLER_PATTERN = r"^(learned|decreasing|ana|random|fixed:[0-9]+(\.[0-9]+)?)$"
+
+PlanStatus = Literal["running", "optimal", "contract_spent", "no_route", "cancelled"]
+
+
+class NodeRef(BaseModel):
+    """A graph node by its index (0..n_nodes-1)."""
+
+    model_config = ConfigDict(extra="forbid")
+    node: StrictInt = Field(..., ge=0, description="node index in the compiled graph")
+
+
+class PointRef(BaseModel):
+    """A WGS84 point; the service snaps it to the nearest road node."""
+
+    model_config = ConfigDict(extra="forbid")
+    lat: float = Field(..., ge=-90.0, le=90.0, allow_inf_nan=False)
+    lon: float = Field(..., ge=-180.0, le=180.0, allow_inf_nan=False)
+
+
+Place = NodeRef | PointRef
+
+
+class PlanRequest(BaseModel):
+    """Body of ``POST /v1/plans``."""
+
+    model_config = ConfigDict(
+        extra="forbid",
+        json_schema_extra={
+            "examples": [
+                {
+                    "origin": {"node": 0},
+                    "destination": {"node": 10},
+                    "deadline_ms": 50,
+                    "controller": "decreasing",
+                    "wait": True,
+                }
+            ]
+        },
+    )
+
+    origin: Place
+    destination: Place
+    deadline_ms: StrictInt = Field(
+        default=...,
+        ge=1,
+        le=MAX_DEADLINE_MS,
+        description="answer by arrival + deadline_ms (+ the documented tolerance)",
+    )
+    controller: str = Field(
+        default="learned",
+        pattern=CONTROLLER_PATTERN,
+        description="learned | decreasing | ana | random | fixed:W (W in 1..5)",
+    )
+    wait: StrictBool = Field(
+        True, description="true: answer with the plan; false: 202 and run in the background"
+    )
+
+    @field_validator("controller")
+    @classmethod
+    def _fixed_weight(cls, v: str) -> str:
+        m = re.fullmatch(r"fixed:([0-9.]+)", v)
+        if m is not None and not 1.0 <= float(m.group(1)) <= 5.0:
+            raise ValueError(f"fixed:W needs a weight W between 1 and 5, got {m.group(1)}")
+        return v
+
+
+class RouteProperties(BaseModel):
+    travel_time_s: float
+    length_m: float
+    node_ids: list[int] = Field(description="OpenStreetMap node ids along the route")
+    node_indices: list[int] = Field(description="node indices in the compiled graph")
+
+
+class LineString(BaseModel):
+    type: Literal["LineString"] = "LineString"
+    coordinates: list[list[float]] = Field(description="[lon, lat] positions (RFC 7946)")
+
+
+class RouteFeature(BaseModel):
+    """GeoJSON Feature (RFC 7946) whose LineString follows the road geometry."""
+
+    type: Literal["Feature"] = "Feature"
+    geometry: LineString
+    properties: RouteProperties
+
+
+class Improvement(BaseModel):
+    elapsed_ms: float
+    expansions: int
+    cost_s: float
+    lower_bound_s: float
+    gap: float
+    weight: float
+
+
+class Timings(BaseModel):
+    queue_ms: float = Field(description="arrival to search start")
+    search_ms: float = Field(description="search start to search end")
+    total_ms: float = Field(description="arrival to the answer being built")
+
+
+class Plan(BaseModel):
+    plan_id: str
+    status: PlanStatus
+    origin_node: int
+    destination_node: int
+    route: RouteFeature | None
+    cost_s: float | None
+    lower_bound_s: float
+    gap: float | None
+    improvements: list[Improvement]
+    expansions: int
+    controller: str
+    policy_sha256: str | None
+    deadline_ms: int
+    timings: Timings
+
+
+class PlanLinks(BaseModel):
+    self: str
+    events: str
+
+
+class PlanAccepted(BaseModel):
+    plan_id: str
+    status: Literal["running"] = "running"
+    links: PlanLinks
+
+
+class ErrorBody(BaseModel):
+    detail: Any = Field(description="what was wrong and what is allowed")
+
+
+class PolicyInfo(BaseModel):
+    """Metadata of a policy (the active one, or one checked in a dry run)."""
+
+    model_config = ConfigDict(extra="allow")
+    sha256: str | None
+    active: bool = True
+    dry_run: bool = False
+    source: str = Field(description="where it came from: 'file', 'upload', 'none'")
+    fallback_controller: str | None = Field(
+        None, description="controller used for 'learned' while no policy is active"
+    )
+    schema_version: Any = None
+    feature_names: list[str] | None = None
+    weights: list[float] | None = None
+    trained_on: Any = None
+    activated_at: str | None = None
+    previous_sha256: str | None = None
+
+
+class Health(BaseModel):
+    status: str
+    detail: dict[str, Any] = Field(default_factory=dict)
+
+
+RESPONSES_4XX: dict[int | str, dict[str, Any]] = {
+    404: {"model": ErrorBody, "description": "unknown node, point off the network, unknown id"},
+    413: {"model": ErrorBody, "description": "request body too large"},
+    422: {"model": ErrorBody, "description": "body does not match the schema"},
+}

@@ -1,0 +1,129 @@
+"""Service settings from ``DUEROUTE_*`` environment variables (and ``dueroute serve`` flags).
+
+Nothing here is built at import time: :func:`get_settings` builds and caches the settings on
+first use, and :func:`service.app.create_app` calls it while starting, so a bad value stops the
+service at start-up with a message naming the variable — never mid-request.
+"""
+
+from __future__ import annotations
+
+import os
+from functools import lru_cache
+from pathlib import Path
+
+from pydantic import Field, SecretStr, field_validator, model_validator
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+
+def _default_workers() -> int:
+    return max(1, os.cpu_count() or 1)
+
+
+class Settings(BaseSettings):
+    """Every setting of the HTTP service; each is also the env var ``DUEROUTE_<NAME>``."""
+
+    model_config = SettingsConfigDict(env_prefix="DUEROUTE_", extra="ignore", frozen=True)
+
+    graph: str = Field(
+        default="demo", description="compiled graph (.npz) or the word 'demo' for the demo region"
+    )
+    policy: Path | None = Field(
+        default=None,
+        description="ONNX policy file to activate at start-up (default: the policy directory's "
+        "active policy, else the shipped default policy, else no policy)",
+    )
+    policy_dir: Path = Field(
+        default=Path(".dueroute/policies"),
+        description="directory where uploaded policies and the active-policy pointer persist",
+    )
+    admin_token: SecretStr | None = Field(
+        default=None,
+        description="bearer token for PUT /v1/policy and rollback; unset disables both (404)",
+    )
+    host: str = Field(default="127.0.0.1", description="address to listen on")
+    port: int = Field(default=8000, ge=0, le=65535, description="TCP port (0 picks a free one)")
+    workers: int = Field(
+        default_factory=_default_workers,
+        ge=1,
+        le=256,
+        description="searches that run at once, each in its own thread (default: CPU count)",
+    )
+    deadline_tolerance_ms: float = Field(
+        default=5.0,
+        gt=0,
+        le=1000,
+        description="an accepted request is answered by arrival + deadline_ms + this",
+    )
+    response_headroom_ms: float = Field(
+        default=2.0,
+        ge=0,
+        le=1000,
+        description="the search stops this long before the deadline to leave time to "
+        "build and send the answer",
+    )
+    min_search_ms: float = Field(
+        default=5.0,
+        ge=0,
+        description="a request that could not search at least this long before its "
+        "deadline is shed with 503 (admission control)",
+    )
+    max_deadline_ms: int = Field(
+        default=60_000, ge=1, description="largest deadline_ms a request may ask"
+    )
+    max_body_bytes: int = Field(
+        default=16_384, ge=256, description="largest request body (413 above)"
+    )
+    max_policy_bytes: int = Field(
+        default=4 * 1024 * 1024, ge=1024, description="largest policy upload in bytes (413 above)"
+    )
+    snap_max_m: float = Field(
+        default=500.0, gt=0, description="a point farther than this from every road node is refused"
+    )
+    steps: int = Field(default=20, ge=1, le=1000, description="decision steps per search")
+    background_max: int = Field(
+        default=64,
+        ge=1,
+        description="plans kept at once (running background plans + finished ones)",
+    )
+    background_ttl_s: float = Field(
+        default=300.0, gt=0, description="a finished plan is forgotten this long after it finished"
+    )
+    warmup_searches: int = Field(
+        default=3,
+        ge=0,
+        description="searches run at start-up (JIT compile) before /readyz is ready",
+    )
+    log_level: str = Field(default="info", description="debug, info, warning or error")
+    log_json: bool = Field(default=True, description="structured JSON log lines on stderr")
+
+    @field_validator("log_level")
+    @classmethod
+    def _level(cls, v: str) -> str:
+        allowed = ("debug", "info", "warning", "error")
+        if v.lower() not in allowed:
+            raise ValueError(f"log_level must be one of {', '.join(allowed)}, got {v!r}")
+        return v.lower()
+
+    @field_validator("admin_token")
+    @classmethod
+    def _token(cls, v: SecretStr | None) -> SecretStr | None:
+        if v is not None and v.get_secret_value() == "":
+            return None  # an empty variable means "not configured"
+        if v is not None and len(v.get_secret_value()) < 8:
+            raise ValueError("admin_token must be at least 8 characters (or unset)")
+        return v
+
+    @model_validator(mode="after")
+    def _consistent(self) -> Settings:
+        if self.response_headroom_ms + self.min_search_ms >= self.max_deadline_ms:
+            raise ValueError(
+                "response_headroom_ms + min_search_ms must be below max_deadline_ms "
+                f"({self.response_headroom_ms} + {self.min_search_ms} >= {self.max_deadline_ms})"
+            )
+        return self
+
+
+@lru_cache(maxsize=1)
+def get_settings() -> Settings:
+    """The settings from the environment, built once (raises ``ValidationError`` on bad values)."""
+    return Settings()
