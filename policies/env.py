@@ -1,0 +1,394 @@
+"""The metalevel MDP of weight control as a gymnasium environment.
+
+One episode is one route query searched under an expansion-budget contract cut into a fixed
+number of decision steps. The agent does not plan routes; it watches the search (the feature
+vector of :mod:`planner.features`) and picks the weight of Anytime Weighted A* for the next
+step. It is rewarded for how close the best route found so far is to the optimum, which is
+computed exactly ahead of time with ``scipy.sparse.csgraph.dijkstra``.
+
+Registered as ``dueroute/WeightControl-v0``::
+
+    env = gymnasium.make("dueroute/WeightControl-v0", graph=graph, budget_expansions=20_000)
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import gymnasium as gym
+import numpy as np
+
+from planner.controllers import WEIGHTS
+from planner.features import FEATURE_HIGH, FEATURE_LOW, FEATURE_NAMES, compute_features
+from planner.graph import RoadGraph, great_circle_m
+from planner.heuristics import largest_component_nodes
+from planner.session import Planner, Search
+from policies.export import ACTION_KINDS, action_meanings
+
+ENV_ID = "dueroute/WeightControl-v0"
+
+#: Resets redraw a query whose first (fixed-weight) step already ends the search, at most
+#: this many times, so every episode has at least one decision to make.
+MAX_REDRAWS = 50
+
+
+@dataclass(frozen=True)
+class EnvConfig:
+    """Settings of the training environment (saved with the training config of a policy)."""
+
+    budget_expansions: int = field(
+        default=20_000, metadata={"help": "expansion budget per search: the contract (expansions)"}
+    )
+    steps: int = field(
+        default=20, metadata={"help": "decision steps the contract is cut into (steps)"}
+    )
+    action_kind: str = field(
+        default="pick",
+        metadata={
+            "help": "actions: 'pick' chooses any weight of the set, 'step' moves one place "
+            "down / stays / moves up"
+        },
+    )
+    initial_weight: float = field(
+        default=2.0, metadata={"help": "weight of the first step, before any feature exists (1)"}
+    )
+    n_queries: int = field(
+        default=2000, metadata={"help": "size of the training query pool (queries)"}
+    )
+    query_seed: int = field(default=1, metadata={"help": "seed of the training query pool"})
+    short_fraction: float = field(
+        default=0.5, metadata={"help": "share of short trips in the query pool (1)"}
+    )
+    landmarks: int = field(
+        default=0,
+        metadata={
+            "help": "ALT landmarks for the heuristic, loaded or built beside the graph "
+            "(0 = great-circle bound only)"
+        },
+    )
+
+    def __post_init__(self) -> None:
+        problems = []
+        if self.budget_expansions < 1:
+            problems.append(f"budget_expansions must be >= 1, got {self.budget_expansions}")
+        if not 2 <= self.steps <= 1000:
+            problems.append(f"steps must be in 2..1000, got {self.steps}")
+        if self.action_kind not in ACTION_KINDS:
+            problems.append(f"action_kind must be one of {ACTION_KINDS}, got {self.action_kind!r}")
+        if self.initial_weight not in WEIGHTS:
+            problems.append(f"initial_weight must be one of {WEIGHTS}, got {self.initial_weight}")
+        if self.n_queries < 1:
+            problems.append(f"n_queries must be >= 1, got {self.n_queries}")
+        if not 0.0 <= self.short_fraction <= 1.0:
+            problems.append(f"short_fraction must be in [0, 1], got {self.short_fraction}")
+        if self.landmarks < 0:
+            problems.append(f"landmarks must be >= 0, got {self.landmarks}")
+        if problems:
+            raise ValueError("invalid environment config: " + "; ".join(problems))
+
+
+# --------------------------------------------------------------------------------------------
+# Queries and their exact optimal costs
+
+
+def sample_queries(
+    graph: RoadGraph,
+    n: int,
+    seed: int,
+    short_fraction: float = 0.5,
+    short_radius_fraction: float = 0.12,
+) -> np.ndarray:
+    """Draw ``n`` (origin, destination) pairs from the largest strongly connected component.
+
+    Long trips pair two uniformly drawn nodes; a short trip's destination is drawn uniformly
+    among the nodes within ``short_radius_fraction`` of the component's bounding-box diagonal
+    (great-circle distance) from its origin. Origin and destination always differ, and a route
+    exists both ways (same strong component).
+
+    Returns
+    -------
+    queries : int64[n, 2]
+    """
+    if n < 0:
+        raise ValueError(f"number of queries must be >= 0, got {n}")
+    nodes = largest_component_nodes(graph)
+    if nodes.shape[0] < 2:
+        raise ValueError(
+            f"graph {graph.name!r} has no strongly connected component with 2 or more nodes; "
+            "there is no query to draw"
+        )
+    rng = np.random.default_rng(seed)
+    lat, lon = np.asarray(graph.lat)[nodes], np.asarray(graph.lon)[nodes]
+    diagonal_m = float(great_circle_m(lat.min(), lon.min(), lat.max(), lon.max()))
+    radius_m = max(short_radius_fraction * diagonal_m, 1.0)
+    out = np.empty((n, 2), dtype=np.int64)
+    for i in range(n):
+        a = int(rng.integers(nodes.shape[0]))
+        if rng.random() < short_fraction:
+            near = np.flatnonzero(great_circle_m(lat[a], lon[a], lat, lon) <= radius_m)
+            near = near[near != a]
+            b = int(near[rng.integers(near.shape[0])]) if near.shape[0] else a
+        else:
+            b = a
+        while b == a:
+            b = int(rng.integers(nodes.shape[0]))
+        out[i] = nodes[a], nodes[b]
+    return out
+
+
+class OptimalCosts:
+    """Exact shortest travel times by ``scipy.sparse.csgraph.dijkstra``, cached per query."""
+
+    def __init__(self, graph: RoadGraph) -> None:
+        self._csr = graph.csr()
+        self._cache: dict[tuple[int, int], float] = {}
+
+    def __call__(self, origin: int, destination: int) -> float:
+        key = (int(origin), int(destination))
+        if key not in self._cache:
+            self.precompute(np.array([key]))
+        return self._cache[key]
+
+    def precompute(self, queries: np.ndarray) -> np.ndarray:
+        """float64[len(queries)]: optimal cost of each (origin, destination) row (inf: no path).
+
+        One Dijkstra per distinct origin not yet cached.
+        """
+        from scipy.sparse.csgraph import dijkstra
+
+        queries = np.asarray(queries, dtype=np.int64).reshape(-1, 2)
+        todo = sorted({int(o) for o, d in queries if (int(o), int(d)) not in self._cache})
+        for start in range(0, len(todo), 32):  # bounded memory: 32 rows of n distances
+            origins = np.array(todo[start : start + 32], dtype=np.int64)
+            dist = np.atleast_2d(dijkstra(self._csr, directed=True, indices=origins))
+            row = {int(o): i for i, o in enumerate(origins)}
+            for o, d in queries:
+                if int(o) in row:
+                    self._cache[(int(o), int(d))] = float(dist[row[int(o)], int(d)])
+        return np.array([self._cache[(int(o), int(d))] for o, d in queries])
+
+
+def quality(optimal_cost_s: float, incumbent_cost_s: float | None) -> float:
+    """Solution quality: optimal / incumbent in (0, 1], 0 before the first route.
+
+    A zero-cost optimum (origin == destination) found at zero cost has quality 1.
+    """
+    if incumbent_cost_s is None or not math.isfinite(incumbent_cost_s):
+        return 0.0
+    if incumbent_cost_s <= 0.0:
+        return 1.0
+    return float(min(1.0, optimal_cost_s / incumbent_cost_s))
+
+
+# --------------------------------------------------------------------------------------------
+# The environment
+
+
+class WeightControlEnv(gym.Env):
+    """Pick the search weight of Anytime Weighted A* at each decision step of one route query.
+
+    ``reset`` draws a query (origin, destination) from the query pool with ``self.np_random``,
+    opens a search under the expansion budget ``budget_expansions`` cut into ``steps`` decision
+    steps, and runs the first step at ``initial_weight`` (before that step no feature exists;
+    the serving controller starts the same way). A query whose first step already ends the
+    search is redrawn (up to :data:`MAX_REDRAWS` times), so each episode has a decision to make.
+    Each ``step(action)`` sets the weight of the next decision step and runs it.
+
+    Observation
+    -----------
+    ``Box(FEATURE_LOW, FEATURE_HIGH, (14,), float32)``: :func:`planner.features.compute_features`
+    of the search after the step (schema in :mod:`planner.features`):
+
+    ===  ==========================  =====================================================
+    num  name                        meaning
+    ===  ==========================  =====================================================
+    0    has_incumbent               a route has been found
+    1    quality_estimate            proven lower bound / incumbent cost (0 before a route)
+    2    contract_fraction_left      share of the expansion budget left
+    3    weight                      (weight of the step just run - 1) / 4
+    4    h_start_log                 log10(1 + h(start) s) / 4
+    5    open_size_log               log10(1 + open-list size) / 6
+    6-8  open_mean_g/h, open_min_f   open-list statistics divided by h(start)
+    9    bound_rel                   proven lower bound / h(start)
+    10   incumbent_rel               incumbent cost / h(start) (0 before a route)
+    11   improvements_log            log(1 + routes found) / 3
+    12   stale_share                 steps since the last new route / steps done
+    13   cpu_share_last_step         see below
+    ===  ==========================  =====================================================
+
+    Under an expansion budget the CPU share a step receives changes nothing about what the
+    step does, so the environment replaces the measured value (wall-clock noise) with a draw
+    from ``U(0.25, 1)``: the policy learns to ignore it instead of meeting unseen values when
+    it serves under wall-clock deadlines on a busy machine, and episodes stay reproducible.
+
+    Actions
+    -------
+    ``action_kind="pick"``: ``Discrete(6)``, action ``i`` sets weight ``WEIGHTS[i]`` =
+    1, 1.5, 2, 3, 4, 5. ``action_kind="step"``: ``Discrete(3)``, 0 moves one place down the
+    weight set, 1 keeps the weight, 2 moves one place up (clipped at the ends).
+
+    Reward
+    ------
+    The change in solution quality over the step, quality = optimal cost / incumbent cost
+    (0 before the first route), counted from 0 at the start of the episode: the first
+    reward includes what the fixed first step found, so the undiscounted return of an
+    episode equals the quality of the final route, in [0, 1].
+
+    Episode end
+    -----------
+    ``terminated`` when the search proves its route optimal (nothing left to gain);
+    ``truncated`` when the contract is spent (after ``steps - 1`` actions). The fraction of
+    the contract left is part of the observation, so the end of the contract is part of the
+    state, not an outside time limit.
+
+    Info
+    ----
+    ``quality``, ``optimal_cost_s``, ``incumbent_cost_s``, ``query_index``, ``weight``,
+    ``status`` (``running``, ``optimal`` or ``contract_spent``).
+    """
+
+    metadata: dict[str, Any] = {"render_modes": []}
+
+    def __init__(
+        self,
+        graph: RoadGraph,
+        config: EnvConfig | None = None,
+        *,
+        queries: np.ndarray | None = None,
+        planner: Planner | None = None,
+        optimal: OptimalCosts | None = None,
+        **overrides: Any,
+    ) -> None:
+        self.config = dataclasses.replace(config or EnvConfig(), **overrides)
+        cfg = self.config
+        self.graph = graph
+        if planner is None:
+            landmarks = None
+            if cfg.landmarks > 0:
+                from planner.heuristics import load_or_build_landmarks
+
+                landmarks = load_or_build_landmarks(graph, count=cfg.landmarks, progress=False)
+            planner = Planner(graph, landmarks=landmarks)
+        self.planner = planner
+        if queries is None:
+            queries = sample_queries(graph, cfg.n_queries, cfg.query_seed, cfg.short_fraction)
+        self.queries = np.asarray(queries, dtype=np.int64).reshape(-1, 2)
+        if self.queries.shape[0] == 0:
+            raise ValueError("the environment needs at least one query")
+        for o, d in self.queries:
+            graph.check_node(int(o))
+            graph.check_node(int(d))
+        self.optimal = optimal if optimal is not None else OptimalCosts(graph)
+
+        self.weights = WEIGHTS
+        self.action_meanings = action_meanings(cfg.action_kind, WEIGHTS)
+        self.action_space = gym.spaces.Discrete(len(self.action_meanings))
+        self.observation_space = gym.spaces.Box(
+            FEATURE_LOW.copy(), FEATURE_HIGH.copy(), (len(FEATURE_NAMES),), np.float32
+        )
+        self._search: Search | None = None
+        self._query_index = -1
+        self._optimal_s = math.inf
+        self._quality = 0.0
+
+    # -- helpers --
+    def _weight_after(self, action: int) -> float:
+        if self.config.action_kind == "pick":
+            return self.weights[action]
+        assert self._search is not None
+        here = int(np.argmin(np.abs(np.asarray(self.weights) - self._search.stats().weight)))
+        return self.weights[min(max(here + action - 1, 0), len(self.weights) - 1)]
+
+    def _observe(self) -> tuple[np.ndarray, dict[str, Any]]:
+        assert self._search is not None
+        stats = self._search.stats()
+        stats = dataclasses.replace(
+            stats, cpu_share_last_step=float(self.np_random.uniform(0.25, 1.0))
+        )
+        info = {
+            "quality": self._quality,
+            "optimal_cost_s": self._optimal_s,
+            "incumbent_cost_s": stats.incumbent_cost_s,
+            "query_index": self._query_index,
+            "weight": stats.weight,
+            "status": self._search.status or "running",
+        }
+        return compute_features(stats), info
+
+    def _open(self, index: int) -> None:
+        origin, destination = (int(x) for x in self.queries[index])
+        self._query_index = index
+        self._optimal_s = self.optimal(origin, destination)
+        if self._search is not None:
+            self._search.close()
+        self._search = self.planner.start(
+            origin,
+            destination,
+            budget_expansions=self.config.budget_expansions,
+            steps=self.config.steps,
+        )
+        self._search.run_step(self.config.initial_weight)
+
+    # -- gymnasium API --
+    def reset(
+        self, *, seed: int | None = None, options: dict[str, Any] | None = None
+    ) -> tuple[np.ndarray, dict[str, Any]]:
+        """Draw a query (or take ``options["query_index"]``) and run the first step.
+
+        With ``options["query_index"]`` the given query is used as is, even when its first
+        step ends the search (evaluation must not skip easy queries).
+        """
+        super().reset(seed=seed)
+        if options is not None and options.get("query_index") is not None:
+            index = int(options["query_index"])
+            if not 0 <= index < self.queries.shape[0]:
+                raise ValueError(
+                    f"query_index must be in 0..{self.queries.shape[0] - 1}, got {index}"
+                )
+            self._open(index)
+        else:
+            for _ in range(MAX_REDRAWS):
+                self._open(int(self.np_random.integers(self.queries.shape[0])))
+                assert self._search is not None
+                if not self._search.done:
+                    break
+        # Quality counts from 0 at the episode start, so the first reward includes the first
+        # step's route (see the class docstring): return == final quality.
+        self._quality = 0.0
+        return self._observe()
+
+    def step(self, action: Any) -> tuple[np.ndarray, float, bool, bool, dict[str, Any]]:
+        if self._search is None:
+            raise RuntimeError("call reset() before step()")
+        action = int(action)
+        if not self.action_space.contains(action):
+            raise ValueError(
+                f"action must be an integer in 0..{self.action_space.n - 1}, got {action}"
+            )
+        search = self._search
+        search.run_step(self._weight_after(action))
+        stats = search.stats()
+        new_quality = quality(self._optimal_s, stats.incumbent_cost_s)
+        reward = new_quality - self._quality
+        self._quality = new_quality
+        terminated = search.done and search.status == "optimal"
+        truncated = search.done and not terminated
+        obs, info = self._observe()
+        return obs, float(reward), bool(terminated), bool(truncated), info
+
+    def close(self) -> None:
+        if self._search is not None:
+            self._search.close()
+            self._search = None
+
+
+def register() -> None:
+    """Register :data:`ENV_ID` with gymnasium (idempotent)."""
+    if ENV_ID not in gym.registry:
+        gym.register(id=ENV_ID, entry_point="policies.env:WeightControlEnv")
+
+
+register()

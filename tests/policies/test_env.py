@@ -1,0 +1,141 @@
+"""The weight-control environment: gymnasium's checker, determinism, reward bookkeeping."""
+
+from __future__ import annotations
+
+import gymnasium as gym
+import networkx as nx
+import numpy as np
+import pytest
+from gymnasium.utils.env_checker import check_env
+
+from planner.controllers import WEIGHTS
+from planner.session import plan
+from policies.env import ENV_ID, OptimalCosts, WeightControlEnv, quality, sample_queries
+
+
+@pytest.fixture()
+def env(grid_graph):
+    return WeightControlEnv(grid_graph, budget_expansions=150, steps=6, n_queries=40)
+
+
+def test_passes_gymnasium_env_checker(env):
+    """gymnasium.utils.env_checker.check_env: spaces, dtypes, seeding and API contract."""
+    check_env(env, skip_render_check=True)
+
+
+def test_registered_and_made_through_gymnasium(grid_graph):
+    made = gym.make(ENV_ID, graph=grid_graph, budget_expansions=100, steps=4, n_queries=5)
+    obs, _ = made.reset(seed=0)
+    assert obs.dtype == np.float32 and made.observation_space.contains(obs)
+    made.close()
+
+
+def rollout(env, seed, actions):
+    obs, info = env.reset(seed=seed)
+    trace = [obs]
+    rewards = []
+    for a in actions:
+        obs, r, term, trunc, info = env.step(a)
+        trace.append(obs)
+        rewards.append(r)
+        if term or trunc:
+            break
+    return np.array(trace), np.array(rewards), info
+
+
+def test_same_seed_same_episode(env, grid_graph):
+    actions = [0, 5, 2, 3, 1, 4, 2]
+    a = rollout(env, 123, actions)
+    other = WeightControlEnv(grid_graph, budget_expansions=150, steps=6, n_queries=40)
+    b = rollout(other, 123, actions)
+    np.testing.assert_array_equal(a[0], b[0])
+    np.testing.assert_array_equal(a[1], b[1])
+    assert a[2]["query_index"] == b[2]["query_index"]
+
+
+def test_return_is_final_quality_and_episode_ends(env):
+    """Rewards telescope to the final quality; truncated after steps - 1 actions unless the
+    optimum is proven first (terminated)."""
+    rng = np.random.default_rng(0)
+    for seed in range(15):
+        env.reset(seed=seed)
+        total, n_actions = 0.0, 0
+        while True:
+            _, r, term, trunc, info = env.step(int(rng.integers(len(WEIGHTS))))
+            total += r
+            n_actions += 1
+            assert 0.0 <= info["quality"] <= 1.0
+            if term or trunc:
+                break
+        assert total == pytest.approx(info["quality"])
+        assert not (term and trunc)
+        if term:
+            assert info["status"] == "optimal" and info["quality"] == pytest.approx(1.0)
+        else:
+            assert info["status"] == "contract_spent" and n_actions == env.config.steps - 1
+
+
+def test_episode_matches_plan_with_the_same_weights(env, grid_graph):
+    """Training sees what serving does: always picking weight 3 after a first step at the
+    initial weight gives the same route cost as plan() with that weight sequence."""
+    pick = WEIGHTS.index(3.0)
+
+    class Sequence:
+        name, mode = "seq", "weighted"
+
+        def reset(self, seed):
+            return env.config.initial_weight
+
+        def decide(self, features, stats):
+            return 3.0
+
+    for i in range(10):
+        env.reset(options={"query_index": i})
+        term = trunc = env._search.done
+        info = {"incumbent_cost_s": env._search.stats().incumbent_cost_s}
+        while not (term or trunc):
+            _, _, term, trunc, info = env.step(pick)
+        o, d = (int(x) for x in env.queries[i])
+        res = plan(env.planner, o, d, budget_expansions=150, steps=6, controller=Sequence())
+        assert res.cost_s == info["incumbent_cost_s"]
+
+
+def test_optimal_costs_match_networkx(grid_graph):
+    """Exact optima (scipy csgraph.dijkstra) against networkx's Dijkstra on the same edges."""
+    g = nx.DiGraph()
+    for e in range(grid_graph.n_edges):
+        t, h = int(grid_graph.tail[e]), int(grid_graph.head[e])
+        w = float(grid_graph.travel_time_s[e])
+        if not g.has_edge(t, h) or g[t][h]["weight"] > w:
+            g.add_edge(t, h, weight=w)
+    queries = sample_queries(grid_graph, 12, seed=5)
+    costs = OptimalCosts(grid_graph).precompute(queries)
+    for (o, d), c in zip(queries, costs, strict=True):
+        assert c == pytest.approx(nx.dijkstra_path_length(g, int(o), int(d)), rel=1e-12)
+
+
+def test_sample_queries_are_valid_and_seeded(grid_graph):
+    q = sample_queries(grid_graph, 50, seed=9, short_fraction=0.5)
+    assert q.shape == (50, 2) and np.all(q[:, 0] != q[:, 1])
+    comp = np.asarray(grid_graph.component)
+    assert len(set(comp[q.ravel()])) == 1
+    np.testing.assert_array_equal(q, sample_queries(grid_graph, 50, seed=9, short_fraction=0.5))
+    assert not np.array_equal(q, sample_queries(grid_graph, 50, seed=10, short_fraction=0.5))
+
+
+def test_quality_definition():
+    assert quality(100.0, None) == 0.0
+    assert quality(100.0, 125.0) == pytest.approx(0.8)
+    assert quality(0.0, 0.0) == 1.0
+
+
+def test_step_actions_and_bad_input(grid_graph):
+    env = WeightControlEnv(
+        grid_graph, budget_expansions=100, steps=5, n_queries=5, action_kind="step"
+    )
+    assert env.action_space.n == 3
+    env.reset(seed=0)
+    with pytest.raises(ValueError, match="action must be an integer in 0..2"):
+        env.step(7)
+    with pytest.raises(ValueError, match="invalid environment config"):
+        WeightControlEnv(grid_graph, steps=1)
