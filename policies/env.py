@@ -364,10 +364,9 @@ class WeightControlEnv(gym.Env):
         if self._search is None:
             raise RuntimeError("call reset() before step()")
         action = int(action)
-        if not self.action_space.contains(action):
-            raise ValueError(
-                f"action must be an integer in 0..{self.action_space.n - 1}, got {action}"
-            )
+        n_actions = len(self.action_meanings)
+        if not 0 <= action < n_actions:
+            raise ValueError(f"action must be an integer in 0..{n_actions - 1}, got {action}")
         search = self._search
         search.run_step(self._weight_after(action))
         stats = search.stats()
