@@ -339,14 +339,11 @@ class Planner:
         )
 
     def warm_up(self) -> None:
-        """Compile (or load from the numba cache) the kernel before the first timed request."""
-        if self.n_nodes >= 2:
-            s = self.start(0, 0 if self.n_nodes < 2 else 1, budget_expansions=1, steps=1)
-            if not s.done:
-                s.run_step(1.0)
-        # the kernel signature does not depend on the graph: a same-node query compiles nothing,
-        # so run a tiny query on a private 2-node graph to be sure
+        """Compile (or load from the numba cache) every kernel and build the component DAG, so
+        the first timed request pays for neither."""
         _warm_kernel()
+        if self.n_nodes:
+            self._condensation()
 
     def start(
         self,
@@ -422,14 +419,15 @@ def _warm_kernel() -> None:
             lat=lat,
             lon=lon,
             osm_id=np.arange(3, dtype=np.int64),
-            component=np.array([0, 0, 0], dtype=np.int32),
+            component=np.array([0, 1, 2], dtype=np.int32),
             geom_indptr=np.zeros(3, dtype=np.int64),
             geom_lat=np.zeros(0),
             geom_lon=np.zeros(0),
         )
-        s = Planner(graph).start(0, 2, budget_expansions=10, steps=1)
-        while not s.done:
-            s.run_step(1.0)
+        tiny = Planner(graph)
+        plan(tiny, 0, 2, budget_expansions=10, steps=2, controller="decreasing")
+        plan(tiny, 0, 2, budget_expansions=10, steps=2, controller="ana")
+        plan(tiny, 2, 0, budget_expansions=10, steps=2)  # no route: component DAG walk
         _WARMED = True
 
 
@@ -793,8 +791,9 @@ class Search:
             size, expansions, min_f, mean_g, mean_h = 0, self._expansions, math.inf, 0.0, 0.0
             touched, reopened = 0, 0
         if self._budget is not None:
-            left: int | None = max(0, self._budget - expansions)
-            frac = left / self._budget if self._budget else 0.0
+            spare = max(0, self._budget - expansions)
+            frac = spare / self._budget
+            left: int | None = spare
             if self.deadline_ms is None and self.budget_expansions is None:
                 left = None  # the safety cap is not a contract
         else:

@@ -1,0 +1,104 @@
+"""Smoke runs of ``dueroute route`` on a tiny graph (CLI smoke tests, common practice), with
+costs checked against scipy ``csgraph.dijkstra``."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+from scipy.sparse.csgraph import dijkstra
+
+from planner.graph import save_graph
+from service.cli import main
+from tests.planner.test_kernel import grid_graph
+
+
+@pytest.fixture(scope="module")
+def graph_file(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, object]:
+    g = grid_graph(12, seed=1)
+    path = save_graph(g, tmp_path_factory.mktemp("route") / "grid.npz")
+    return path, g
+
+
+def test_route_single_query_json(graph_file, capsys) -> None:
+    """One query with --json prints one object with the documented keys and the scipy
+    ``csgraph.dijkstra`` optimum."""
+    path, g = graph_file
+    assert (
+        main(
+            ["route", str(path), "--from", "0", "--to", "143", "--controller", "fixed:1", "--json"]
+        )
+        == 0
+    )
+    lines = capsys.readouterr().out.strip().splitlines()
+    assert len(lines) == 1
+    d = json.loads(lines[0])
+    for key in (
+        "origin",
+        "destination",
+        "status",
+        "cost_s",
+        "lower_bound_s",
+        "gap",
+        "nodes",
+        "expansions",
+        "improvements",
+    ):
+        assert key in d
+    assert d["status"] == "optimal"
+    assert d["cost_s"] == pytest.approx(dijkstra(g.csr(), indices=0)[143], rel=1e-9)
+    assert d["nodes"][0] == 0 and d["nodes"][-1] == 143
+
+
+def test_route_queries_csv_and_coordinates(graph_file, tmp_path, capsys) -> None:
+    """A queries CSV gives one JSON line per query; LAT,LON endpoints snap to the nearest node."""
+    path, g = graph_file
+    q = tmp_path / "q.csv"
+    q.write_text("origin,destination\n0,143\n5,5\n\n17,100\n")
+    assert main(["route", str(path), "--queries", str(q), "--budget", "50", "--json"]) == 0
+    rows = [json.loads(x) for x in capsys.readouterr().out.strip().splitlines()]
+    assert [(r["origin"], r["destination"]) for r in rows] == [(0, 143), (5, 5), (17, 100)]
+    assert all(r["expansions"] <= 50 for r in rows)
+    lat, lon = float(g.lat[7]), float(g.lon[7])
+    assert (
+        main(["route", str(path), "--from", f"{lat},{lon}", "--to", "7", "--deadline-ms", "50"])
+        == 0
+    )
+    assert "7 -> 7: optimal" in capsys.readouterr().out
+
+
+@pytest.mark.parametrize(
+    ("csv_text", "message"),
+    [
+        ("from,to\n0,1\n", "line 1 must be the header 'origin,destination'"),
+        ("origin,destination\n0,1\n2,x\n", "line 3: origin and destination must be integer"),
+        ("origin,destination\n0,999\n", "line 2: node 999 is not in the graph"),
+        ("origin,destination\n", "no queries after the header"),
+    ],
+)
+def test_route_bad_csv_names_the_line(graph_file, tmp_path, capsys, csv_text, message) -> None:
+    path, _ = graph_file
+    q = tmp_path / "bad.csv"
+    q.write_text(csv_text)
+    assert main(["route", str(path), "--queries", str(q)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith("dueroute: error:") and message in err
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["--from", "0"], "--from and --to go together"),
+        ([], "give --from NODE --to NODE"),
+        (["--from", "0", "--to", "500"], "valid node indices are 0..143"),
+        (["--from", "0", "--to", "1", "--controller", "zigzag"], "unknown controller 'zigzag'"),
+        (["--from", "0", "--to", "1", "--steps", "0"], "steps must be between 1"),
+        (["--from", "0", "--to", "1", "--deadline-ms", "0"], "deadline_ms must be > 0"),
+        (["--from", "a,b", "--to", "1"], "expected a node index or LAT,LON"),
+    ],
+)
+def test_route_bad_arguments(graph_file, capsys, argv, message) -> None:
+    path, _ = graph_file
+    assert main(["route", str(path), *argv]) == 2
+    assert message in capsys.readouterr().err
