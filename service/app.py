@@ -180,7 +180,8 @@ async def _too_large(send: Send, size: int, limit: int) -> None:
 
 
 def _validation_message(exc: RequestValidationError, settings: Settings) -> str:
-    parts = []
+    parts: list[str] = []
+    places: dict[str, tuple[int, str]] = {}
     for err in exc.errors():
         loc = [str(p) for p in err.get("loc", ()) if p != "body"]
         kind = str(err.get("type", ""))
@@ -195,14 +196,15 @@ def _validation_message(exc: RequestValidationError, settings: Settings) -> str:
         # Union members add their class name to the location; keep only field names.
         loc = [p for p in loc if p not in ("NodeRef", "PointRef") and not p.startswith("function")]
         where = ".".join(loc) or "body"
-        msg = str(err.get("msg", "invalid value"))
+        msg = "field required" if kind == "missing" else str(err.get("msg", "invalid value"))
         field = next((p for p in loc if p in _ALLOWED), None)
         if field in ("origin", "destination"):
-            # One line per place, not one per union member.
-            given = json.dumps(err.get("input"), default=str)[:80]
-            text = f"{field}: {given} is not a valid place (allowed: {_ALLOWED[field]})"
-            if text not in parts:
-                parts.append(text)
+            # One line per place, not one per union member: keep the most specific error
+            # (a bad value beats "missing"/"extra" errors, which come from the other member).
+            rank = 1 if kind in ("missing", "extra_forbidden", "model_type", "dict_type") else 0
+            best = places.get(field)
+            if best is None or rank < best[0]:
+                places[field] = (rank, f"{where}: {msg}")
             continue
         hint = (
             _ALLOWED[field].replace("{max_deadline_ms}", str(settings.max_deadline_ms))
@@ -210,12 +212,12 @@ def _validation_message(exc: RequestValidationError, settings: Settings) -> str:
             else None
         )
         text = f"{where}: {msg}"
-        if kind == "missing":
-            text = f"{where}: field required"
         if hint:
             text += f" (allowed: {hint})"
         if text not in parts:
             parts.append(text)
+    for field, (_, text) in places.items():
+        parts.append(f"{text} (allowed for {field}: {_ALLOWED[field]})")
     return "; ".join(parts) or "invalid request"
 
 
@@ -238,9 +240,10 @@ def warm_up(state: AppState) -> None:
 
     graph = load_graph(resolve_graph_path(settings.graph))
     t_graph = time.perf_counter()
-    landmarks = load_or_build_landmarks(graph, progress=False)
+    landmarks = load_or_build_landmarks(graph, progress=False) if settings.landmarks else None
     t_lm = time.perf_counter()
     planner = Planner(graph, landmarks=landmarks)
+    planner.warm_up()
     engine = PlanningEngine(graph, planner, steps=settings.steps)
     searches = _warmup_searches(engine, state, settings.warmup_searches)
     t_done = time.perf_counter()
@@ -249,6 +252,7 @@ def warm_up(state: AppState) -> None:
         "nodes": graph.n_nodes,
         "edges": graph.n_edges,
         "load_graph_ms": round((t_graph - t0) * 1000.0, 1),
+        "landmarks": landmarks.count if landmarks is not None else 0,
         "landmarks_ms": round((t_lm - t_graph) * 1000.0, 1),
         "warmup_ms": round((t_done - t_lm) * 1000.0, 1),
         "warmup_searches": searches,
@@ -279,7 +283,7 @@ def _warmup_searches(engine: PlanningEngine, state: AppState, count: int) -> int
         for _ in range(count):
             o, d = (int(x) for x in rng.choice(nodes, size=2))
             controller = engine.make_controller(spec, active.policy)
-            plan(engine.planner, o, d, deadline_ms=200.0, controller=controller, steps=engine.steps)
+            plan(engine.planner, o, d, deadline_ms=50.0, controller=controller, steps=engine.steps)
             done += 1
     return done
 

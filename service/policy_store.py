@@ -81,28 +81,19 @@ def _now_iso() -> str:
 
 
 def policy_metadata(policy: Any) -> dict[str, Any]:
-    """JSON-safe metadata of a loaded policy (schema, features, weights, provenance)."""
-    raw: dict[str, Any] = {}
-    for attr in ("metadata", "meta"):
-        value = getattr(policy, attr, None)
-        if isinstance(value, dict):
-            raw.update(value)
-    if hasattr(policy, "to_dict"):
-        with contextlib.suppress(Exception):
-            raw.update(policy.to_dict())
-    for key in ("schema_version", "feature_names", "weights", "trained_on", "name"):
-        value = getattr(policy, key, None)
-        if value is not None and key not in raw:
-            raw[key] = value
-    return json.loads(json.dumps(raw, default=_jsonable))
-
-
-def _jsonable(obj: Any) -> Any:
-    if hasattr(obj, "tolist"):
-        return obj.tolist()
-    if isinstance(obj, (set, tuple)):
-        return list(obj)
-    return str(obj)
+    """JSON-safe metadata of a loaded :class:`policies.runtime.Policy`."""
+    info = dict(policy.info())
+    info.pop("path", None)  # a server-side path says nothing useful to a client
+    meta = policy.metadata
+    trained: dict[str, Any] = {
+        "graph_name": meta.get("graph_name"),
+        "graph_fingerprint": meta.get("graph_fingerprint"),
+        "created_utc": meta.get("created_utc"),
+    }
+    with contextlib.suppress(ValueError, TypeError):
+        trained["training_config"] = json.loads(meta.get("training_config", "null"))
+    info["trained_on"] = trained
+    return info
 
 
 def check_bytes(data: bytes) -> list[str]:
@@ -112,11 +103,14 @@ def check_bytes(data: bytes) -> list[str]:
     return list(check_policy(data))
 
 
-def load_bytes(data: bytes, path: Path) -> Any:
-    from policies.runtime import load_policy
+def load_bytes(data: bytes) -> Any:
+    """A ready :class:`policies.runtime.Policy` (raises :class:`PolicyRejected`)."""
+    from policies.runtime import InvalidPolicy, load_policy
 
-    del data  # the file at ``path`` holds the same bytes
-    return load_policy(path)
+    try:
+        return load_policy(data)
+    except InvalidPolicy as exc:
+        raise PolicyRejected(exc.problems) from None
 
 
 class PolicyStore:
@@ -203,12 +197,7 @@ class PolicyStore:
         if problems:
             raise PolicyRejected(problems)
         sha = hashlib.sha256(data).hexdigest()
-        tmp = self._write_file(data, sha, keep=False)
-        try:
-            policy = load_bytes(data, tmp)
-        finally:
-            if tmp.name.startswith(".dry-"):
-                tmp.unlink(missing_ok=True)
+        policy = load_bytes(data)
         snap = ActivePolicy(sha, policy, policy_metadata(policy), source="upload")
         return snap.info(active=False, dry_run=True)
 
@@ -231,7 +220,7 @@ class PolicyStore:
                     self._history.pop()
                     log.warning("skipping refused policy in history", extra={"sha256": sha})
                     continue
-                policy = load_bytes(data, path)
+                policy = load_bytes(data)
                 self._history.pop()
                 self._active = ActivePolicy(
                     sha, policy, policy_metadata(policy), source="rollback", activated_at=_now_iso()
@@ -246,8 +235,8 @@ class PolicyStore:
         if problems:
             raise PolicyRejected(problems)
         sha = hashlib.sha256(data).hexdigest()
-        path = self._write_file(data, sha, keep=True)
-        policy = load_bytes(data, path)
+        policy = load_bytes(data)
+        self._write_file(data, sha)
         snap = ActivePolicy(
             sha, policy, policy_metadata(policy), source=source, activated_at=_now_iso()
         )
@@ -264,15 +253,13 @@ class PolicyStore:
     def _file(self, sha: str) -> Path:
         return self.files_dir / f"{sha}.onnx"
 
-    def _write_file(self, data: bytes, sha: str, *, keep: bool) -> Path:
+    def _write_file(self, data: bytes, sha: str) -> Path:
         self.files_dir.mkdir(parents=True, exist_ok=True)
         final = self._file(sha)
-        if keep and final.is_file():
+        if final.is_file():
             return final
-        tmp = self.files_dir / f".{'tmp' if keep else 'dry'}-{sha}-{threading.get_ident()}.onnx"
+        tmp = self.files_dir / f".tmp-{sha}-{threading.get_ident()}.onnx"
         tmp.write_bytes(data)
-        if not keep:
-            return tmp
         os.replace(tmp, final)
         return final
 

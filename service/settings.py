@@ -74,10 +74,17 @@ class Settings(BaseSettings):
         default=16_384, ge=256, description="largest request body (413 above)"
     )
     max_policy_bytes: int = Field(
-        default=4 * 1024 * 1024, ge=1024, description="largest policy upload in bytes (413 above)"
+        default=5_000_000,  # the limit of policies.runtime.MAX_POLICY_BYTES
+        ge=1024,
+        description="largest policy upload in bytes (413 above)",
     )
     snap_max_m: float = Field(
         default=500.0, gt=0, description="a point farther than this from every road node is refused"
+    )
+    landmarks: bool = Field(
+        default=True,
+        description="use ALT landmarks (built beside the graph on first use); false: the "
+        "great-circle bound alone",
     )
     steps: int = Field(default=20, ge=1, le=1000, description="decision steps per search")
     background_max: int = Field(

@@ -1,0 +1,296 @@
+"""The plans API in-process (FastAPI TestClient): answers, geometry, errors, background plans."""
+
+from __future__ import annotations
+
+import json
+import math
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+from scipy.sparse.csgraph import dijkstra
+
+from planner.graph import load_graph
+
+PLAN = "/v1/plans"
+
+
+def body(o: int | dict, d: int | dict, deadline_ms: int = 200, **kw: object) -> dict:
+    place = lambda p: {"node": p} if isinstance(p, int) else p  # noqa: E731
+    return {"origin": place(o), "destination": place(d), "deadline_ms": deadline_ms, **kw}
+
+
+def test_plan_is_optimal_and_geojson_follows_the_roads(make_client, tiny_graph_path: Path):
+    """Route cost checked against scipy ``csgraph.dijkstra``; the Feature against RFC 7946
+    (section 3.2 Feature, 3.1.4 LineString: >= 2 positions, [lon, lat] order), with geometry
+    equal to the concatenated ``RoadGraph.edge_coords`` of the route's edges."""
+    client = make_client(tiny_graph_path)
+    graph = load_graph(tiny_graph_path)
+    r = client.post(PLAN, json=body(0, 3, controller="decreasing"))
+    assert r.status_code == 200, r.text
+    plan = r.json()
+    assert plan["status"] == "optimal"
+    exact = dijkstra(graph.csr(), indices=0)[3]
+    assert plan["cost_s"] == pytest.approx(exact, rel=1e-9)
+    assert plan["lower_bound_s"] == pytest.approx(exact, rel=1e-9)
+    assert plan["gap"] == 0.0
+    feat = plan["route"]
+    assert feat["type"] == "Feature" and feat["geometry"]["type"] == "LineString"
+    props = feat["properties"]
+    nodes = props["node_indices"]
+    assert nodes[0] == 0 and nodes[-1] == 3
+    assert props["node_ids"] == [int(graph.osm_id[n]) for n in nodes]
+    # rebuild the geometry edge by edge with edge_coords (cheapest edge between each pair)
+    coords: list[list[float]] = []
+    edges = []
+    for a, b in zip(nodes[:-1], nodes[1:], strict=True):
+        cand = [e for e in range(graph.indptr[a], graph.indptr[a + 1]) if graph.head[e] == b]
+        e = min(cand, key=lambda e: graph.travel_time_s[e])
+        edges.append(e)
+        pts = [list(p) for p in graph.edge_coords(e)]
+        coords.extend(pts if not coords else pts[1:])
+    assert feat["geometry"]["coordinates"] == coords
+    assert len(coords) >= 2
+    assert all(-180 <= x <= 180 and -90 <= y <= 90 for x, y in coords)
+    assert props["travel_time_s"] == pytest.approx(plan["cost_s"])
+    assert props["length_m"] == pytest.approx(float(np.sum(graph.length_m[edges])))
+    t = plan["timings"]
+    assert t["queue_ms"] >= 0 and t["search_ms"] >= 0 and t["total_ms"] >= t["search_ms"]
+    assert plan["controller"] == "decreasing" and plan["policy_sha256"] is None
+
+
+def test_points_snap_and_learned_falls_back_without_a_policy(make_client, tiny_graph_path):
+    client = make_client(tiny_graph_path)
+    r = client.post(PLAN, json=body({"lat": 45.0001, "lon": 7.0001}, {"lat": 45.01, "lon": 7.02}))
+    assert r.status_code == 200, r.text
+    plan = r.json()
+    assert plan["origin_node"] == 0 and plan["destination_node"] == 3
+    assert plan["controller"] == "learned (fallback: decreasing)"
+    info = client.get("/v1/policy").json()
+    assert info["sha256"] is None and info["fallback_controller"] == "decreasing"
+
+
+def test_no_route_and_same_node(make_client, tiny_graph_path):
+    """Hand-checked facts of the tiny graph (tests/conftest.py): 7 is unreachable from 0."""
+    client = make_client(tiny_graph_path)
+    r = client.post(PLAN, json=body(0, 7))
+    assert r.status_code == 200
+    assert r.json()["status"] == "no_route" and r.json()["route"] is None
+    r = client.post(PLAN, json=body(2, 2))
+    assert r.json()["status"] == "optimal" and r.json()["cost_s"] == 0.0
+    assert len(r.json()["route"]["geometry"]["coordinates"]) == 2  # RFC 7946: >= 2 positions
+
+
+@pytest.mark.parametrize(
+    ("payload", "status", "words"),
+    [
+        (body(0, 99), 404, "valid node indices are 0..9"),
+        (body({"lat": 10.0, "lon": 10.0}, 3), 404, "the limit is 500 m"),
+        (body(0, 3, deadline_ms=0), 422, "1..60000"),
+        (body(0, 3, deadline_ms=-5), 422, "1..60000"),
+        (body(0, 3, deadline_ms=60_001), 422, "1..60000"),
+        (body(0, 3, deadline_ms=12.5), 422, "integer number of milliseconds"),
+        (body(0, 3, deadline_ms="10"), 422, "integer number of milliseconds"),
+        (body({"node": "x"}, 3), 422, "allowed for origin"),
+        (body({"lat": 91.0, "lon": 0.0}, 3), 422, "less than or equal to 90"),
+        (body(0, 3, controller="fixed:9"), 422, "between 1 and 5"),
+        (body(0, 3, controller="greedy"), 422, "one of learned, decreasing"),
+        (body(0, 3, wait="yes"), 422, "true or false"),
+        ({"origin": {"node": 0}, "deadline_ms": 5}, 422, "destination: field required"),
+        ([1, 2, 3], 422, "valid dictionary"),
+    ],
+)
+def test_bad_input_says_what_is_allowed(make_client, tiny_graph_path, payload, status, words):
+    client = make_client(tiny_graph_path)
+    r = client.post(PLAN, json=payload)
+    assert r.status_code == status, r.text
+    detail = r.json()["detail"]
+    assert isinstance(detail, str) and words in detail, detail
+
+
+def test_malformed_json_and_huge_body(make_client, tiny_graph_path):
+    """Status codes from RFC 9110 (413 Content Too Large) and the API contract (422)."""
+    client = make_client(tiny_graph_path, max_body_bytes=1024)
+    r = client.post(
+        PLAN, content=b'{"origin": {"node": 0', headers={"content-type": "application/json"}
+    )
+    assert r.status_code == 422 and "not valid JSON" in r.json()["detail"]
+    r = client.post(PLAN, content=b"x" * 5000, headers={"content-type": "application/json"})
+    assert r.status_code == 413 and "limit for this endpoint is 1024 bytes" in r.json()["detail"]
+
+    def chunks():  # no Content-Length: the limit is enforced while reading
+        for _ in range(10):
+            yield b" " * 200
+
+    r = client.post(PLAN, content=chunks(), headers={"content-type": "application/json"})
+    assert r.status_code == 413, r.text
+
+
+def test_deadline_above_configured_maximum(make_client, tiny_graph_path):
+    client = make_client(tiny_graph_path, max_deadline_ms=1000)
+    r = client.post(PLAN, json=body(0, 3, deadline_ms=5000))
+    assert r.status_code == 422 and "1..1000" in r.json()["detail"]
+
+
+def _events(text: str) -> list[tuple[str, dict]]:
+    """Parse a text/event-stream body (WHATWG HTML, 'Server-sent events' section)."""
+    out = []
+    for block in text.strip().split("\n\n"):
+        fields = dict(
+            line.split(": ", 1) for line in block.splitlines() if line and not line.startswith(":")
+        )
+        if "event" in fields:
+            out.append((fields["event"], json.loads(fields["data"])))
+    return out
+
+
+def test_background_plan_poll_stream_and_final(make_client, grid_graph_path):
+    """SSE framing per the WHATWG HTML 'Server-sent events' section; improvements must arrive
+    in the order found (costs strictly decreasing, elapsed non-decreasing), then ``final``."""
+    client = make_client(grid_graph_path)
+    r = client.post(
+        PLAN, json=body(0, 89_999, deadline_ms=300, controller="decreasing", wait=False)
+    )
+    assert r.status_code == 202, r.text
+    acc = r.json()
+    url = r.headers["location"]
+    assert url == f"/v1/plans/{acc['plan_id']}" and acc["links"]["events"] == url + "/events"
+    current = client.get(url).json()
+    assert current["status"] in ("running", "optimal", "contract_spent")
+    with client.stream("GET", url + "/events") as resp:
+        assert resp.headers["content-type"].startswith("text/event-stream")
+        events = _events(resp.read().decode())
+    kinds = [k for k, _ in events]
+    assert kinds[-1] == "final" and set(kinds[:-1]) <= {"improvement"}
+    improvements = [d for k, d in events if k == "improvement"]
+    final = events[-1][1]
+    assert len(improvements) >= 1
+    costs = [i["cost_s"] for i in improvements]
+    assert all(a > b for a, b in zip(costs, costs[1:], strict=False))
+    assert [i["elapsed_ms"] for i in improvements] == sorted(i["elapsed_ms"] for i in improvements)
+    assert costs[-1] == pytest.approx(final["cost_s"])
+    assert [i["cost_s"] for i in final["improvements"]] == costs
+    assert final["status"] in ("optimal", "contract_spent")
+    assert client.get(url).json()["status"] == final["status"]
+    # a finished plan: DELETE returns its final status
+    assert client.delete(url).json()["status"] == final["status"]
+
+
+def test_delete_cancels_a_running_plan(make_client, grid_graph_path):
+    client = make_client(grid_graph_path, workers=1)
+    r = client.post(
+        PLAN, json=body(0, 89_999, deadline_ms=20_000, controller="fixed:1", wait=False)
+    )
+    url = r.headers["location"]
+    time.sleep(0.05)
+    t0 = time.perf_counter()
+    r = client.delete(url)
+    assert r.status_code == 200
+    assert r.json()["status"] in ("cancelled", "optimal")
+    assert time.perf_counter() - t0 < 5.0
+    assert client.get(url).json()["status"] == r.json()["status"]
+
+
+def test_unknown_plan_ids_are_404(make_client, tiny_graph_path):
+    client = make_client(tiny_graph_path)
+    for method in ("get", "delete"):
+        r = getattr(client, method)(f"{PLAN}/nope")
+        assert r.status_code == 404 and "no plan with id 'nope'" in r.json()["detail"]
+    assert client.get(f"{PLAN}/nope/events").status_code == 404
+
+
+def test_background_plans_expire_and_the_store_is_bounded(make_client, grid_graph_path):
+    client = make_client(grid_graph_path, background_max=2, background_ttl_s=0.3, workers=2)
+    long = body(0, 89_999, deadline_ms=10_000, controller="fixed:1", wait=False)
+    a = client.post(PLAN, json=long).headers["location"]
+    b = client.post(PLAN, json=long).headers["location"]
+    r = client.post(PLAN, json=long)
+    assert r.status_code == 503, r.text
+    assert "plan store is full" in r.json()["detail"] and int(r.headers["retry-after"]) >= 1
+    for url in (a, b):
+        client.delete(url)
+    # finished plans make room (oldest first) ...
+    c = client.post(PLAN, json=body(0, 1, wait=False))
+    assert c.status_code == 202
+    # ... and expire after the TTL
+    time.sleep(0.5)
+    for url in (a, b, c.headers["location"]):
+        assert client.get(url).status_code == 404
+
+
+def test_health_ready_metrics_and_openapi(make_client, tiny_graph_path):
+    client = make_client(tiny_graph_path)
+    assert client.get("/healthz").json()["status"] == "alive"
+    ready = client.get("/readyz").json()
+    assert ready["status"] == "ready" and ready["detail"]["warmup_searches"] >= 1
+    client.post(PLAN, json=body(0, 3))
+    client.post(PLAN, json=body(0, 99))
+    text = client.get("/metrics").text
+    assert 'dueroute_plans_total{outcome="optimal"} 1.0' in text
+    assert 'dueroute_plans_total{outcome="rejected"} 1.0' in text
+    assert "dueroute_plan_latency_seconds_bucket" in text and "dueroute_plan_gap_bucket" in text
+    assert 'dueroute_active_policy_info{fallback_controller="decreasing"' in text
+    spec = client.get("/openapi.json").json()
+    assert {"/v1/plans", "/v1/plans/{plan_id}", "/v1/plans/{plan_id}/events", "/v1/policy"} <= set(
+        spec["paths"]
+    )
+
+
+def test_two_apps_side_by_side_keep_separate_metrics(make_client, tiny_graph_path):
+    a = make_client(tiny_graph_path)
+    b = make_client(tiny_graph_path)
+    a.post(PLAN, json=body(0, 3))
+    assert 'outcome="optimal"} 1.0' in a.get("/metrics").text
+    assert 'outcome="optimal"}' not in b.get("/metrics").text
+
+
+def test_settings_fail_loudly(tmp_path):
+    from pydantic import ValidationError
+
+    from service.settings import Settings
+
+    with pytest.raises(ValidationError, match="workers"):
+        Settings(workers=0)
+    with pytest.raises(ValidationError, match="log_level must be one of"):
+        Settings(log_level="loud")
+    with pytest.raises(ValidationError, match="admin_token must be at least 8"):
+        Settings(admin_token="short")
+
+
+def test_settings_from_environment(monkeypatch):
+    from service.settings import Settings, get_settings
+
+    monkeypatch.setenv("DUEROUTE_WORKERS", "3")
+    monkeypatch.setenv("DUEROUTE_DEADLINE_TOLERANCE_MS", "7.5")
+    s = Settings()
+    assert s.workers == 3 and s.deadline_tolerance_ms == 7.5
+    get_settings.cache_clear()
+    try:
+        assert get_settings().workers == 3
+        assert get_settings() is get_settings()
+    finally:
+        get_settings.cache_clear()
+    monkeypatch.setenv("DUEROUTE_WORKERS", "many")
+    with pytest.raises(Exception, match="workers"):
+        Settings()
+
+
+def test_route_feature_matches_edge_coords_on_the_grid(grid_graph_path):
+    """Vectorised geometry equals the per-edge ``RoadGraph.edge_coords`` concatenation."""
+    from planner.session import Planner, plan
+    from service.jobs import route_feature
+
+    graph = load_graph(grid_graph_path)
+    result = plan(Planner(graph), 5, 40_000, budget_expansions=200_000, controller="fixed:2")
+    feat = route_feature(graph, result.route, result.route_edges)
+    assert feat is not None
+    coords: list[list[float]] = []
+    for e in result.route_edges:
+        pts = [list(p) for p in graph.edge_coords(int(e))]
+        coords.extend(pts if not coords else pts[1:])
+    assert feat["geometry"]["coordinates"] == coords
+    assert feat["properties"]["travel_time_s"] == pytest.approx(result.cost_s)
+    assert math.isclose(
+        feat["properties"]["length_m"], float(np.sum(graph.length_m[result.route_edges]))
+    )
