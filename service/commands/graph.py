@@ -32,6 +32,7 @@ def register(sub: Any) -> argparse.ArgumentParser:
     parser = sub.add_parser("graph", help="import, inspect and draw road graphs")
     graph_sub = parser.add_subparsers(dest="graph_command", required=True, metavar="ACTION")
     parser.graph_subparsers = graph_sub
+    # `graph generate` (the fictional demo region) is added by demo_data.cli.register_generate.
 
     imp = graph_sub.add_parser(
         "import",
@@ -260,10 +261,9 @@ def road_segments(graph: Any) -> tuple[np.ndarray, np.ndarray]:
     if int(kk.sum()):
         # interior point j of edge e goes to start[e] + 1 + j
         owner = np.repeat(np.arange(len(edges)), kk)
-        src = np.concatenate(
-            [np.arange(a, b) for a, b in zip(gptr[edges], gptr[edges + 1], strict=True) if b > a]
-        )
-        dst = start[:-1][owner] + 1 + (src - np.repeat(gptr[edges], kk))
+        offset = np.arange(int(kk.sum())) - np.repeat(np.cumsum(kk) - kk, kk)  # j within edge
+        src = gptr[edges][owner] + offset
+        dst = start[:-1][owner] + 1 + offset
         lat[dst] = graph.geom_lat[src]
         lon[dst] = graph.geom_lon[src]
     is_last = np.zeros(total, dtype=bool)
