@@ -1,0 +1,159 @@
+"""Smoke runs of ``dueroute bench search`` on a tiny graph (no timing assertions)."""
+
+from __future__ import annotations
+
+import json
+import math
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from planner.graph import build_graph, great_circle_m, save_graph
+from service.cli import main
+
+RATIO_KEYS = (
+    "kernel_vs_scipy_rate",
+    "alt_expansion_reduction",
+    "setup_us_large",
+    "speedup_vs_networkx",
+    "hilbert_vs_input_rate",
+)
+
+
+def grid_graph_file(path: Path, side: int = 9, seed: int = 0) -> Path:
+    """A small two-way street grid with one one-way dead end, osm ids shuffled."""
+    rng = np.random.default_rng(seed)
+    n = side * side
+    ii, jj = np.meshgrid(np.arange(side), np.arange(side), indexing="ij")
+    lat = (45.0 + ii * 0.001 + rng.uniform(-2e-4, 2e-4, (side, side))).ravel()
+    lon = (7.0 + jj * 0.0014 + rng.uniform(-2e-4, 2e-4, (side, side))).ravel()
+    idx = np.arange(n).reshape(side, side)
+    a = np.concatenate([idx[:-1, :].ravel(), idx[:, :-1].ravel()])
+    b = np.concatenate([idx[1:, :].ravel(), idx[:, 1:].ravel()])
+    tail = np.concatenate([a, b, [0]])
+    head = np.concatenate([b, a, [n]])  # node n: reachable, but nothing leaves it
+    lat = np.append(lat, 44.999)
+    lon = np.append(lon, 6.999)
+    m = tail.shape[0]
+    length = great_circle_m(lat[tail], lon[tail], lat[head], lon[head]) * rng.uniform(1, 1.3, m)
+    graph = build_graph(
+        lat=lat,
+        lon=lon,
+        osm_id=rng.permutation(n + 1).astype(np.int64) + 1000,
+        tail=tail,
+        head=head,
+        length_m=length,
+        speed_kph=rng.choice([30.0, 50.0, 90.0], m).astype(np.float32),
+        road_class=np.zeros(m, dtype=np.int8),
+        speed_source=np.ones(m, dtype=np.int8),
+        meta={"name": "bench-grid"},
+    )
+    return save_graph(graph, path)
+
+
+def run_bench(capsys: pytest.CaptureFixture[str], *argv: str) -> tuple[int, str, str]:
+    code = main(["bench", "search", *argv])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def test_bench_search_json_smoke(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """Every ratio key is a positive number; the optimal costs agree with networkx
+    ``astar_path`` (reference library) and ALT agrees with the great-circle search."""
+    pytest.importorskip("networkx")
+    graph = grid_graph_file(tmp_path / "grid.npz")
+    code, out, _ = run_bench(
+        capsys,
+        str(graph),
+        "--queries",
+        "6",
+        "--long-trips",
+        "3",
+        "--landmarks",
+        "4",
+        "--networkx-queries",
+        "2",
+        "--large",
+        str(graph),
+        "--json",
+    )
+    assert code == 0
+    report = json.loads(out)
+    for key in RATIO_KEYS:
+        value = report[key]
+        assert isinstance(value, (int, float)) and math.isfinite(value) and value > 0, key
+    assert report["kernel"]["queries"] == 6 and report["kernel"]["not_optimal"] == 0
+    assert report["scipy"]["settled"] > 0
+    assert report["networkx"]["costs_match"] is True
+    assert report["alt"]["worst_relative_cost_difference"] <= 1e-9
+    assert report["alt"]["landmarks"] == 4
+    assert (tmp_path / "grid.landmarks.npz").is_file()  # stored beside the graph
+    assert {t["key"] for t in report["targets"]} == {
+        "kernel_vs_scipy_rate",
+        "setup_us_large",
+        "alt_expansion_reduction",
+        "speedup_vs_networkx",
+    }
+    assert {t["status"] for t in report["targets"]} <= {"PASS", "MISS"}
+
+
+def test_bench_search_table_and_skips(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    graph = grid_graph_file(tmp_path / "grid.npz", side=6)
+    code, out, _ = run_bench(
+        capsys,
+        str(graph),
+        "--queries",
+        "3",
+        "--long-trips",
+        "2",
+        "--landmarks",
+        "2",
+        "--networkx-queries",
+        "0",
+        "--skip-large",
+        "--skip-order",
+    )
+    assert code == 0
+    assert "kernel_vs_scipy_rate" in out and "targets:" in out
+    assert "SKIPPED per-query setup" in out and "SKIPPED optimal query vs networkx" in out
+
+
+def test_bench_says_when_networkx_is_missing(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    graph = grid_graph_file(tmp_path / "grid.npz", side=5)
+    monkeypatch.setitem(sys.modules, "networkx", None)  # import networkx -> ImportError
+    code, out, _ = run_bench(
+        capsys, str(graph), "--queries", "2", "--long-trips", "1", "--landmarks", "2",
+        "--skip-large", "--skip-order", "--json",
+    )  # fmt: skip
+    assert code == 0
+    report = json.loads(out)
+    assert report["speedup_vs_networkx"] is None
+    assert "networkx is not installed" in report["networkx"]["skipped"]
+    assert any("networkx is not installed" in n for n in report["notes"])
+
+
+@pytest.mark.parametrize(
+    ("argv", "message"),
+    [
+        (["--queries", "0"], "--queries must be between 1 and"),
+        (["--landmarks", "0"], "--landmarks must be between 1 and 64"),
+    ],
+)
+def test_bench_bad_arguments(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str], argv: list[str], message: str
+) -> None:
+    graph = grid_graph_file(tmp_path / "grid.npz", side=4)
+    code, _, err = run_bench(capsys, str(graph), *argv)
+    assert code == 2
+    assert err.strip().splitlines()[-1].startswith("dueroute: error: ")
+    assert message in err
+
+
+def test_bench_refuses_a_non_graph_file(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    code, _, err = run_bench(capsys, str(tmp_path / "map.osm"))
+    assert code == 2
+    assert "is not a compiled graph" in err
