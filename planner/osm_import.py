@@ -290,6 +290,13 @@ def _read_networkx(path: Path, kind: str, dropped: Counter[str]) -> tuple[Any, d
                 + "|".join(sorted(DRIVABLE_HIGHWAYS))
                 + " without access=no/private"
             )
+        bad_nodes = [n for n, d in G.nodes(data=True) if not _has_position(d)]
+        if bad_nodes:
+            raise NotAMapFile(
+                f"{path}: {len(bad_nodes)} road nodes have no valid position (e.g. node "
+                f"{bad_nodes[0]!r}); map nodes need WGS84 coordinates "
+                "(OSM lat/lon, GraphML x/y as written by osmnx)"
+            )
         if not G.graph.get("simplified", False):
             try:
                 G = ox.simplify_graph(G)
@@ -299,6 +306,14 @@ def _read_networkx(path: Path, kind: str, dropped: Counter[str]) -> tuple[Any, d
 
 
 _KIND_NAME = {"osm": "OSM XML", "graphml": "GraphML"}
+
+
+def _has_position(data: dict[str, Any]) -> bool:
+    try:
+        x, y = float(data["x"]), float(data["y"])
+    except (KeyError, TypeError, ValueError):
+        return False
+    return math.isfinite(x) and math.isfinite(y) and -180 <= x <= 180 and -90 <= y <= 90
 
 
 def _way_id(data: dict[str, Any]) -> Any:

@@ -437,6 +437,24 @@ def _bad_inputs(tmp: Path, osm_dir: Path | None) -> dict[str, tuple[Path, type[E
     put(
         "bad.graphml", '<?xml version="1.0"?><graphml><graph><node id="a"/>', NotAMapFile, "GraphML"
     )
+    put(
+        "no-coords.graphml",
+        '<?xml version="1.0"?><graphml xmlns="http://graphml.graphdrawing.org/xmlns">'
+        '<key id="h" for="edge" attr.name="highway" attr.type="string"/>'
+        '<graph edgedefault="directed"><node id="1"/><node id="2"/>'
+        '<edge source="1" target="2"><data key="h">residential</data></edge></graph></graphml>',
+        NotAMapFile,
+        "no valid position",
+    )
+    put(
+        "off-earth.osm",
+        _osm(
+            '<node id="1" lat="95.0" lon="20.0"/><node id="2" lat="10.0" lon="20.0"/>'
+            '<way id="10"><nd ref="1"/><nd ref="2"/><tag k="highway" v="primary"/></way>'
+        ),
+        NotAMapFile,
+        "no valid position",
+    )
     if osm_dir is not None:
         real = (osm_dir / "aguascalientes.osm.bz2").read_bytes()
         put("short.osm.bz2", real[:2000], NotAMapFile, "decompress")  # cut in the first block
