@@ -27,8 +27,6 @@ from planner.heuristics import (
     save_landmarks,
 )
 
-OSM_DIR = Path(__file__).resolve().parents[3] / "shared" / "data" / "osm"
-
 
 def random_graph(
     seed: int, n: int = 120, m: int = 420, *, zero_cost: bool = False, stretch: float = 2.0
@@ -333,10 +331,8 @@ def test_load_or_build_stores_beside_the_graph_and_rebuilds_when_stale(tmp_path:
 # Real OpenStreetMap fixtures
 
 
-def _import_fixture(name: str):
-    path = OSM_DIR / name
-    if not path.is_file():
-        pytest.skip(f"OSM fixture {path} is absent")
+def _import_fixture(osm_dir: Path, name: str):
+    path = osm_dir / name
     try:
         osm_import = importlib.import_module("planner.osm_import")
     except ImportError:
@@ -346,11 +342,42 @@ def _import_fixture(name: str):
 
 @pytest.mark.parametrize("name", ["west-oakland.osm.bz2", "aguascalientes.osm.bz2"])
 @pytest.mark.parametrize("method", METHODS)
-def test_alt_admissible_on_osm_fixtures(name: str, method: str) -> None:
+def test_alt_admissible_on_osm_fixtures(osm_dir: Path, name: str, method: str) -> None:
     """ALT bounds on real OpenStreetMap roads (fixtures published with osmnx) are admissible
     and consistent against scipy csgraph.dijkstra (Goldberg & Harrelson 2005)."""
-    graph = _import_fixture(name)
+    graph = _import_fixture(osm_dir, name)
     if graph.n_nodes > 1200:  # all-pairs check: keep a sample of destinations
         pytest.skip("fixture larger than expected for an all-pairs check")
     landmarks = build_landmarks(graph, count=8, method=method, progress=False)
     assert_admissible_and_consistent(graph, landmarks)
+
+
+# ---------------------------------------------------------------------------------------------
+# Through the search kernel
+
+
+@pytest.mark.parametrize("method", METHODS)
+def test_kernel_with_landmarks_is_exact(method: str) -> None:
+    """With ALT landmarks (+inf for missing distances) the weight-1 search returns exactly the
+    scipy csgraph.dijkstra optimum, every reported lower bound stays <= that optimum
+    (Goldberg & Harrelson 2005: ALT is admissible), and pairs with no path end ``no_route``."""
+    from planner.session import Planner, plan
+
+    graph = random_graph(21, n=60, m=200, zero_cost=False)
+    landmarks = build_landmarks(graph, count=4, method=method, progress=False)
+    planner = Planner(graph, landmarks=landmarks)
+    exact = dijkstra(graph.csr())
+    rng = np.random.default_rng(0)
+    pairs = rng.integers(graph.n_nodes, size=(150, 2))
+    unreachable = 0
+    for o, d in pairs.tolist():
+        result = plan(planner, o, d, controller="fixed:1", steps=1)
+        if not np.isfinite(exact[o, d]):
+            unreachable += 1
+            assert result.status == "no_route", (o, d)
+            continue
+        assert result.status == "optimal", (o, d, result.status)
+        assert result.cost_s == pytest.approx(exact[o, d], rel=1e-9, abs=1e-9)
+        for imp in result.improvements:
+            assert imp.lower_bound_s <= exact[o, d] * (1 + 1e-12) + 1e-12
+    assert unreachable > 0, "the sample should include pairs without a path"
