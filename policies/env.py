@@ -24,6 +24,7 @@ import numpy as np
 from planner.controllers import WEIGHTS
 from planner.features import FEATURE_HIGH, FEATURE_LOW, FEATURE_NAMES, compute_features
 from planner.graph import RoadGraph, great_circle_m
+from planner.heuristics import DEFAULT_COUNT as DEFAULT_LANDMARKS
 from planner.heuristics import largest_component_nodes
 from planner.session import Planner, Search
 from policies.export import ACTION_KINDS, action_meanings
@@ -63,10 +64,10 @@ class EnvConfig:
         default=0.5, metadata={"help": "share of short trips in the query pool (1)"}
     )
     landmarks: int = field(
-        default=0,
+        default=DEFAULT_LANDMARKS,
         metadata={
-            "help": "ALT landmarks for the heuristic, loaded or built beside the graph "
-            "(0 = great-circle bound only)"
+            "help": "ALT landmarks for the heuristic, loaded or built beside the graph, as the "
+            "service uses them (0 = great-circle bound only)"
         },
     )
 

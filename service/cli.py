@@ -9,7 +9,7 @@ import sys
 from planner.errors import PlannerError
 
 #: Subcommand modules under ``service.commands``, in the order ``--help`` lists them.
-COMMAND_MODULES = ["graph", "loadtest", "route", "serve", "bench"]
+COMMAND_MODULES = ["graph", "loadtest", "route", "serve", "bench", "policy"]
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -1,0 +1,679 @@
+"""Evaluate a learned weight policy against every baseline controller on held-out queries.
+
+For each contract (expansion budgets at 0.5x, 1x and 2x the one the policy was trained on, and
+optional wall-clock deadlines) every controller searches every query through
+:func:`planner.session.plan`; the final route's quality is ``optimal / cost`` (0 when no route
+was found in time), with the optimum from ``scipy.sparse.csgraph.dijkstra``.
+
+Outputs in the report folder:
+
+=========================  ======================================================================
+file                       content
+=========================  ======================================================================
+``summary.json``           everything below as numbers, plus the settings of the run
+``results.md``             markdown tables: mean quality per controller and contract; details
+                           and paired tests at the trained contract
+``per_query.csv``          one row per (contract, controller, query)
+``quality_boxplot.png``    quality per controller at each budget contract, mean marked
+``anytime_profile.png``    mean quality against the share of the contract spent
+``learned_weights.png``    the learned policy's weight per decision step: median, faded runs
+``training_curve.png``     episode return while training (when the policy's curve CSV exists)
+``feature_importance.png`` permutation importance of each feature
+=========================  ======================================================================
+
+The paired test is the Wilcoxon signed-rank test (``scipy.stats.wilcoxon``, two-sided) on the
+per-query quality differences, learned minus the other controller; queries where both reach the
+same quality carry no information and are dropped (its default ``zero_method="wilcox"``).
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+import time
+from collections.abc import Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from planner.controllers import WEIGHTS
+from planner.features import FEATURE_NAMES
+from planner.graph import RoadGraph
+from planner.session import Planner, PlanResult, SearchStats, plan
+from policies.env import OptimalCosts, quality, sample_queries
+from policies.runtime import LEARNED, LearnedController, Policy, resolve_controller
+
+BASELINES: tuple[str, ...] = (
+    *(f"fixed:{w:g}" for w in WEIGHTS),
+    "random",
+    "decreasing",
+    "ana",
+)
+CONTROLLERS: tuple[str, ...] = (*BASELINES, LEARNED)
+BUDGET_FACTORS = (0.5, 1.0, 2.0)
+PROFILE_POINTS = 41
+
+
+@dataclass
+class Run:
+    """One search of the evaluation, reduced to what the report needs."""
+
+    quality: float
+    status: str
+    expansions: int
+    elapsed_ms: float
+    #: (share of the contract spent, quality) at each improvement
+    profile: list[tuple[float, float]]
+    #: weight of each decision step
+    weights: list[float]
+
+
+@dataclass
+class Contract:
+    kind: str  # "budget" or "deadline"
+    value: float  # expansions or milliseconds
+    trained: bool = False
+
+    @property
+    def label(self) -> str:
+        if self.kind == "budget":
+            return f"budget {int(self.value):,} exp" + (" (trained)" if self.trained else "")
+        return f"deadline {self.value:g} ms"
+
+    @property
+    def key(self) -> str:
+        return f"{self.kind}_{self.value:g}"
+
+
+@dataclass
+class EvalSettings:
+    """What :func:`evaluate` runs (defaults follow the policy's training contract)."""
+
+    n_queries: int = 500
+    seed: int = 1000
+    budgets: list[int] | None = None
+    deadlines_ms: list[float] = field(default_factory=list)
+    controllers: Sequence[str] = CONTROLLERS
+    steps: int | None = None
+    short_fraction: float = 0.5
+    importance_queries: int = 100
+
+
+def run_one(
+    planner: Planner,
+    origin: int,
+    destination: int,
+    optimal_s: float,
+    controller: Any,
+    contract: Contract,
+    steps: int,
+    seed: int,
+) -> Run:
+    """Search one query with one controller under one contract."""
+    kwargs: dict[str, Any] = (
+        {"budget_expansions": int(contract.value)}
+        if contract.kind == "budget"
+        else {"deadline_ms": float(contract.value)}
+    )
+    res: PlanResult = plan(
+        planner, origin, destination, controller=controller, steps=steps, seed=seed, **kwargs
+    )
+    profile = []
+    for imp in res.improvements:
+        spent = (
+            imp.expansions / contract.value
+            if contract.kind == "budget"
+            else imp.elapsed_ms / contract.value
+        )
+        profile.append((min(spent, 1.0), quality(optimal_s, imp.cost_s)))
+    return Run(
+        quality=quality(optimal_s, res.cost_s),
+        status=res.status,
+        expansions=res.expansions,
+        elapsed_ms=res.elapsed_ms,
+        profile=profile,
+        weights=[w.weight for w in res.weights],
+    )
+
+
+def anytime_curve(runs: list[Run], points: np.ndarray) -> np.ndarray:
+    """Mean quality of ``runs`` after each share of the contract in ``points`` (float64[p])."""
+    out = np.zeros((len(runs), points.shape[0]))
+    for i, r in enumerate(runs):
+        if r.status == "optimal" and not r.profile:
+            out[i] = r.quality  # solved before any step (origin == destination)
+        for spent, q in r.profile:
+            out[i, points >= spent - 1e-12] = q
+    return out.mean(axis=0) if runs else out.sum(axis=0)
+
+
+def paired_test(learned: np.ndarray, other: np.ndarray, seed: int = 0) -> dict[str, Any]:
+    """Wilcoxon signed-rank test (scipy.stats.wilcoxon, two-sided) and a bootstrap 95% CI of
+    the mean per-query difference learned - other."""
+    from scipy.stats import wilcoxon
+
+    diff = np.asarray(learned) - np.asarray(other)
+    rng = np.random.default_rng(seed)
+    boot = rng.choice(diff, size=(2000, diff.shape[0]), replace=True).mean(axis=1)
+    out: dict[str, Any] = {
+        "test": "Wilcoxon signed-rank (scipy.stats.wilcoxon, two-sided, zero_method='wilcox')",
+        "mean_difference": float(diff.mean()),
+        "ci95_mean_difference": [float(np.quantile(boot, 0.025)), float(np.quantile(boot, 0.975))],
+        "learned_better": int(np.sum(diff > 0)),
+        "learned_worse": int(np.sum(diff < 0)),
+        "ties": int(np.sum(diff == 0)),
+    }
+    if np.any(diff != 0):
+        res = wilcoxon(learned, other, alternative="two-sided")
+        out["p_value"] = float(res.pvalue)
+        out["statistic"] = float(res.statistic)
+    else:
+        out["p_value"] = 1.0
+        out["statistic"] = None
+    return out
+
+
+class _PermutedFeature:
+    """Wraps a learned controller; replaces one feature with a draw from its observed values."""
+
+    def __init__(self, inner: LearnedController, index: int, pool: np.ndarray, seed: int) -> None:
+        self.inner, self.index, self.pool = inner, index, pool
+        self.rng = np.random.default_rng(seed)
+        self.name, self.mode = inner.name, inner.mode
+
+    def reset(self, seed: int | None) -> float:
+        return self.inner.reset(seed)
+
+    def decide(self, features: np.ndarray, stats: SearchStats) -> float:
+        x = np.array(features, dtype=np.float32, copy=True)
+        x[self.index] = self.pool[self.rng.integers(self.pool.shape[0])]
+        return self.inner.decide(x, stats)
+
+
+class _Recording:
+    """Wraps a controller and keeps every feature vector it was shown."""
+
+    def __init__(self, inner: Any, sink: list[np.ndarray]) -> None:
+        self.inner, self.sink = inner, sink
+        self.name, self.mode = inner.name, inner.mode
+
+    def reset(self, seed: int | None) -> float:
+        return float(self.inner.reset(seed))
+
+    def decide(self, features: np.ndarray, stats: SearchStats) -> float:
+        self.sink.append(np.asarray(features, dtype=np.float32).copy())
+        return float(self.inner.decide(features, stats))
+
+
+def evaluate(
+    graph: RoadGraph,
+    policy: Policy,
+    out_dir: str | Path,
+    settings: EvalSettings | None = None,
+    *,
+    planner: Planner | None = None,
+    curve_csv: str | Path | None = None,
+    progress: bool = True,
+) -> dict[str, Any]:
+    """Run the comparison, write the report folder, return the summary (``summary.json``)."""
+    from tqdm import tqdm
+
+    started = time.perf_counter()
+    settings = settings or EvalSettings()
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    planner = planner or Planner(graph)
+    steps = settings.steps if settings.steps is not None else policy.decision_steps
+    trained_budget = policy.contract_expansions
+    budgets = settings.budgets or [max(1, int(round(f * trained_budget))) for f in BUDGET_FACTORS]
+    contracts = [Contract("budget", b, trained=(b == trained_budget)) for b in budgets]
+    contracts += [Contract("deadline", d) for d in settings.deadlines_ms]
+    main = next((c for c in contracts if c.trained), contracts[0])
+
+    queries = sample_queries(graph, settings.n_queries, settings.seed, settings.short_fraction)
+    optimal = OptimalCosts(graph).precompute(queries)
+
+    results: dict[str, dict[str, list[Run]]] = {c.key: {} for c in contracts}
+    learned_features: list[np.ndarray] = []
+    total = len(contracts) * len(settings.controllers) * len(queries)
+    bar = tqdm(total=total, desc="evaluating", disable=not progress, mininterval=0.5)
+    for contract in contracts:
+        for spec in settings.controllers:
+            runs = []
+            for i, (o, d) in enumerate(queries):
+                ctrl = resolve_controller(spec, policy=policy, seed=settings.seed + i)
+                if spec == LEARNED and contract is main:
+                    ctrl = _Recording(ctrl, learned_features)
+                runs.append(
+                    run_one(
+                        planner,
+                        int(o),
+                        int(d),
+                        float(optimal[i]),
+                        ctrl,
+                        contract,
+                        steps,
+                        settings.seed + i,
+                    )
+                )
+                bar.update(1)
+            results[contract.key][spec] = runs
+            bar.set_postfix({"contract": contract.label, "controller": spec}, refresh=False)
+    bar.close()
+
+    summary = _summarise(results, contracts, main, settings, steps)
+    summary["queries"] = {
+        "n": int(len(queries)),
+        "seed": settings.seed,
+        "short_fraction": settings.short_fraction,
+        "mean_optimal_s": float(np.mean(optimal)),
+    }
+    summary["policy"] = policy.info()
+    summary["graph"] = {
+        "name": graph.name,
+        "nodes": graph.n_nodes,
+        "fingerprint": graph.fingerprint,
+    }
+    summary["decision_steps"] = steps
+
+    if LEARNED in settings.controllers and learned_features and settings.importance_queries > 0:
+        summary["feature_importance"] = _importance(
+            planner,
+            policy,
+            queries,
+            optimal,
+            main,
+            steps,
+            settings,
+            learned_features,
+            results[main.key][LEARNED],
+            progress,
+        )
+    summary["seconds"] = time.perf_counter() - started
+    _write_outputs(out_dir, summary, results, contracts, main, curve_csv)
+    return summary
+
+
+def _describe(runs: list[Run]) -> dict[str, Any]:
+    q = np.array([r.quality for r in runs])
+    return {
+        "mean_quality": float(q.mean()),
+        "median_quality": float(np.median(q)),
+        "p10_quality": float(np.quantile(q, 0.1)),
+        "route_found_share": float(np.mean(q > 0)),
+        "optimal_proven_share": float(np.mean([r.status == "optimal" for r in runs])),
+        "optimal_found_share": float(np.mean(q >= 1.0 - 1e-12)),
+        "mean_expansions": float(np.mean([r.expansions for r in runs])),
+        "mean_elapsed_ms": float(np.mean([r.elapsed_ms for r in runs])),
+    }
+
+
+def _summarise(
+    results: dict[str, dict[str, list[Run]]],
+    contracts: list[Contract],
+    main: Contract,
+    settings: EvalSettings,
+    steps: int,
+) -> dict[str, Any]:
+    by_contract: dict[str, Any] = {}
+    for c in contracts:
+        by_contract[c.key] = {
+            "label": c.label,
+            "kind": c.kind,
+            "value": c.value,
+            "trained": c.trained,
+            "controllers": {s: _describe(r) for s, r in results[c.key].items()},
+        }
+    out: dict[str, Any] = {"contracts": by_contract, "trained_contract": main.key}
+    main_runs = results[main.key]
+    if LEARNED in main_runs:
+        learned_q = np.array([r.quality for r in main_runs[LEARNED]])
+        fixed = [s for s in main_runs if s.startswith("fixed:")]
+        tests: dict[str, Any] = {}
+        if fixed:
+            best_fixed = max(fixed, key=lambda s: np.mean([r.quality for r in main_runs[s]]))
+            tests["best_fixed"] = {"controller": best_fixed} | paired_test(
+                learned_q, np.array([r.quality for r in main_runs[best_fixed]])
+            )
+        best_base = max(
+            (s for s in main_runs if s != LEARNED),
+            key=lambda s: np.mean([r.quality for r in main_runs[s]]),
+            default=None,
+        )
+        if best_base is not None:
+            tests["best_baseline"] = {"controller": best_base} | paired_test(
+                learned_q, np.array([r.quality for r in main_runs[best_base]])
+            )
+        if "random" in main_runs:
+            tests["random"] = {"controller": "random"} | paired_test(
+                learned_q, np.array([r.quality for r in main_runs["random"]])
+            )
+        out["paired_tests"] = tests
+        for c in contracts:
+            runs = results[c.key]
+            if LEARNED in runs:
+                lq = np.array([r.quality for r in runs[LEARNED]])
+                others = {
+                    s: np.mean([r.quality for r in v]) for s, v in runs.items() if s != LEARNED
+                }
+                best = max(others, key=lambda s: others[s]) if others else None
+                if best is not None:
+                    by_contract[c.key]["learned_vs_best_baseline"] = {
+                        "controller": best
+                    } | paired_test(lq, np.array([r.quality for r in runs[best]]))
+    return out
+
+
+def _importance(
+    planner: Planner,
+    policy: Policy,
+    queries: np.ndarray,
+    optimal: np.ndarray,
+    contract: Contract,
+    steps: int,
+    settings: EvalSettings,
+    features: list[np.ndarray],
+    base_runs: list[Run],
+    progress: bool,
+) -> dict[str, Any]:
+    """Permutation importance of each feature for the learned policy.
+
+    ``quality_drop``: mean quality on the first ``importance_queries`` queries minus the mean
+    when the feature is replaced at every decision by a random value it took during the
+    evaluation (its marginal distribution), i.e. the loss from losing that feature's
+    information. ``decision_change``: share of the recorded decisions whose greedy action
+    changes when the feature column is shuffled (no search needed; a finer signal).
+    """
+    from tqdm import tqdm
+
+    obs = np.asarray(features, dtype=np.float32)
+    rng = np.random.default_rng(settings.seed)
+    base_actions = np.argmax(policy.q_values(obs), axis=1)
+    n = min(settings.importance_queries, queries.shape[0])
+    base_quality = float(np.mean([r.quality for r in base_runs[:n]]))
+    rows = []
+    bar = tqdm(
+        total=len(FEATURE_NAMES) * n,
+        desc="feature importance",
+        disable=not progress,
+        mininterval=0.5,
+    )
+    for j, name in enumerate(FEATURE_NAMES):
+        shuffled = obs.copy()
+        shuffled[:, j] = rng.permutation(shuffled[:, j])
+        changed = float(np.mean(np.argmax(policy.q_values(shuffled), axis=1) != base_actions))
+        qs = []
+        for i in range(n):
+            o, d = (int(x) for x in queries[i])
+            ctrl = _PermutedFeature(
+                LearnedController(policy), j, obs[:, j], seed=settings.seed + 7919 * j + i
+            )
+            qs.append(
+                run_one(
+                    planner, o, d, float(optimal[i]), ctrl, contract, steps, settings.seed + i
+                ).quality
+            )
+            bar.update(1)
+        rows.append(
+            {
+                "feature": name,
+                "quality_drop": base_quality - float(np.mean(qs)),
+                "decision_change": changed,
+            }
+        )
+    bar.close()
+    rows.sort(key=lambda r: (r["quality_drop"], r["decision_change"]), reverse=True)
+    return {"queries": n, "base_quality": base_quality, "ranking": rows}
+
+
+# --------------------------------------------------------------------------------------------
+# Report files
+
+
+def _fmt_p(p: float | None) -> str:
+    if p is None or not math.isfinite(p):
+        return "n/a"
+    return f"{p:.2g}" if p >= 1e-4 else f"{p:.1e}"
+
+
+def markdown_report(summary: dict[str, Any]) -> str:
+    """The markdown tables of ``results.md`` (also used in the model card)."""
+    contracts = summary["contracts"]
+    keys = list(contracts)
+    controllers = list(next(iter(contracts.values()))["controllers"])
+    lines = [
+        f"Held-out queries: {summary['queries']['n']} (seed {summary['queries']['seed']}), "
+        f"{summary['decision_steps']} decision steps per contract. Quality = optimal travel "
+        "time / found travel time (0 if no route found), optimum by scipy Dijkstra.",
+        "",
+        "Mean quality per controller and contract (best baseline in bold):",
+        "",
+        "| controller | " + " | ".join(contracts[k]["label"] for k in keys) + " |",
+        "|---|" + "---:|" * len(keys),
+    ]
+    best = {}
+    for k in keys:
+        ctl = contracts[k]["controllers"]
+        base = [s for s in ctl if s != LEARNED]
+        best[k] = max(base, key=lambda s: ctl[s]["mean_quality"]) if base else None
+    for s in controllers:
+        cells = []
+        for k in keys:
+            v = contracts[k]["controllers"][s]["mean_quality"]
+            cell = f"{v:.4f}"
+            cells.append(f"**{cell}**" if s == best[k] else cell)
+        lines.append(f"| {s} | " + " | ".join(cells) + " |")
+    main = contracts[summary["trained_contract"]]
+    lines += [
+        "",
+        f"At the trained contract ({main['label']}):",
+        "",
+        "| controller | mean | median | p10 | route found | optimal found | proven optimal "
+        "| mean expansions | mean ms |",
+        "|---|---:|---:|---:|---:|---:|---:|---:|---:|",
+    ]
+    for s, d in main["controllers"].items():
+        lines.append(
+            f"| {s} | {d['mean_quality']:.4f} | {d['median_quality']:.4f} | "
+            f"{d['p10_quality']:.4f} | {d['route_found_share']:.1%} | "
+            f"{d['optimal_found_share']:.1%} | {d['optimal_proven_share']:.1%} | "
+            f"{d['mean_expansions']:,.0f} | {d['mean_elapsed_ms']:.2f} |"
+        )
+    tests = summary.get("paired_tests")
+    if tests:
+        lines += [
+            "",
+            "Paired comparison at the trained contract, learned minus other, per query "
+            "(Wilcoxon signed-rank test, scipy.stats.wilcoxon, two-sided; bootstrap 95% CI of "
+            "the mean difference):",
+            "",
+            "| versus | mean difference | 95% CI | learned better / worse / tied | p-value |",
+            "|---|---:|---|---|---:|",
+        ]
+        for label, t in tests.items():
+            lo, hi = t["ci95_mean_difference"]
+            lines.append(
+                f"| {t['controller']} ({label.replace('_', ' ')}) | {t['mean_difference']:+.4f} "
+                f"| [{lo:+.4f}, {hi:+.4f}] | {t['learned_better']} / {t['learned_worse']} / "
+                f"{t['ties']} | {_fmt_p(t['p_value'])} |"
+            )
+        others = [
+            (contracts[k]["label"], contracts[k]["learned_vs_best_baseline"])
+            for k in keys
+            if "learned_vs_best_baseline" in contracts[k] and k != summary["trained_contract"]
+        ]
+        if others:
+            lines += [
+                "",
+                "Learned versus the best baseline at the other contracts:",
+                "",
+                "| contract | best baseline | mean difference | p-value |",
+                "|---|---|---:|---:|",
+            ]
+            for label, t in others:
+                lines.append(
+                    f"| {label} | {t['controller']} | {t['mean_difference']:+.4f} | "
+                    f"{_fmt_p(t['p_value'])} |"
+                )
+    imp = summary.get("feature_importance")
+    if imp:
+        lines += [
+            "",
+            f"Permutation feature importance of the learned policy ({imp['queries']} queries at "
+            "the trained contract):",
+            "",
+            "| feature | quality drop when permuted | decisions changed |",
+            "|---|---:|---:|",
+        ]
+        for r in imp["ranking"]:
+            lines.append(
+                f"| {r['feature']} | {r['quality_drop']:+.4f} | {r['decision_change']:.1%} |"
+            )
+    return "\n".join(lines) + "\n"
+
+
+def _write_outputs(
+    out_dir: Path,
+    summary: dict[str, Any],
+    results: dict[str, dict[str, list[Run]]],
+    contracts: list[Contract],
+    main: Contract,
+    curve_csv: str | Path | None,
+) -> None:
+    (out_dir / "summary.json").write_text(json.dumps(summary, indent=2) + "\n")
+    (out_dir / "results.md").write_text(markdown_report(summary))
+    with open(out_dir / "per_query.csv", "w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["contract", "controller", "query", "quality", "status", "expansions", "ms"])
+        for c in contracts:
+            for spec, runs in results[c.key].items():
+                for i, r in enumerate(runs):
+                    w.writerow(
+                        [
+                            c.key,
+                            spec,
+                            i,
+                            f"{r.quality:.6f}",
+                            r.status,
+                            r.expansions,
+                            f"{r.elapsed_ms:.3f}",
+                        ]
+                    )
+    _plots(out_dir, summary, results, contracts, main, curve_csv)
+
+
+def _plots(
+    out_dir: Path,
+    summary: dict[str, Any],
+    results: dict[str, dict[str, list[Run]]],
+    contracts: list[Contract],
+    main: Contract,
+    curve_csv: str | Path | None,
+) -> None:
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    budget_contracts = [c for c in contracts if c.kind == "budget"] or contracts
+    fig, axes = plt.subplots(
+        len(budget_contracts), 1, figsize=(10, 3.2 * len(budget_contracts)), squeeze=False
+    )
+    for ax, c in zip(axes[:, 0], budget_contracts, strict=True):
+        specs = list(results[c.key])
+        data = [[r.quality for r in results[c.key][s]] for s in specs]
+        ax.boxplot(data, showmeans=True, meanprops={"marker": "D", "markerfacecolor": "red"})
+        ax.set_xticks(range(1, len(specs) + 1), specs, rotation=0, fontsize=8)
+        ax.set_ylabel("quality")
+        ax.set_title(f"{c.label}: quality per controller (red diamond = mean)", fontsize=9)
+    fig.tight_layout()
+    fig.savefig(out_dir / "quality_boxplot.png", dpi=110)
+    plt.close(fig)
+
+    points = np.linspace(0.0, 1.0, PROFILE_POINTS)
+    shown = [c for c in (main, *(c for c in contracts if c.kind == "deadline")) if c.key in results]
+    fig, axes = plt.subplots(1, len(shown), figsize=(6 * len(shown), 4), squeeze=False)
+    for ax, c in zip(axes[0], shown, strict=True):
+        for spec, runs in results[c.key].items():
+            style = {"lw": 2.5, "color": "black"} if spec == LEARNED else {"lw": 1.2}
+            ax.plot(points, anytime_curve(runs, points), label=spec, **style)
+        ax.set_xlabel("share of the contract spent" + (" (time)" if c.kind == "deadline" else ""))
+        ax.set_ylabel("mean quality")
+        ax.set_title(f"anytime profile, {c.label}", fontsize=9)
+        ax.grid(alpha=0.3)
+    axes[0, 0].legend(fontsize=7, loc="lower right")
+    fig.tight_layout()
+    fig.savefig(out_dir / "anytime_profile.png", dpi=110)
+    plt.close(fig)
+
+    if LEARNED in results[main.key]:
+        runs = results[main.key][LEARNED]
+        n_steps = max((len(r.weights) for r in runs), default=0)
+        if n_steps:
+            mat = np.full((len(runs), n_steps), np.nan)
+            for i, r in enumerate(runs):
+                mat[i, : len(r.weights)] = r.weights
+            fig, ax = plt.subplots(figsize=(7, 4))
+            x = np.arange(n_steps)
+            rng = np.random.default_rng(0)
+            for i in rng.choice(len(runs), size=min(80, len(runs)), replace=False):
+                jitter = rng.normal(0, 0.03, n_steps)
+                ax.plot(x, mat[i] + jitter, color="tab:blue", alpha=0.08, lw=1)
+            # a search that ended early has no weight for later steps: hold its last one
+            for i, r in enumerate(runs):
+                if r.weights:
+                    mat[i, len(r.weights) :] = r.weights[-1]
+            med = np.nanmedian(mat, axis=0)
+            ax.plot(x, med, color="black", lw=2.5, label="median over queries")
+            ax.set_yticks(WEIGHTS)
+            ax.set_xlabel("decision step")
+            ax.set_ylabel("weight")
+            ax.set_title(
+                f"learned weight per step, {main.label} (faded: single queries)", fontsize=9
+            )
+            ax.legend(fontsize=8)
+            fig.tight_layout()
+            fig.savefig(out_dir / "learned_weights.png", dpi=110)
+            plt.close(fig)
+
+    if curve_csv is not None and Path(curve_csv).is_file():
+        from policies.dqn import read_curve_csv
+
+        curve = read_curve_csv(curve_csv)
+        if curve:
+            ep = np.array([r["episode"] for r in curve])
+            ret = np.array([r["episode_return"] for r in curve])
+            k = max(1, min(100, len(ret) // 10))
+            smooth = np.convolve(ret, np.ones(k) / k, mode="valid")
+            fig, ax = plt.subplots(figsize=(7, 4))
+            ax.plot(ep, ret, alpha=0.15, color="tab:blue", label="episode return")
+            ax.plot(ep[k - 1 :], smooth, color="tab:blue", lw=2, label=f"mean of {k} episodes")
+            ev = np.array([r.get("eval_return", float("nan")) for r in curve])
+            ok = np.isfinite(ev)
+            if ok.any():
+                ax.plot(ep[ok], ev[ok], "o-", color="black", label="greedy, validation queries")
+            ax.set_xlabel("episode")
+            ax.set_ylabel("return = final quality")
+            ax.set_title("training curve", fontsize=9)
+            ax.legend(fontsize=8)
+            ax.grid(alpha=0.3)
+            fig.tight_layout()
+            fig.savefig(out_dir / "training_curve.png", dpi=110)
+            plt.close(fig)
+
+    imp = summary.get("feature_importance")
+    if imp:
+        rows = imp["ranking"][::-1]
+        fig, axes2 = plt.subplots(1, 2, figsize=(10, 0.35 * len(rows) + 1.5), sharey=True)
+        names = [r["feature"] for r in rows]
+        axes2[0].barh(names, [r["quality_drop"] for r in rows], color="tab:red")
+        axes2[0].set_xlabel("mean quality drop when permuted")
+        axes2[1].barh(names, [r["decision_change"] for r in rows], color="tab:gray")
+        axes2[1].set_xlabel("share of decisions changed")
+        fig.suptitle("permutation feature importance (learned policy)", fontsize=9)
+        fig.tight_layout()
+        fig.savefig(out_dir / "feature_importance.png", dpi=110)
+        plt.close(fig)

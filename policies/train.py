@@ -1,0 +1,143 @@
+"""Train a weight policy on a graph end to end: environment, Double DQN, ONNX file.
+
+:func:`train_policy` writes three files side by side::
+
+    OUT.onnx          the policy (metadata records the full config, see policies.export)
+    OUT.config.json   the configs of this run (trainer, environment, validation)
+    OUT.curve.csv     the learning curve, one row per episode
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from planner.graph import RoadGraph
+from policies.dqn import DQNConfig, QNetwork, TrainResult, save_config, train, write_curve_csv
+from policies.env import EnvConfig, OptimalCosts, WeightControlEnv, sample_queries
+from policies.export import export_policy, policy_metadata
+
+
+@dataclass(frozen=True)
+class ValidationConfig:
+    """Greedy evaluations during training that pick the network to ship."""
+
+    validation_queries: int = field(
+        default=150,
+        metadata={"help": "queries of the validation set, drawn apart from training (queries)"},
+    )
+    validation_seed: int = field(
+        default=2, metadata={"help": "seed of the validation queries (differs from training)"}
+    )
+
+
+def side_files(out: str | Path) -> tuple[Path, Path]:
+    """Paths of the config JSON and learning-curve CSV written beside ``out``."""
+    out = Path(out)
+    return out.with_suffix(".config.json"), out.with_suffix(".curve.csv")
+
+
+def greedy_quality(
+    network: QNetwork, env: WeightControlEnv, query_indices: range | list[int]
+) -> np.ndarray:
+    """Final quality of the greedy policy on each given query of ``env`` (float64[k])."""
+    out = np.empty(len(query_indices))
+    for k, i in enumerate(query_indices):
+        obs, info = env.reset(seed=0, options={"query_index": i})
+        done = env._search is None or env._search.done
+        total = 0.0
+        while not done:
+            obs, r, term, trunc, info = env.step(network.greedy(obs))
+            total += r
+            done = term or trunc
+        out[k] = info["quality"]
+    return out
+
+
+def train_policy(
+    graph: RoadGraph,
+    out: str | Path,
+    dqn: DQNConfig,
+    env_config: EnvConfig,
+    validation: ValidationConfig | None = None,
+    *,
+    progress: bool = True,
+) -> dict[str, Any]:
+    """Train on ``graph`` and write the policy and its side files; return a summary dict."""
+    started = time.perf_counter()
+    validation = validation or ValidationConfig()
+    env = WeightControlEnv(graph, env_config)
+    optimal = env.optimal
+    eval_fn = None
+    if dqn.eval_every_episodes > 0 and validation.validation_queries > 0:
+        val_queries = sample_queries(
+            graph,
+            validation.validation_queries,
+            validation.validation_seed,
+            env_config.short_fraction,
+        )
+        val_env = WeightControlEnv(
+            graph, env_config, queries=val_queries, planner=env.planner, optimal=optimal
+        )
+        indices = range(val_queries.shape[0])
+
+        def eval_fn(network: QNetwork) -> float:
+            return float(np.mean(greedy_quality(network, val_env, indices)))
+
+    result: TrainResult = train(dqn, env, eval_fn=eval_fn, progress=progress)
+    config = {
+        "dqn": dataclasses.asdict(dqn),
+        "env": dataclasses.asdict(env_config),
+        "validation": dataclasses.asdict(validation),
+    }
+    meta = policy_metadata(
+        weights=env.weights,
+        action_kind=env_config.action_kind,
+        initial_weight=env_config.initial_weight,
+        contract_expansions=env_config.budget_expansions,
+        decision_steps=env_config.steps,
+        training_config=config,
+        graph_fingerprint=graph.fingerprint,
+        graph_name=graph.name,
+    )
+    out = Path(out)
+    data = export_policy(result.network, meta, out)
+    config_path, curve_path = side_files(out)
+    save_config(config, config_path)
+    write_curve_csv(result.curve, curve_path)
+    returns = np.array([row["episode_return"] for row in result.curve])
+    tail = returns[-min(len(returns), 200) :]
+    return {
+        "policy": str(out),
+        "config": str(config_path),
+        "curve": str(curve_path),
+        "size_bytes": len(data),
+        "graph": graph.name,
+        "graph_fingerprint": graph.fingerprint,
+        "episodes": dqn.episodes,
+        "env_steps": result.env_steps,
+        "updates": result.updates,
+        "train_seconds": result.seconds,
+        "total_seconds": time.perf_counter() - started,
+        "mean_return_last_episodes": float(np.mean(tail)) if tail.size else None,
+        "best_validation_quality": result.best_eval_return,
+        "best_validation_episode": result.best_eval_episode,
+        "contract_expansions": env_config.budget_expansions,
+        "decision_steps": env_config.steps,
+        "action_kind": env_config.action_kind,
+    }
+
+
+def load_training_config(policy_path: str | Path) -> dict[str, Any] | None:
+    """The config JSON written beside a policy, or ``None`` if absent."""
+    path, _ = side_files(policy_path)
+    return json.loads(path.read_text()) if path.is_file() else None
+
+
+__all__ = ["OptimalCosts", "ValidationConfig", "greedy_quality", "side_files", "train_policy"]

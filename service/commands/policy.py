@@ -1,0 +1,336 @@
+"""``dueroute train``, ``dueroute evaluate`` and ``dueroute policy check``.
+
+The trainer's flags are generated from the frozen config dataclasses
+(:class:`policies.dqn.DQNConfig`, :class:`policies.env.EnvConfig`,
+:class:`policies.train.ValidationConfig`): one ``--flag`` per field, its help the field's doc.
+"""
+
+from __future__ import annotations
+
+import argparse
+import dataclasses
+import json
+import math
+from pathlib import Path
+from typing import Any
+
+from planner.errors import InvalidRequest
+from service.commands.common import GRAPH_HELP, add_json_flag, emit, resolve_graph_path
+
+#: Extra spellings of generated flags (the issue's short names).
+FLAG_ALIASES = {"budget_expansions": ["--budget"]}
+
+
+def register(sub: Any) -> None:
+    from policies.dqn import DQNConfig
+    from policies.env import EnvConfig
+    from policies.train import ValidationConfig
+
+    tr = sub.add_parser(
+        "train",
+        help="train a weight policy (Double DQN) on a graph and write it as ONNX",
+        description=(
+            "Train the learned weight controller on GRAPH: episodes are route queries drawn "
+            "from the graph, searched under an expansion budget; the policy picks the search "
+            "weight at each decision step. Writes OUT.onnx, OUT.config.json and OUT.curve.csv."
+        ),
+    )
+    tr.add_argument("graph", metavar="GRAPH", help=GRAPH_HELP)
+    tr.add_argument(
+        "--out", default="policy.onnx", metavar="FILE.onnx", help="policy file to write"
+    )
+    for cls, title in (
+        (DQNConfig, "trainer (Double DQN)"),
+        (EnvConfig, "environment"),
+        (ValidationConfig, "validation"),
+    ):
+        add_config_arguments(tr.add_argument_group(title), cls)
+    tr.add_argument("--no-progress", action="store_true", help="hide the progress bar")
+    add_json_flag(tr)
+    tr.set_defaults(func=cmd_train)
+
+    ev = sub.add_parser(
+        "evaluate",
+        help="compare a policy with every baseline controller on held-out queries",
+        description=(
+            "Search held-out queries (a seed apart from training) with fixed weights 1..5, "
+            "random, decreasing, ana and the learned policy at 0.5x, 1x and 2x the trained "
+            "expansion budget (or --budgets) and at --deadlines-ms; write summary.json, "
+            "results.md, per_query.csv and plots into --out."
+        ),
+    )
+    ev.add_argument("graph", metavar="GRAPH", help=GRAPH_HELP)
+    ev.add_argument(
+        "--policy",
+        default=None,
+        metavar="FILE.onnx",
+        help="policy to evaluate (default: the shipped policies/default.onnx)",
+    )
+    ev.add_argument("--out", required=True, metavar="DIR", help="report folder (created)")
+    ev.add_argument(
+        "--queries", type=int, default=500, metavar="N", help="held-out queries (default 500)"
+    )
+    ev.add_argument(
+        "--seed", type=int, default=1000, help="seed of the held-out queries (default 1000)"
+    )
+    ev.add_argument(
+        "--budgets",
+        type=int,
+        nargs="+",
+        default=None,
+        metavar="N",
+        help="expansion budgets (default: 0.5x, 1x, 2x the policy's trained contract)",
+    )
+    ev.add_argument(
+        "--deadlines-ms",
+        type=float,
+        nargs="*",
+        default=[],
+        metavar="MS",
+        help="wall-clock deadlines to compare at as well (ms)",
+    )
+    ev.add_argument(
+        "--controllers",
+        nargs="+",
+        default=None,
+        metavar="SPEC",
+        help="controllers to compare (default: fixed:1 .. fixed:5, random, decreasing, ana, "
+        "learned)",
+    )
+    ev.add_argument(
+        "--importance-queries",
+        type=int,
+        default=100,
+        metavar="N",
+        help="queries for permutation feature importance (0 = skip)",
+    )
+    ev.add_argument(
+        "--landmarks",
+        type=int,
+        default=None,
+        metavar="L",
+        help="ALT landmarks for the heuristic (default: as in training; 0 = great-circle only)",
+    )
+    ev.add_argument("--no-progress", action="store_true", help="hide the progress bar")
+    add_json_flag(ev)
+    ev.set_defaults(func=cmd_evaluate)
+
+    pol = sub.add_parser("policy", help="inspect policy files")
+    pol_sub = pol.add_subparsers(dest="policy_command", required=True, metavar="ACTION")
+    chk = pol_sub.add_parser(
+        "check",
+        help="validate a policy file and explain every problem (exit 2 if any)",
+    )
+    chk.add_argument("file", metavar="FILE.onnx", help="policy file to check")
+    add_json_flag(chk)
+    chk.set_defaults(func=cmd_check)
+
+
+# --------------------------------------------------------------------------------------------
+# Flags from config dataclasses
+
+
+def _flag(name: str) -> str:
+    return "--" + name.replace("_", "-")
+
+
+def add_config_arguments(parser: Any, cls: type) -> None:
+    """One ``--flag`` per field of the frozen dataclass ``cls`` (help from its metadata)."""
+    for f in dataclasses.fields(cls):
+        default = f.default
+        help_text = f"{f.metadata.get('help', '')} (default: {default})"
+        flags = [_flag(f.name), *FLAG_ALIASES.get(f.name, [])]
+        if isinstance(default, bool):
+            parser.add_argument(
+                *flags,
+                dest=f.name,
+                action=argparse.BooleanOptionalAction,
+                default=None,
+                help=help_text,
+            )
+        else:
+            parser.add_argument(
+                *flags,
+                dest=f.name,
+                type=type(default),
+                default=None,
+                metavar=f.name.upper(),
+                help=help_text,
+            )
+
+
+def config_from_args(args: argparse.Namespace, cls: type) -> Any:
+    """Build ``cls`` from the flags that were given (others keep their defaults)."""
+    given = {
+        f.name: getattr(args, f.name)
+        for f in dataclasses.fields(cls)
+        if getattr(args, f.name, None) is not None
+    }
+    try:
+        return cls(**given)
+    except ValueError as exc:
+        raise InvalidRequest(str(exc)) from None
+
+
+# --------------------------------------------------------------------------------------------
+# train
+
+
+def cmd_train(args: argparse.Namespace) -> int:
+    from planner.graph import load_graph
+    from policies.dqn import DQNConfig
+    from policies.env import EnvConfig
+    from policies.train import ValidationConfig, train_policy
+
+    dqn = config_from_args(args, DQNConfig)
+    env = config_from_args(args, EnvConfig)
+    validation = config_from_args(args, ValidationConfig)
+    out = Path(args.out)
+    if out.suffix != ".onnx":
+        raise InvalidRequest(f"--out must name a .onnx file, got {args.out!r}")
+    graph = load_graph(resolve_graph_path(args.graph))
+    try:
+        summary = train_policy(graph, out, dqn, env, validation, progress=not args.no_progress)
+    except OSError as exc:
+        raise InvalidRequest(f"cannot write the policy to {out}: {exc.strerror or exc}") from exc
+    except ValueError as exc:  # e.g. a graph without any drawable query
+        raise InvalidRequest(str(exc)) from None
+    emit(summary, args.json, _format_train)
+    return 0
+
+
+def _format_train(s: dict[str, Any]) -> str:
+    val = s["best_validation_quality"]
+    return "\n".join(
+        [
+            f"trained on {s['graph']} in {s['total_seconds']:.1f} s: {s['episodes']} episodes, "
+            f"{s['env_steps']:,} decisions, {s['updates']:,} updates",
+            f"  contract {s['contract_expansions']:,} expansions in {s['decision_steps']} steps; "
+            f"actions: {s['action_kind']}",
+            f"  mean return (final quality) over the last episodes: "
+            f"{s['mean_return_last_episodes']:.4f}"
+            + (
+                f"; best greedy validation quality {val:.4f} (episode "
+                f"{s['best_validation_episode'] + 1})"
+                if val is not None
+                else ""
+            ),
+            f"  wrote {s['policy']} ({s['size_bytes'] / 1024:.1f} kB), {s['config']}, {s['curve']}",
+        ]
+    )
+
+
+# --------------------------------------------------------------------------------------------
+# evaluate
+
+
+def cmd_evaluate(args: argparse.Namespace) -> int:
+    from planner.controllers import make_controller
+    from planner.graph import load_graph
+    from planner.session import Planner
+    from policies.evaluate import CONTROLLERS, EvalSettings, evaluate
+    from policies.runtime import DEFAULT_POLICY_PATH, LEARNED, load_policy
+    from policies.train import side_files
+
+    if args.queries < 1:
+        raise InvalidRequest(f"--queries must be >= 1, got {args.queries}")
+    if args.budgets is not None and any(b < 1 for b in args.budgets):
+        raise InvalidRequest(f"--budgets must all be >= 1, got {args.budgets}")
+    if any(not (math.isfinite(d) and d > 0) for d in args.deadlines_ms):
+        raise InvalidRequest(f"--deadlines-ms must all be > 0, got {args.deadlines_ms}")
+    if args.importance_queries < 0:
+        raise InvalidRequest("--importance-queries must be >= 0")
+    controllers = tuple(args.controllers) if args.controllers else CONTROLLERS
+    for spec in controllers:
+        if spec != LEARNED:
+            make_controller(spec)  # raises InvalidRequest naming what is allowed
+    policy_path = Path(args.policy) if args.policy is not None else DEFAULT_POLICY_PATH
+    policy = load_policy(policy_path)
+    config = _training_config(policy)
+    env_cfg = config.get("env", {}) if isinstance(config, dict) else {}
+    n_landmarks = args.landmarks if args.landmarks is not None else int(env_cfg.get("landmarks", 0))
+    graph = load_graph(resolve_graph_path(args.graph))
+    landmarks = None
+    if n_landmarks > 0:
+        from planner.heuristics import load_or_build_landmarks
+
+        landmarks = load_or_build_landmarks(graph, count=n_landmarks, progress=False)
+    settings = EvalSettings(
+        n_queries=args.queries,
+        seed=args.seed,
+        budgets=args.budgets,
+        deadlines_ms=list(args.deadlines_ms),
+        controllers=controllers,
+        short_fraction=float(env_cfg.get("short_fraction", 0.5)),
+        importance_queries=args.importance_queries,
+    )
+    train_seed = env_cfg.get("query_seed")
+    if train_seed is not None and int(train_seed) == args.seed:
+        raise InvalidRequest(
+            f"--seed {args.seed} is the seed the policy's training queries were drawn with; "
+            "evaluate on held-out queries with another seed"
+        )
+    try:
+        summary = evaluate(
+            graph,
+            policy,
+            args.out,
+            settings,
+            planner=Planner(graph, landmarks=landmarks),
+            curve_csv=side_files(policy_path)[1],
+            progress=not args.no_progress,
+        )
+    except OSError as exc:
+        raise InvalidRequest(f"cannot write the report to {args.out}: {exc}") from exc
+    summary["landmarks"] = n_landmarks
+    summary["out"] = str(args.out)
+    emit(summary, args.json, _format_evaluate)
+    return 0
+
+
+def _training_config(policy: Any) -> dict[str, Any]:
+    try:
+        value = json.loads(policy.metadata.get("training_config", "{}"))
+    except ValueError:
+        return {}
+    return value if isinstance(value, dict) else {}
+
+
+def _format_evaluate(s: dict[str, Any]) -> str:
+    from policies.evaluate import markdown_report
+
+    return markdown_report(s) + f"\nreport written to {s['out']} in {s['seconds']:.0f} s"
+
+
+# --------------------------------------------------------------------------------------------
+# policy check
+
+
+def cmd_check(args: argparse.Namespace) -> int:
+    from policies.runtime import check_policy, load_policy
+
+    problems = check_policy(args.file)
+    result: dict[str, Any] = {"file": args.file, "ok": not problems, "problems": problems}
+    if not problems:
+        result["policy"] = load_policy(args.file).info()
+    emit(result, args.json, _format_check)
+    return 2 if problems else 0
+
+
+def _format_check(r: dict[str, Any]) -> str:
+    if r["ok"]:
+        p = r["policy"]
+        return "\n".join(
+            [
+                f"{r['file']}: ok",
+                f"  sha256 {p['sha256'][:16]}  {p['size_bytes'] / 1024:.1f} kB  feature schema "
+                f"{p['schema_version']} ({len(p['feature_names'])} features)",
+                f"  actions ({p['action_kind']}): {', '.join(p['action_meanings'])}",
+                f"  trained on {p['graph_name'] or '?'} ({(p['graph_fingerprint'] or '?')[:16]}) "
+                f"with {p['contract_expansions']:,} expansions in {p['decision_steps']} steps, "
+                f"{p['created_utc']}",
+            ]
+        )
+    lines = [f"{r['file']}: {len(r['problems'])} problem(s), not usable as a policy"]
+    lines += [f"  - {p}" for p in r["problems"]]
+    return "\n".join(lines)
