@@ -63,10 +63,11 @@ def load_graph_arg(arg: str) -> Any:
 
 
 def progress(iterable: Any = None, **kwargs: Any) -> Any:
-    """A tqdm progress bar on stderr, quiet when stderr is not a terminal unless forced."""
+    """A tqdm progress bar on stderr; quiet when stderr is not a terminal (``disable=None``)."""
     from tqdm import tqdm
 
     kwargs.setdefault("file", sys.stderr)
+    kwargs.setdefault("disable", None)
     kwargs.setdefault("dynamic_ncols", True)
     kwargs.setdefault("mininterval", 0.5)
     return tqdm(iterable, **kwargs)
