@@ -83,6 +83,7 @@ from __future__ import annotations
 
 import json
 import math
+import os
 import sys
 import time
 import zipfile
@@ -500,16 +501,21 @@ def save_landmarks(landmarks: Landmarks, path: str | Path) -> Path:
         slack_s=landmarks.slack_s,
         max_distance_s=landmarks.max_distance_s,
     )
-    tmp = path.with_name(path.name + ".tmp")
-    with open(tmp, "wb") as fh:
-        np.savez(
-            fh,
-            meta=np.array(json.dumps(meta, sort_keys=True)),
-            nodes=np.ascontiguousarray(landmarks.nodes, dtype=np.int32),
-            lm_from=np.ascontiguousarray(landmarks.lm_from, dtype=np.float32),
-            lm_to=np.ascontiguousarray(landmarks.lm_to, dtype=np.float32),
-        )
-    tmp.replace(path)
+    # one temp file per process: several workers may build the same landmarks at once, and
+    # the rename makes whichever finishes last the complete file readers see
+    tmp = path.with_name(f"{path.name}.{os.getpid()}.tmp")
+    try:
+        with open(tmp, "wb") as fh:
+            np.savez(
+                fh,
+                meta=np.array(json.dumps(meta, sort_keys=True)),
+                nodes=np.ascontiguousarray(landmarks.nodes, dtype=np.int32),
+                lm_from=np.ascontiguousarray(landmarks.lm_from, dtype=np.float32),
+                lm_to=np.ascontiguousarray(landmarks.lm_to, dtype=np.float32),
+            )
+        tmp.replace(path)
+    finally:
+        tmp.unlink(missing_ok=True)
     return path
 
 
@@ -624,7 +630,8 @@ def load_or_build_landmarks(
     The file is ``path`` or ``<graph>.landmarks.npz``. A file built for another version of the
     graph (fingerprint differs) or with another count or method is rebuilt and replaced; a
     corrupt file raises :class:`CorruptGraphFile` (delete it, or pass ``rebuild=True``). A graph
-    that was never saved (``graph.path is None``) and no ``path`` gives landmarks in memory.
+    that was never saved (``graph.path is None``) and no ``path`` gives landmarks in memory, and
+    so does a folder we may not write to (``meta["not_saved"]`` says why).
     """
     target = Path(path) if path is not None else None
     if target is None and graph.path is not None:
@@ -642,5 +649,9 @@ def load_or_build_landmarks(
     built = build_landmarks(graph, count=count, method=method, seed=seed, progress=progress)
     if target is None:
         return built
-    save_landmarks(built, target)
+    try:
+        save_landmarks(built, target)
+    except OSError as exc:  # read-only folder, disk full: the search still works from memory
+        built.meta["not_saved"] = f"{target}: {exc}"
+        return built
     return load_landmarks(target, graph)

@@ -381,3 +381,27 @@ def test_kernel_with_landmarks_is_exact(method: str) -> None:
         for imp in result.improvements:
             assert imp.lower_bound_s <= exact[o, d] * (1 + 1e-12) + 1e-12
     assert unreachable > 0, "the sample should include pairs without a path"
+
+
+def test_load_or_build_works_when_the_folder_is_read_only(
+    tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A graph in a folder we may not write to still gets landmarks (in memory), with the
+    reason recorded; no temp file is left behind."""
+    import planner.heuristics as heuristics
+    from planner.graph import load_graph
+
+    graph = load_graph(save_graph(random_graph(8), tmp_path / "town.npz"))
+    real_open = open
+
+    def refuse(path, *args, **kwargs):
+        if str(path).endswith(".tmp"):
+            raise PermissionError(13, "Permission denied", str(path))
+        return real_open(path, *args, **kwargs)
+
+    monkeypatch.setattr("builtins.open", refuse)
+    lm = heuristics.load_or_build_landmarks(graph, count=3, progress=False)
+    monkeypatch.undo()
+    assert lm.count == 3 and lm.path is None
+    assert "town.landmarks.npz" in lm.meta["not_saved"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["town.npz"]
