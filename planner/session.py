@@ -770,7 +770,7 @@ class Search:
         inc = float(ws.fstate[K.F_INCUMBENT])
         if self._cost is not None:
             inc = min(inc, self._cost)
-        min_f = float(ws.heapf[1, 0]) if ws.istate[K.I_SIZE] > 0 else math.inf
+        min_f = K.open_min_f(ws.heapf, ws.istate)
         b = min(inc, min_f)
         if math.isfinite(b) and b > self._bound:
             self._bound = b
@@ -783,7 +783,7 @@ class Search:
             size = int(ist[K.I_SIZE])
             self._update_bound(ws)
             expansions = int(ist[K.I_EXPANSIONS])
-            min_f = float(ws.heapf[1, 0]) if size > 0 else math.inf
+            min_f = K.open_min_f(ws.heapf, ws.istate)
             mean_g = float(fst[K.F_SUM_G]) / size if size else 0.0
             mean_h = float(fst[K.F_SUM_H]) / size if size else 0.0
             touched, reopened = int(ist[K.I_TOUCHED]), int(ist[K.I_REOPENED])
