@@ -1,0 +1,144 @@
+"""Smoke runs of 'dueroute train', 'dueroute evaluate' and 'dueroute policy check' with tiny
+sizes (common practice: every entry point runs end to end in the test suite)."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from planner.graph import save_graph
+from service.cli import main
+
+from .conftest import make_grid_graph
+
+
+@pytest.fixture(scope="module")
+def trained(tmp_path_factory) -> tuple[Path, Path]:
+    folder = tmp_path_factory.mktemp("cli")
+    graph_path = save_graph(make_grid_graph(10, 10, seed=3), folder / "grid.npz")
+    out = folder / "p.onnx"
+    rc = main(
+        [
+            "train",
+            str(graph_path),
+            "--out",
+            str(out),
+            "--episodes",
+            "12",
+            "--budget",
+            "60",
+            "--steps",
+            "4",
+            "--n-queries",
+            "10",
+            "--learning-starts",
+            "10",
+            "--batch-size",
+            "8",
+            "--eval-every-episodes",
+            "6",
+            "--validation-queries",
+            "3",
+            "--landmarks",
+            "0",
+            "--no-progress",
+            "--json",
+        ]
+    )
+    assert rc == 0
+    return graph_path, out
+
+
+def test_train_writes_policy_config_and_curve(trained, capsys):
+    _, out = trained
+    assert out.is_file()
+    config = json.loads(out.with_suffix(".config.json").read_text())
+    assert config["dqn"]["episodes"] == 12 and config["env"]["budget_expansions"] == 60
+    assert len(out.with_suffix(".curve.csv").read_text().splitlines()) == 13
+    assert main(["policy", "check", str(out), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out.strip().splitlines()[-1])
+    assert report["ok"] and report["policy"]["contract_expansions"] == 60
+
+
+def test_evaluate_writes_report(trained, tmp_path, capsys):
+    graph_path, policy = trained
+    out = tmp_path / "report"
+    rc = main(
+        [
+            "evaluate",
+            str(graph_path),
+            "--policy",
+            str(policy),
+            "--queries",
+            "6",
+            "--deadlines-ms",
+            "20",
+            "--importance-queries",
+            "2",
+            "--out",
+            str(out),
+            "--no-progress",
+            "--json",
+        ]
+    )
+    assert rc == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert set(summary["contracts"]) == {"budget_30", "budget_60", "budget_120", "deadline_20"}
+    assert summary["contracts"]["budget_60"]["trained"]
+    assert len(summary["contracts"]["budget_60"]["controllers"]) == 10
+    assert "p_value" in summary["paired_tests"]["best_fixed"]
+    for name in (
+        "summary.json",
+        "results.md",
+        "per_query.csv",
+        "quality_boxplot.png",
+        "anytime_profile.png",
+        "learned_weights.png",
+        "training_curve.png",
+        "feature_importance.png",
+    ):
+        assert (out / name).is_file(), name
+
+
+def test_policy_check_explains_problems(tmp_path, capsys):
+    bad = tmp_path / "bad.onnx"
+    bad.write_bytes(b"")
+    assert main(["policy", "check", str(bad)]) == 2
+    out = capsys.readouterr().out
+    assert "file is empty" in out and "not usable" in out
+
+
+def test_bad_arguments_give_one_line_errors(trained, tmp_path, capsys):
+    graph_path, policy = trained
+    assert main(["train", str(graph_path), "--gamma", "2", "--out", str(tmp_path / "x.onnx")]) == 2
+    assert "gamma must be in [0, 1]" in capsys.readouterr().err
+    assert main(["train", str(graph_path), "--out", str(tmp_path / "x.txt")]) == 2
+    assert "--out must name a .onnx file" in capsys.readouterr().err
+    rc = main(
+        [
+            "evaluate",
+            str(graph_path),
+            "--policy",
+            str(policy),
+            "--seed",
+            "1",
+            "--out",
+            str(tmp_path / "r"),
+        ]
+    )
+    assert rc == 2
+    assert "training queries were drawn with" in capsys.readouterr().err
+    rc = main(
+        [
+            "evaluate",
+            str(graph_path),
+            "--policy",
+            str(tmp_path / "missing.onnx"),
+            "--out",
+            str(tmp_path / "r"),
+        ]
+    )
+    assert rc == 2
+    assert "file not found" in capsys.readouterr().err
