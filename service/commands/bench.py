@@ -49,6 +49,9 @@ TARGETS: tuple[tuple[str, str, str, float], ...] = (
 
 MAX_QUERIES = 100_000
 
+#: Long trips on the demo region start and end this close to the two town centres.
+TOWN_CENTRE_RADIUS_M = 1000.0
+
 
 def register(sub: Any) -> argparse.ArgumentParser:
     """Add the ``bench`` command group (``bench search``); returns its parser."""
@@ -127,8 +130,8 @@ def sample_pairs(graph: Any, count: int, rng: np.random.Generator) -> list[tuple
 def long_trip_pairs(graph: Any, count: int, rng: np.random.Generator) -> tuple[list, str]:
     """Long trips for the ALT comparison, and a note on how they were chosen.
 
-    On the demo region: nodes near the two town centres (the demo query sampler when
-    ``demo_data`` offers one). Elsewhere: for random origins, the node of the largest strong
+    On the demo region: nodes near the two town centres (from the graph's ``places``).
+    Elsewhere: for random origins, the node of the largest strong
     component farthest away by great-circle distance.
     """
     from planner.graph import great_circle_m
@@ -152,19 +155,34 @@ def long_trip_pairs(graph: Any, count: int, rng: np.random.Generator) -> tuple[l
 
 
 def _demo_town_trips(graph: Any, count: int, rng: np.random.Generator) -> tuple[list, str] | None:
-    """Trips between the two demo towns, if the graph is a demo region and the sampler exists."""
-    try:
-        from demo_data import queries as demo_queries  # type: ignore[attr-defined]
-    except ImportError:
+    """Trips between the two demo towns (``meta["places"]`` of a demo graph), else ``None``.
+
+    Origins and destinations are nodes of the largest strong component within
+    :data:`TOWN_CENTRE_RADIUS_M` of the two largest towns' centres; directions alternate.
+    """
+    from planner.graph import great_circle_m
+    from planner.heuristics import largest_component_nodes
+
+    places = graph.meta.get("places") or []
+    towns = sorted(
+        (p for p in places if isinstance(p, dict) and p.get("kind") == "town"),
+        key=lambda p: -float(p.get("radius_m", 0.0)),
+    )[:2]
+    if len(towns) < 2:
         return None
-    sampler = getattr(demo_queries, "town_to_town_pairs", None)
-    if sampler is None:
-        return None
-    try:
-        pairs = sampler(graph, count, seed=int(rng.integers(2**31)))
-    except Exception:  # not a demo graph (no towns in its meta): fall back to generic trips
-        return None
-    return [(int(o), int(d)) for o, d in pairs], "between the two demo town centres"
+    nodes = largest_component_nodes(graph)
+    lat, lon = np.asarray(graph.lat)[nodes], np.asarray(graph.lon)[nodes]
+    near = []
+    for town in towns:
+        d = great_circle_m(lat, lon, float(town["lat"]), float(town["lon"]))
+        pick = nodes[d <= TOWN_CENTRE_RADIUS_M]
+        near.append(pick if pick.shape[0] else nodes[[int(np.argmin(d))]])
+    pairs = []
+    for i in range(count):
+        a, b = (near[0], near[1]) if i % 2 == 0 else (near[1], near[0])
+        pairs.append((int(rng.choice(a)), int(rng.choice(b))))
+    names = f"{towns[0]['name']} and {towns[1]['name']}"
+    return pairs, f"between the centres of {names} (within {TOWN_CENTRE_RADIUS_M:.0f} m)"
 
 
 #: Clock for rates and ratios: CPU time of the benchmark thread. The kernel (GIL released,
@@ -416,18 +434,18 @@ def run_order(graph: Any, pairs: Sequence[tuple[int, int]]) -> dict[str, KernelR
 
 
 def _default_large() -> tuple[Path | None, str]:
+    """The cached ``large`` demo graph, without building it (a build takes minutes)."""
     try:
-        from demo_data.build import demo_graph_path
+        from demo_data.build import cache_key, data_dir
+        from demo_data.generate import default_seed, load_scenario
     except ImportError:
-        return None, "demo_data.build is not available"
-    try:
-        path = Path(demo_graph_path("large", build=False))
-    except TypeError:  # the builder takes no build flag: only use a file that already exists
-        return None, "cannot locate the large demo graph without building it"
-    except Exception as exc:  # noqa: BLE001 - any failure here only skips this part
-        return None, f"large demo graph not available ({exc})"
+        return None, "the demo region builder (demo_data) is not available; pass --large GRAPH"
+    path = data_dir() / f"{cache_key('large', default_seed(load_scenario()))}.npz"
     if not path.is_file():
-        return None, f"large demo graph not built ({path}); build it or pass --large GRAPH"
+        return None, (
+            f"the large demo graph is not built ({path}); build it with "
+            "'dueroute graph generate' (size large) or pass --large GRAPH"
+        )
     return path, ""
 
 

@@ -157,3 +157,28 @@ def test_bench_refuses_a_non_graph_file(tmp_path: Path, capsys: pytest.CaptureFi
     code, _, err = run_bench(capsys, str(tmp_path / "map.osm"))
     assert code == 2
     assert "is not a compiled graph" in err
+
+
+def test_long_trips_run_between_the_two_towns(tmp_path: Path) -> None:
+    """On a graph with demo places, long trips join the two towns' centres (distances by the
+    haversine formula, as osmnx computes edge lengths)."""
+    import dataclasses
+
+    from planner.graph import load_graph
+    from service.commands.bench import TOWN_CENTRE_RADIUS_M, long_trip_pairs
+
+    graph = load_graph(grid_graph_file(tmp_path / "grid.npz", side=12))
+    lat, lon = np.asarray(graph.lat), np.asarray(graph.lon)
+    west, east = int(np.argmin(lon)), int(np.argmax(lon))
+    places = [
+        {"name": "Westby", "kind": "town", "lat": lat[west], "lon": lon[west], "radius_m": 900},
+        {"name": "Eastwick", "kind": "town", "lat": lat[east], "lon": lon[east], "radius_m": 800},
+        {"name": "Hamlet", "kind": "village", "lat": 45.0, "lon": 7.0, "radius_m": 5000},
+    ]
+    graph = dataclasses.replace(graph, meta={**graph.meta, "places": places})
+    pairs, how = long_trip_pairs(graph, 6, np.random.default_rng(1))
+    assert "Westby and Eastwick" in how
+    for i, (o, d) in enumerate(pairs):
+        a, b = (west, east) if i % 2 == 0 else (east, west)
+        assert great_circle_m(lat[o], lon[o], lat[a], lon[a]) <= TOWN_CENTRE_RADIUS_M
+        assert great_circle_m(lat[d], lon[d], lat[b], lon[b]) <= TOWN_CENTRE_RADIUS_M
