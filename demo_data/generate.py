@@ -315,16 +315,16 @@ class _River:
         cand: dict[int, set[int]] = {}
         # Most segments are short (one bucket): look those up directly.
         for i in np.nonzero((lo[:, 0] == hi[:, 0]) & (lo[:, 1] == hi[:, 1]))[0]:
-            ks = self.index.get((int(lo[i, 0]), int(lo[i, 1])))
-            if ks:
-                cand[int(i)] = set(ks)
+            hits = self.index.get((int(lo[i, 0]), int(lo[i, 1])))
+            if hits:
+                cand[int(i)] = set(hits)
         for i in np.nonzero((lo[:, 0] != hi[:, 0]) | (lo[:, 1] != hi[:, 1]))[0]:
-            ks: set[int] = set()
+            near: set[int] = set()
             for bx in range(int(lo[i, 0]), int(hi[i, 0]) + 1):
                 for by in range(int(lo[i, 1]), int(hi[i, 1]) + 1):
-                    ks.update(self.index.get((bx, by), ()))
-            if ks:
-                cand[int(i)] = ks
+                    near.update(self.index.get((bx, by), ()))
+            if near:
+                cand[int(i)] = near
         if not cand:
             return out
         seg_i = np.array([i for i, ks in cand.items() for _ in ks], dtype=np.int64)

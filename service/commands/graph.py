@@ -70,6 +70,9 @@ def register(sub: Any) -> argparse.ArgumentParser:
     plot.add_argument("--dpi", type=int, default=150, help="image resolution (20..1200)")
     add_json_flag(plot)
     plot.set_defaults(func=cmd_plot)
+    from demo_data.cli import register_generate
+
+    register_generate(graph_sub)
     return parser
 
 

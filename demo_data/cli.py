@@ -1,0 +1,123 @@
+"""``dueroute graph generate``: write the fictional demo region as a graph or as OSM XML."""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import time
+from pathlib import Path
+from typing import Any
+
+from planner.errors import InvalidRequest
+
+#: Output formats and the file suffix each needs.
+FORMATS = {"npz": ".npz", "osm": ".osm"}
+
+
+def register_generate(graph_subparsers: Any) -> argparse.ArgumentParser:
+    """Add ``generate`` to the ``dueroute graph`` group."""
+    from demo_data.generate import SIZES
+
+    p = graph_subparsers.add_parser(
+        "generate",
+        help="generate the fictional demo region (Veyrand Coast) as a graph or OSM XML",
+        description=(
+            "Generate the fictional demo region. 'npz' builds the compiled graph (through the "
+            "osmnx importer for tiny/demo, directly for large) and reuses the build cache; "
+            "'osm' writes the OSM XML the importer reads (tiny and demo only)."
+        ),
+    )
+    p.add_argument("--size", choices=SIZES, default="demo", help="region size (default: demo)")
+    p.add_argument("-o", "--output", required=True, metavar="OUT", help="file to write")
+    p.add_argument(
+        "--seed", type=int, default=None, help="generator seed (default: the scenario's)"
+    )
+    p.add_argument(
+        "--format",
+        choices=sorted(FORMATS),
+        default=None,
+        help="npz (compiled graph) or osm (OSM XML); default from the OUT suffix, else npz",
+    )
+    p.add_argument("--json", action="store_true", help="print machine-readable JSON")
+    p.set_defaults(func=cmd_generate)
+    return p
+
+
+def cmd_generate(args: argparse.Namespace) -> int:
+    from service.commands.common import emit
+
+    out = Path(args.output)
+    fmt = args.format
+    if fmt is None:
+        fmt = "osm" if out.suffix == ".osm" else "npz"
+    if out.suffix != FORMATS[fmt]:
+        raise InvalidRequest(
+            f"output {str(out)!r} does not match --format {fmt}: the file name must end in "
+            f"{FORMATS[fmt]}"
+        )
+    if args.seed is not None and args.seed < 0:
+        raise InvalidRequest(f"--seed must be a non-negative integer, got {args.seed}")
+    if out.is_dir():
+        raise InvalidRequest(f"output {str(out)!r} is a directory; give a file name")
+    result = generate_to(args.size, out, fmt=fmt, seed=args.seed, progress=not args.json)
+    emit(result, args.json, _human)
+    return 0
+
+
+def generate_to(
+    size: str, out: Path, *, fmt: str = "npz", seed: int | None = None, progress: bool = True
+) -> dict[str, Any]:
+    """Write one size of the demo region to ``out``; returns a summary dict."""
+    from demo_data.build import OSM_SIZES, demo_graph_path
+    from demo_data.generate import default_seed, generate, write_osm
+
+    seed = default_seed() if seed is None else seed
+    t0 = time.perf_counter()
+    out.parent.mkdir(parents=True, exist_ok=True)
+    if fmt == "osm":
+        if size not in OSM_SIZES:
+            raise InvalidRequest(
+                f"size {size!r} is compiled directly and not offered as OSM XML (an osmnx "
+                f"import of it would not fit in memory); OSM XML sizes: {', '.join(OSM_SIZES)}"
+            )
+        region = generate(size, seed=seed)
+        nbytes = write_osm(region, out)
+        return {
+            "size": size,
+            "seed": seed,
+            "format": fmt,
+            "output": str(out),
+            "osm_nodes": region.n_nodes,
+            "osm_ways": len(region.ways),
+            "bytes": nbytes,
+            "seconds": round(time.perf_counter() - t0, 3),
+        }
+    from planner.graph import load_graph
+
+    cached = demo_graph_path(size, seed=seed, progress=progress)
+    tmp = out.with_name(out.name + ".tmp")
+    shutil.copyfile(cached, tmp)
+    tmp.replace(out)
+    graph = load_graph(out)
+    return {
+        "size": size,
+        "seed": seed,
+        "format": fmt,
+        "output": str(out),
+        "nodes": graph.n_nodes,
+        "edges": graph.n_edges,
+        "bytes": out.stat().st_size,
+        "cached_build": str(cached),
+        "seconds": round(time.perf_counter() - t0, 3),
+    }
+
+
+def _human(r: dict[str, Any]) -> str:
+    if r["format"] == "osm":
+        what = f"{r['osm_nodes']:,} OSM nodes, {r['osm_ways']:,} ways"
+    else:
+        what = f"{r['nodes']:,} nodes, {r['edges']:,} edges"
+    return (
+        f"wrote {r['output']} ({r['size']} demo region, seed {r['seed']}): {what}, "
+        f"{r['bytes'] / 1e6:.1f} MB in {r['seconds']:.1f} s"
+    )
