@@ -6,12 +6,15 @@ The kernel receives, from a :class:`Landmarks`, the arrays ``lm_from`` and ``lm_
 (``float32[n, L]``, node-major and C-contiguous: row ``v`` holds ``L`` values, ``L`` may be 0) and
 the scalar ``slack_s``, and computes for a node ``v`` and destination ``t``, in float64::
 
-    h(v) = max(great_circle_m(v, t) * (1 - 1e-9) / max_speed_mps,
+    h(v) = max(chord_m(v, t) * (1 - 1e-9) / max_speed_mps,
                max_i max(lm_from[t, i] - lm_from[v, i], lm_to[v, i] - lm_to[t, i]) - slack_s,
                0)
 
 with ``lm_from[v, i] = d(landmark_i -> v)`` and ``lm_to[v, i] = d(v -> landmark_i)`` in seconds on
-free-flow costs. ``(1 - 1e-9)`` absorbs the last-bit differences between two haversine
+free-flow costs. The kernel's first term uses the chord (straight line through the earth),
+which never exceeds the great-circle distance; :func:`great_circle_bound_s` here is the
+great-circle version of the same bound (>= the kernel's, still admissible), kept as the
+reference the tests check. ``(1 - 1e-9)`` absorbs last-bit differences between two distance
 evaluations of a straight edge driven at top speed.
 
 Missing distances are stored as ``+inf``; the arrays never hold NaN or negative values. The
@@ -242,7 +245,8 @@ def alt_bound_s(landmarks: Landmarks, v: Any, t: int) -> Any:
 
 
 def heuristic_s(graph: RoadGraph, landmarks: Landmarks | None, v: Any, t: int) -> Any:
-    """``max(great-circle bound, landmark bound, 0)``: what the kernel uses as ``h``."""
+    """``max(great-circle bound, landmark bound, 0)``: the kernel's ``h`` with the arc in place
+    of the chord (so never below the kernel's value, and still admissible)."""
     gc = great_circle_bound_s(graph, v, t)
     if landmarks is None:
         return gc
