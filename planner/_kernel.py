@@ -26,26 +26,37 @@ ALT term so that float32 rounding of the stored distances cannot make the bound 
 
 Workspace layout (one per concurrently running search, reused across queries)
 -----------------------------------------------------------------------------
-``nodei : int32[n, 5]`` columns ``N_STAMP, N_POS, N_FPOS, N_PARENT, N_PEDGE`` and
+``nodei : int32[n, 4]`` columns ``N_STAMP, N_OPEN, N_PARENT, N_PEDGE`` and
 ``nodef : float64[n, 2]`` columns ``N_G, N_H``. A row is valid only where
 ``nodei[v, N_STAMP] == istate[I_GEN]``; a new query bumps the generation instead of clearing
-O(n) memory. ``heapf : float64[2, n]`` / ``heapi : int32[2, n]`` are two indexed binary heaps
-over the same node set (the open list): row 0 ordered by the search key (``g + w*h``, or the
-ANA* key), row 1 ordered by ``f = g + h`` so that ``min f`` over open (the lower bound) is
-``heapf[1, 0]`` -- except under weight 1, where row 0 is ordered by f already, row 1 is not
-kept (``istate[I_FHEAP_ON] == 0``) and ``min f`` is ``heapf[0, 0]`` (see :func:`open_min_f`). ``N_POS`` / ``N_FPOS`` give a node's slot in each heap, -1 when not open.
+O(n) memory. ``N_OPEN`` is 1 while the node is on the open list.
+
+``heap : float64[2, cap, 2]`` holds two 4-ary min-heaps of ``(key, node)`` entries with lazy
+deletion (``cap`` = n + max(n // 2, 64)): row 0 is ordered by the search key (``g + w*h``, or
+the ANA* key), row 1 by ``f = g + h``. A node's improvement pushes a new entry instead of moving
+the old one; entries of nodes that are no longer open are dropped when they reach the top, and
+an entry of row 1 is current only while its f equals the node's ``g + h``. Because a newer entry
+of a node always has a smaller key than its older ones, the first entry of a node to reach the
+top is its current one. Between calls the top of each row is current, so ``min f`` over open is
+``heap[1, 0, 0]`` -- except under weight 1, where row 0 is ordered by f already, row 1 is not
+kept (``istate[I_FHEAP_ON] == 0``) and ``min f`` is ``heap[0, 0, 0]`` (:func:`open_min_f`).
+When a row is full it is compacted to one entry per open node (O(entries)); the open list has
+at most n - 1 nodes, so that always frees room. A weight, mode or (ANA*) incumbent change
+re-keys row 0 the same way.
+
 ``istate : int64[I_LEN]`` and ``fstate : float64[F_LEN]`` carry everything else, so a chunk
-call passes 12 arguments.
+call passes 11 arguments (numba's dispatch cost grows with the argument count).
 
 Invariants kept by :func:`run_chunk`
 ------------------------------------
-* Every open node has ``g + h < incumbent`` when it was pushed; entries whose ``f`` reached the
+* Every open node had ``g + h < incumbent`` when it was opened; nodes whose ``f`` reached the
   incumbent later are discarded, unexpanded, when popped.
-* ``fstate[F_SUM_G]`` / ``fstate[F_SUM_H]`` are the sums of g / h over the open list.
-* The destination is never pushed: reaching it with a better g makes it the incumbent, the
+* ``istate[I_SIZE]`` is the number of open nodes; ``fstate[F_SUM_G]`` / ``fstate[F_SUM_H]``
+  are the sums of g / h over them.
+* The destination is never opened: reaching it with a better g makes it the incumbent, the
   current expansion is finished and the call returns ``IMPROVED`` so the caller can extract the
   route at once (parent pointers of a route never change while the kernel is not running).
-* ``min(incumbent, heapf[1, 0])`` never exceeds the optimal cost (for an admissible h).
+* ``min(incumbent, min f over open)`` never exceeds the optimal cost (for an admissible h).
 """
 
 from __future__ import annotations
@@ -62,13 +73,13 @@ PROVEN = 2  #: open list empty or min f >= incumbent: incumbent optimal (or no r
 
 # ---- search modes ----
 MODE_WEIGHTED = 0  #: key g + w*h (Anytime Weighted A*)
-MODE_ANA = 1  #: ANA* key -(G - g)/h; greedy on h (ties on g) before the first route
+MODE_ANA = 1  #: ANA* key -(G - g)/h; greedy on h before the first route (ties arbitrary)
 
 # ---- istate slots (int64) ----
 I_GEN = 0  #: generation stamp of the current query (>= 1)
 I_ORIGIN = 1
 I_TARGET = 2
-I_SIZE = 3  #: open-list size
+I_SIZE = 3  #: number of open nodes
 I_MODE = 4  #: MODE_WEIGHTED or MODE_ANA (caller may change it between calls)
 I_CHUNK = 5  #: expansion limit for the next call (input)
 I_EXPANSIONS = 6  #: total expansions of this query
@@ -79,7 +90,10 @@ I_REOPENED = 10  #: pushes of a node that had been expanded or opened before
 I_PRUNED = 11  #: successors skipped or open entries discarded because g + h >= incumbent
 I_TOUCHED = 12  #: nodes stamped in this query (search footprint)
 I_FHEAP_ON = 13  #: 1 when heap row 1 (ordered by f) is maintained, 0 when row 0 already is
-I_LEN = 16
+I_HEAP0 = 14  #: entries in heap row 0 (>= open nodes: lazy deletion)
+I_HEAP1 = 15  #: entries in heap row 1
+I_COMPACTIONS = 16  #: heap rows compacted or re-keyed
+I_LEN = 20
 
 # ---- fstate slots (float64) ----
 F_WEIGHT = 0  #: weight w of the key g + w*h (input)
@@ -98,11 +112,10 @@ F_LEN = 16
 
 # ---- workspace columns ----
 N_STAMP = 0
-N_POS = 1
-N_FPOS = 2
-N_PARENT = 3
-N_PEDGE = 4
-N_ICOLS = 5
+N_OPEN = 1
+N_PARENT = 2
+N_PEDGE = 3
+N_ICOLS = 4
 N_G = 0
 N_H = 1
 N_FCOLS = 2
@@ -110,6 +123,8 @@ N_FCOLS = 2
 #: Mean earth radius in metres (the value of planner.graph.EARTH_RADIUS_M, osmnx's).
 _EARTH_RADIUS_M = 6_371_009.0
 _INF = np.inf
+#: Heap arity: a 4-ary heap is half as deep as a binary one and its children share cache lines.
+_D = 4
 
 
 @njit(cache=True, nogil=True, inline="always")
@@ -149,79 +164,93 @@ def _key(mode, g, h, w, incumbent):
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _sift_up(heapf, heapi, row, col, nodei, nodef, i):
-    """Move slot i of heap ``row`` up; ties on key go to the smaller g."""
-    key = heapf[row, i]
-    node = heapi[row, i]
-    g = nodef[node, N_G]
-    while i > 0:
-        p = (i - 1) >> 1
-        pk = heapf[row, p]
-        if pk < key:
-            break
-        pn = heapi[row, p]
-        if pk == key and nodef[pn, N_G] <= g:
-            break
-        heapf[row, i] = pk
-        heapi[row, i] = pn
-        nodei[pn, col] = i
-        i = p
-    heapf[row, i] = key
-    heapi[row, i] = node
-    nodei[node, col] = i
+def _key(mode, g, h, w, incumbent):
+    if mode == MODE_WEIGHTED:
+        return g + w * h
+    if incumbent == _INF:
+        return h  # greedy before the first route
+    if h <= 0.0:
+        return -_INF
+    return -(incumbent - g) / h
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _sift_down(heapf, heapi, row, col, nodei, nodef, i, size):
-    key = heapf[row, i]
-    node = heapi[row, i]
-    g = nodef[node, N_G]
+def _sift_down(heap, row, i, key, node, size):
+    """Place entry (key, node) at slot i or below in a heap of ``size`` entries."""
     while True:
-        c = 2 * i + 1
+        c = _D * i + 1
         if c >= size:
             break
-        ck = heapf[row, c]
-        cn = heapi[row, c]
-        r = c + 1
-        if r < size:
-            rk = heapf[row, r]
-            if rk < ck or (rk == ck and nodef[heapi[row, r], N_G] < nodef[cn, N_G]):
-                c = r
-                ck = rk
-                cn = heapi[row, r]
-        if key < ck or (key == ck and g <= nodef[cn, N_G]):
+        best = c
+        bk = heap[row, c, 0]
+        end = c + _D
+        if end > size:
+            end = size
+        for j in range(c + 1, end):
+            jk = heap[row, j, 0]
+            if jk < bk:
+                best = j
+                bk = jk
+        if key <= bk:
             break
-        heapf[row, i] = ck
-        heapi[row, i] = cn
-        nodei[cn, col] = i
-        i = c
-    heapf[row, i] = key
-    heapi[row, i] = node
-    nodei[node, col] = i
+        heap[row, i, 0] = bk
+        heap[row, i, 1] = heap[row, best, 1]
+        i = best
+    heap[row, i, 0] = key
+    heap[row, i, 1] = node
 
 
 @njit(cache=True, nogil=True, inline="always")
-def _remove_at(heapf, heapi, row, col, nodei, nodef, i, size):
-    """Remove slot i from a heap of ``size`` entries (the caller decrements the size)."""
-    nodei[heapi[row, i], col] = -1
+def _push(heap, row, size, key, node):
+    """Add an entry to a heap of ``size`` entries (the caller increments the size)."""
+    i = size
+    while i > 0:
+        p = (i - 1) // _D
+        pk = heap[row, p, 0]
+        if pk <= key:
+            break
+        heap[row, i, 0] = pk
+        heap[row, i, 1] = heap[row, p, 1]
+        i = p
+    heap[row, i, 0] = key
+    heap[row, i, 1] = node
+
+
+@njit(cache=True, nogil=True, inline="always")
+def _pop(heap, row, size):
+    """Remove the top entry of a heap of ``size`` > 0 entries (the caller decrements)."""
     last = size - 1
-    if i == last:
-        return
-    heapf[row, i] = heapf[row, last]
-    heapi[row, i] = heapi[row, last]
-    nodei[heapi[row, i], col] = i
-    if i > 0 and heapf[row, i] < heapf[row, (i - 1) >> 1]:
-        _sift_up(heapf, heapi, row, col, nodei, nodef, i)
-    else:
-        _sift_down(heapf, heapi, row, col, nodei, nodef, i, last)
+    if last > 0:
+        _sift_down(heap, row, 0, heap[row, last, 0], heap[row, last, 1], last)
 
 
 @njit(cache=True, nogil=True)
-def start_query(coords, lm_from, lm_to, nodei, nodef, heapf, heapi, istate, fstate):
-    """Open a query: stamp origin and destination, push the origin. O(1) in the graph size.
+def _rebuild(heap, src, dst, n_src, nodei, nodef, mode, w, inc):
+    """Write one freshly keyed entry per open node found in row ``src`` into row ``dst``
+    (``src == dst`` compacts in place) and heapify it; returns the new entry count."""
+    k = 0
+    for i in range(n_src):
+        v = np.int64(heap[src, i, 1])
+        if nodei[v, N_OPEN] == 1:
+            nodei[v, N_OPEN] = 2  # taken: later duplicates of v are skipped
+            g = nodef[v, N_G]
+            h = nodef[v, N_H]
+            heap[dst, k, 0] = _key(mode, g, h, w, inc) if dst == 0 else g + h
+            heap[dst, k, 1] = v
+            k += 1
+    for i in range(k):
+        nodei[np.int64(heap[dst, i, 1]), N_OPEN] = 1
+    for i in range((k - 2) // _D, -1, -1):
+        _sift_down(heap, dst, i, heap[dst, i, 0], heap[dst, i, 1], k)
+    return k
+
+
+@njit(cache=True, nogil=True)
+def start_query(coords, lm_from, lm_to, nodei, nodef, heap, istate, fstate):
+    """Open a query: stamp origin and destination, open the origin. O(1) in the graph size.
 
     The caller has set ``I_GEN`` (a fresh generation), ``I_ORIGIN``, ``I_TARGET``, ``I_MODE``,
-    ``F_WEIGHT``, ``F_GC_SCALE``, ``F_LM_SLACK`` and zeroed the counters.
+    ``F_WEIGHT``, ``F_GC_SCALE``, ``F_LM_SLACK`` and zeroed the other slots.
     Returns h(origin).
     """
     gen = istate[I_GEN]
@@ -232,22 +261,22 @@ def start_query(coords, lm_from, lm_to, nodei, nodef, heapf, heapi, istate, fsta
     fstate[F_T_Z] = coords[t, 2]
     fstate[F_INCUMBENT] = _INF
     nodei[t, N_STAMP] = gen
-    nodei[t, N_POS] = -1
-    nodei[t, N_FPOS] = -1
+    nodei[t, N_OPEN] = 0
     nodei[t, N_PARENT] = -1
     nodei[t, N_PEDGE] = -1
     nodef[t, N_G] = _INF
     nodef[t, N_H] = 0.0
     hs = _heuristic(s, t, coords, lm_from, lm_to, fstate)
     nodei[s, N_STAMP] = gen
-    nodei[s, N_POS] = -1
-    nodei[s, N_FPOS] = -1
+    nodei[s, N_OPEN] = 0
     nodei[s, N_PARENT] = -1
     nodei[s, N_PEDGE] = -1
     nodef[s, N_G] = 0.0
     nodef[s, N_H] = hs
     fstate[F_H_START] = hs
     istate[I_SIZE] = 0
+    istate[I_HEAP0] = 0
+    istate[I_HEAP1] = 0
     istate[I_TOUCHED] = 2
     fstate[F_SUM_G] = 0.0
     fstate[F_SUM_H] = 0.0
@@ -259,13 +288,14 @@ def start_query(coords, lm_from, lm_to, nodei, nodef, heapf, heapi, istate, fsta
     fon = 0 if (mode == MODE_WEIGHTED and w == 1.0) else 1
     istate[I_FHEAP_ON] = fon
     if hs < _INF:  # h = inf: the landmarks prove the destination unreachable
-        heapf[0, 0] = _key(mode, 0.0, hs, w, _INF)
-        heapi[0, 0] = s
-        nodei[s, N_POS] = 0
+        nodei[s, N_OPEN] = 1
+        heap[0, 0, 0] = _key(mode, 0.0, hs, w, _INF)
+        heap[0, 0, 1] = s
+        istate[I_HEAP0] = 1
         if fon:
-            heapf[1, 0] = hs
-            heapi[1, 0] = s
-            nodei[s, N_FPOS] = 0
+            heap[1, 0, 0] = hs
+            heap[1, 0, 1] = s
+            istate[I_HEAP1] = 1
         istate[I_SIZE] = 1
         istate[I_PUSHES] = 1
         fstate[F_SUM_H] = hs
@@ -273,9 +303,7 @@ def start_query(coords, lm_from, lm_to, nodei, nodef, heapf, heapi, istate, fsta
 
 
 @njit(cache=True, nogil=True)
-def run_chunk(
-    indptr, head, cost, coords, lm_from, lm_to, nodei, nodef, heapf, heapi, istate, fstate
-):
+def run_chunk(indptr, head, cost, coords, lm_from, lm_to, nodei, nodef, heap, istate, fstate):
     """Expand at most ``istate[I_CHUNK]`` nodes; return CHUNK_DONE, IMPROVED or PROVEN.
 
     Parameters
@@ -286,7 +314,7 @@ def run_chunk(
         Node positions on the earth sphere in metres (:func:`node_coords`).
     lm_from, lm_to : float32[n, L]
         Landmark distances (see the module docstring); L may be 0.
-    nodei, nodef, heapf, heapi, istate, fstate
+    nodei, nodef, heap, istate, fstate
         The workspace (see the module docstring).
     """
     gen = istate[I_GEN]
@@ -294,30 +322,27 @@ def run_chunk(
     mode = istate[I_MODE]
     w = fstate[F_WEIGHT]
     inc = fstate[F_INCUMBENT]
-    size = istate[I_SIZE]
+    cap = heap.shape[1]
+    n_open = istate[I_SIZE]
+    h0 = istate[I_HEAP0]
+    h1 = istate[I_HEAP1]
+    compactions = 0
 
     # Re-key the open list when the ordering changed (weight, mode, or G under ANA*): O(open).
-    # Under weight 1 the search key is f itself, so heap row 1 is dropped and row 0 read instead;
-    # it is rebuilt from the open list when the weight leaves 1.
+    # Under weight 1 the search key is f itself, so row 1 is dropped and row 0 read instead;
+    # row 1 is rebuilt from the open list when the weight leaves 1.
     if (
         mode != istate[I_KEYED_MODE]
         or w != fstate[F_KEYED_WEIGHT]
         or (mode == MODE_ANA and inc != fstate[F_KEYED_INCUMBENT])
     ):
-        for i in range(size):
-            v = heapi[0, i]
-            heapf[0, i] = _key(mode, nodef[v, N_G], nodef[v, N_H], w, inc)
-        for i in range(size // 2 - 1, -1, -1):
-            _sift_down(heapf, heapi, 0, N_POS, nodei, nodef, i, size)
+        h0 = _rebuild(heap, 0, 0, h0, nodei, nodef, mode, w, inc)
+        compactions += 1
         fon_now = 0 if (mode == MODE_WEIGHTED and w == 1.0) else 1
         if fon_now and not istate[I_FHEAP_ON]:
-            for i in range(size):
-                v = heapi[0, i]
-                heapi[1, i] = v
-                heapf[1, i] = nodef[v, N_G] + nodef[v, N_H]
-                nodei[v, N_FPOS] = i
-            for i in range(size // 2 - 1, -1, -1):
-                _sift_down(heapf, heapi, 1, N_FPOS, nodei, nodef, i, size)
+            h1 = _rebuild(heap, 0, 1, h0, nodei, nodef, mode, w, inc)
+        if not fon_now:
+            h1 = 0
         istate[I_FHEAP_ON] = fon_now
         istate[I_KEYED_MODE] = mode
         fstate[F_KEYED_WEIGHT] = w
@@ -335,36 +360,46 @@ def run_chunk(
     touched = 0
     status = CHUNK_DONE
     while True:
-        if size == 0 or heapf[frow, 0] >= inc:
+        # drop entries of closed nodes (and, in row 1, outdated f values) from the tops
+        while h0 > 0 and nodei[np.int64(heap[0, 0, 1]), N_OPEN] == 0:
+            _pop(heap, 0, h0)
+            h0 -= 1
+        if fon:
+            while h1 > 0:
+                v = np.int64(heap[1, 0, 1])
+                if nodei[v, N_OPEN] != 0 and heap[1, 0, 0] == nodef[v, N_G] + nodef[v, N_H]:
+                    break
+                _pop(heap, 1, h1)
+                h1 -= 1
+        if status != CHUNK_DONE:
+            break
+        if n_open == 0 or heap[frow, 0, 0] >= inc:
             status = PROVEN
             break
         if done >= limit:
             break
-        # pop the node with the smallest search key from both heaps
-        u = heapi[0, 0]
-        if fon:
-            _remove_at(heapf, heapi, 1, N_FPOS, nodei, nodef, nodei[u, N_FPOS], size)
-        _remove_at(heapf, heapi, 0, N_POS, nodei, nodef, 0, size)
-        size -= 1
+        u = np.int64(heap[0, 0, 1])
+        _pop(heap, 0, h0)
+        h0 -= 1
+        nodei[u, N_OPEN] = 0
+        n_open -= 1
         gu = nodef[u, N_G]
         hu = nodef[u, N_H]
         sum_g -= gu
         sum_h -= hu
-        if size == 0:  # cancel drift of the running sums
+        if n_open == 0:  # cancel drift of the running sums
             sum_g = 0.0
             sum_h = 0.0
         if gu + hu >= inc:
             pruned += 1
             continue
         done += 1
-        improved = False
         for e in range(indptr[u], indptr[u + 1]):
-            v = head[e]
+            v = np.int64(head[e])
             nv = gu + cost[e]
             if nodei[v, N_STAMP] != gen:
                 nodei[v, N_STAMP] = gen
-                nodei[v, N_POS] = -1
-                nodei[v, N_FPOS] = -1
+                nodei[v, N_OPEN] = 0
                 nodef[v, N_G] = _INF
                 nodef[v, N_H] = _heuristic(v, t, coords, lm_from, lm_to, fstate)
                 touched += 1
@@ -377,7 +412,7 @@ def run_chunk(
                     nodef[v, N_G] = nv
                     nodei[v, N_PARENT] = u
                     nodei[v, N_PEDGE] = e
-                    improved = True
+                    status = IMPROVED
                 continue
             hv = nodef[v, N_H]
             if nv + hv >= inc:
@@ -386,51 +421,51 @@ def run_chunk(
             nodef[v, N_G] = nv
             nodei[v, N_PARENT] = u
             nodei[v, N_PEDGE] = e
-            p = nodei[v, N_POS]
-            if p >= 0:  # decrease-key in both heaps
+            if nodei[v, N_OPEN]:
                 sum_g += nv - old
-                heapf[0, p] = _key(mode, nv, hv, w, inc)
-                _sift_up(heapf, heapi, 0, N_POS, nodei, nodef, p)
-                if fon:
-                    fp = nodei[v, N_FPOS]
-                    heapf[1, fp] = nv + hv
-                    _sift_up(heapf, heapi, 1, N_FPOS, nodei, nodef, fp)
             else:
                 if old < _INF:
                     reopened += 1
-                pushes += 1
-                heapf[0, size] = _key(mode, nv, hv, w, inc)
-                heapi[0, size] = v
-                _sift_up(heapf, heapi, 0, N_POS, nodei, nodef, size)
-                if fon:
-                    heapf[1, size] = nv + hv
-                    heapi[1, size] = v
-                    _sift_up(heapf, heapi, 1, N_FPOS, nodei, nodef, size)
-                size += 1
+                nodei[v, N_OPEN] = 1
+                n_open += 1
                 sum_g += nv
                 sum_h += hv
-        if improved:
+            pushes += 1
+            if h0 == cap:
+                h0 = _rebuild(heap, 0, 0, h0, nodei, nodef, mode, w, inc)
+                compactions += 1
+            _push(heap, 0, h0, _key(mode, nv, hv, w, inc), v)
+            h0 += 1
+            if fon:
+                if h1 == cap:
+                    h1 = _rebuild(heap, 1, 1, h1, nodei, nodef, mode, w, inc)
+                    compactions += 1
+                _push(heap, 1, h1, nv + hv, v)
+                h1 += 1
+        if status == IMPROVED:
             istate[I_IMPROVEMENTS] += 1
-            status = IMPROVED
-            break
+            # loop once more to leave clean tops, then break
 
-    istate[I_SIZE] = size
+    istate[I_SIZE] = n_open
+    istate[I_HEAP0] = h0
+    istate[I_HEAP1] = h1
     istate[I_EXPANSIONS] += done
     istate[I_PUSHES] += pushes
     istate[I_REOPENED] += reopened
     istate[I_PRUNED] += pruned
     istate[I_TOUCHED] += touched
+    istate[I_COMPACTIONS] += compactions
     fstate[F_SUM_G] = sum_g
     fstate[F_SUM_H] = sum_h
     fstate[F_INCUMBENT] = inc
     return status
 
 
-def open_min_f(heapf: np.ndarray, istate: np.ndarray) -> float:
+def open_min_f(heap: np.ndarray, istate: np.ndarray) -> float:
     """min over open of g + h (``inf`` when the open list is empty); Python-side helper."""
     if istate[I_SIZE] <= 0:
         return math.inf
-    return float(heapf[1 if istate[I_FHEAP_ON] else 0, 0])
+    return float(heap[1 if istate[I_FHEAP_ON] else 0, 0, 0])
 
 
 @njit(cache=True, nogil=True)
@@ -461,18 +496,17 @@ def extract_route(nodei, origin, target, max_len):
 
 
 def new_workspace(n_nodes: int) -> tuple[np.ndarray, ...]:
-    """Allocate ``(nodei, nodef, heapf, heapi, istate, fstate)`` for a graph of ``n_nodes``.
+    """Allocate ``(nodei, nodef, heap, istate, fstate)`` for a graph of ``n_nodes``.
 
     Stamps start at 0 and generations at 1, so no row is valid until a query stamps it.
     """
     n = max(int(n_nodes), 1)
     nodei = np.zeros((n, N_ICOLS), dtype=np.int32)
     nodef = np.zeros((n, N_FCOLS), dtype=np.float64)
-    heapf = np.zeros((2, n), dtype=np.float64)
-    heapi = np.zeros((2, n), dtype=np.int32)
+    heap = np.zeros((2, n + max(n // 2, 64), 2), dtype=np.float64)
     istate = np.zeros(I_LEN, dtype=np.int64)
     fstate = np.zeros(F_LEN, dtype=np.float64)
-    return nodei, nodef, heapf, heapi, istate, fstate
+    return nodei, nodef, heap, istate, fstate
 
 
 def node_coords(lat_deg: np.ndarray, lon_deg: np.ndarray) -> np.ndarray:

@@ -227,9 +227,8 @@ class _Workspace:
     """Kernel arrays for one running search on one graph (see ``planner._kernel``)."""
 
     def __init__(self, n_nodes: int) -> None:
-        (self.nodei, self.nodef, self.heapf, self.heapi, self.istate, self.fstate) = (
-            K.new_workspace(n_nodes)
-        )
+        self.arrays = K.new_workspace(n_nodes)
+        self.nodei, self.nodef, self.heap, self.istate, self.fstate = self.arrays
         self.generation = 0
         #: expansions per second measured by the last search on this workspace
         self.rate_hint: float | None = None
@@ -331,8 +330,7 @@ class Planner:
                 self._lm_to,
                 ws.nodei,
                 ws.nodef,
-                ws.heapf,
-                ws.heapi,
+                ws.heap,
                 ws.istate,
                 ws.fstate,
             )
@@ -565,8 +563,7 @@ class Search:
                 planner._lm_to,
                 ws.nodei,
                 ws.nodef,
-                ws.heapf,
-                ws.heapi,
+                ws.heap,
                 ist,
                 fst,
             )
@@ -770,7 +767,7 @@ class Search:
         inc = float(ws.fstate[K.F_INCUMBENT])
         if self._cost is not None:
             inc = min(inc, self._cost)
-        min_f = K.open_min_f(ws.heapf, ws.istate)
+        min_f = K.open_min_f(ws.heap, ws.istate)
         b = min(inc, min_f)
         if math.isfinite(b) and b > self._bound:
             self._bound = b
@@ -783,7 +780,7 @@ class Search:
             size = int(ist[K.I_SIZE])
             self._update_bound(ws)
             expansions = int(ist[K.I_EXPANSIONS])
-            min_f = K.open_min_f(ws.heapf, ws.istate)
+            min_f = K.open_min_f(ws.heap, ws.istate)
             mean_g = float(fst[K.F_SUM_G]) / size if size else 0.0
             mean_h = float(fst[K.F_SUM_H]) / size if size else 0.0
             touched, reopened = int(ist[K.I_TOUCHED]), int(ist[K.I_REOPENED])

@@ -120,8 +120,7 @@ def _run_to_end(planner: Planner, origin: int, target: int, weight: float, mode:
             planner._lm_to,
             ws.nodei,
             ws.nodef,
-            ws.heapf,
-            ws.heapi,
+            ws.heap,
             ist,
             fst,
         )
@@ -203,8 +202,7 @@ def test_heuristic_is_admissible_against_dijkstra() -> None:
         planner._lm_to,
         ws.nodei,
         ws.nodef,
-        ws.heapf,
-        ws.heapi,
+        ws.heap,
         ws.istate,
         ws.fstate,
     )
