@@ -60,9 +60,6 @@ class EnvConfig:
         default=2000, metadata={"help": "size of the training query pool (queries)"}
     )
     query_seed: int = field(default=1, metadata={"help": "seed of the training query pool"})
-    short_fraction: float = field(
-        default=0.5, metadata={"help": "share of short trips in the query pool (1)"}
-    )
     landmarks: int = field(
         default=DEFAULT_LANDMARKS,
         metadata={
@@ -83,8 +80,6 @@ class EnvConfig:
             problems.append(f"initial_weight must be one of {WEIGHTS}, got {self.initial_weight}")
         if self.n_queries < 1:
             problems.append(f"n_queries must be >= 1, got {self.n_queries}")
-        if not 0.0 <= self.short_fraction <= 1.0:
-            problems.append(f"short_fraction must be in [0, 1], got {self.short_fraction}")
         if self.landmarks < 0:
             problems.append(f"landmarks must be >= 0, got {self.landmarks}")
         if problems:
@@ -95,26 +90,27 @@ class EnvConfig:
 # Queries and their exact optimal costs
 
 
-def sample_queries(
-    graph: RoadGraph,
-    n: int,
-    seed: int,
-    short_fraction: float = 0.5,
-    short_radius_fraction: float = 0.12,
-) -> np.ndarray:
-    """Draw ``n`` (origin, destination) pairs from the largest strongly connected component.
+def sample_queries(graph: RoadGraph, n: int, seed: int) -> np.ndarray:
+    """Draw ``n`` (origin, destination) pairs with the project's documented trip mix.
 
-    Long trips pair two uniformly drawn nodes; a short trip's destination is drawn uniformly
-    among the nodes within ``short_radius_fraction`` of the component's bounding-box diagonal
-    (great-circle distance) from its origin. Origin and destination always differ, and a route
-    exists both ways (same strong component).
+    Uses :func:`demo_data.queries.sample_queries` (short trips across a town, medium trips
+    across the region, long town-to-town trips; distance bands on graphs without towns), so
+    training, evaluation and the load tester mean the same thing by "a query set". Every pair
+    lies in the largest strongly connected component, so a route exists.
 
     Returns
     -------
     queries : int64[n, 2]
     """
-    if n < 0:
-        raise ValueError(f"number of queries must be >= 0, got {n}")
+    try:
+        from demo_data.queries import sample_queries as project_sampler
+    except ImportError:  # a stripped install without demo_data: same idea, distance bands
+        return _sample_by_distance(graph, n, seed)
+    return np.asarray(project_sampler(graph, n, seed), dtype=np.int64).reshape(-1, 2)
+
+
+def _sample_by_distance(graph: RoadGraph, n: int, seed: int) -> np.ndarray:
+    """Half short trips (within 12% of the bounding-box diagonal), half uniform pairs."""
     nodes = largest_component_nodes(graph)
     if nodes.shape[0] < 2:
         raise ValueError(
@@ -123,17 +119,16 @@ def sample_queries(
         )
     rng = np.random.default_rng(seed)
     lat, lon = np.asarray(graph.lat)[nodes], np.asarray(graph.lon)[nodes]
-    diagonal_m = float(great_circle_m(lat.min(), lon.min(), lat.max(), lon.max()))
-    radius_m = max(short_radius_fraction * diagonal_m, 1.0)
+    radius_m = max(0.12 * float(great_circle_m(lat.min(), lon.min(), lat.max(), lon.max())), 1.0)
     out = np.empty((n, 2), dtype=np.int64)
     for i in range(n):
         a = int(rng.integers(nodes.shape[0]))
-        if rng.random() < short_fraction:
+        b = a
+        if rng.random() < 0.5:
             near = np.flatnonzero(great_circle_m(lat[a], lon[a], lat, lon) <= radius_m)
             near = near[near != a]
-            b = int(near[rng.integers(near.shape[0])]) if near.shape[0] else a
-        else:
-            b = a
+            if near.shape[0]:
+                b = int(near[rng.integers(near.shape[0])])
         while b == a:
             b = int(rng.integers(nodes.shape[0]))
         out[i] = nodes[a], nodes[b]
@@ -275,7 +270,7 @@ class WeightControlEnv(gym.Env):
             planner = Planner(graph, landmarks=landmarks)
         self.planner = planner
         if queries is None:
-            queries = sample_queries(graph, cfg.n_queries, cfg.query_seed, cfg.short_fraction)
+            queries = sample_queries(graph, cfg.n_queries, cfg.query_seed)
         self.queries = np.asarray(queries, dtype=np.int64).reshape(-1, 2)
         if self.queries.shape[0] == 0:
             raise ValueError("the environment needs at least one query")

@@ -98,7 +98,6 @@ class EvalSettings:
     deadlines_ms: list[float] = field(default_factory=list)
     controllers: Sequence[str] = CONTROLLERS
     steps: int | None = None
-    short_fraction: float = 0.5
     importance_queries: int = 100
 
 
@@ -233,7 +232,7 @@ def evaluate(
     contracts += [Contract("deadline", d) for d in settings.deadlines_ms]
     main = next((c for c in contracts if c.trained), contracts[0])
 
-    queries = sample_queries(graph, settings.n_queries, settings.seed, settings.short_fraction)
+    queries = sample_queries(graph, settings.n_queries, settings.seed)
     optimal = OptimalCosts(graph).precompute(queries)
 
     results: dict[str, dict[str, list[Run]]] = {c.key: {} for c in contracts}
@@ -268,7 +267,6 @@ def evaluate(
     summary["queries"] = {
         "n": int(len(queries)),
         "seed": settings.seed,
-        "short_fraction": settings.short_fraction,
         "mean_optimal_s": float(np.mean(optimal)),
     }
     summary["policy"] = policy.info()

@@ -77,10 +77,7 @@ def train_policy(
     eval_fn = None
     if dqn.eval_every_episodes > 0 and validation.validation_queries > 0:
         val_queries = sample_queries(
-            graph,
-            validation.validation_queries,
-            validation.validation_seed,
-            env_config.short_fraction,
+            graph, validation.validation_queries, validation.validation_seed
         )
         val_env = WeightControlEnv(
             graph, env_config, queries=val_queries, planner=env.planner, optimal=optimal

@@ -261,7 +261,6 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         budgets=args.budgets,
         deadlines_ms=list(args.deadlines_ms),
         controllers=controllers,
-        short_fraction=float(env_cfg.get("short_fraction", 0.5)),
         importance_queries=args.importance_queries,
     )
     train_seed = env_cfg.get("query_seed")

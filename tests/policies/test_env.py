@@ -115,12 +115,12 @@ def test_optimal_costs_match_networkx(grid_graph):
 
 
 def test_sample_queries_are_valid_and_seeded(grid_graph):
-    q = sample_queries(grid_graph, 50, seed=9, short_fraction=0.5)
+    q = sample_queries(grid_graph, 50, seed=9)
     assert q.shape == (50, 2) and np.all(q[:, 0] != q[:, 1])
     comp = np.asarray(grid_graph.component)
     assert len(set(comp[q.ravel()])) == 1
-    np.testing.assert_array_equal(q, sample_queries(grid_graph, 50, seed=9, short_fraction=0.5))
-    assert not np.array_equal(q, sample_queries(grid_graph, 50, seed=10, short_fraction=0.5))
+    np.testing.assert_array_equal(q, sample_queries(grid_graph, 50, seed=9))
+    assert not np.array_equal(q, sample_queries(grid_graph, 50, seed=10))
 
 
 def test_quality_definition():
