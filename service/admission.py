@@ -18,9 +18,11 @@ never waits past its deadline in any case: a plan that starts late simply search
 
 from __future__ import annotations
 
+import contextlib
 import heapq
 import itertools
 import math
+import os
 import threading
 import time
 from collections.abc import Callable
@@ -61,6 +63,9 @@ class Admission:
         A plan must be able to search at least this long or it is shed.
     clock : callable
         ``time.perf_counter`` (injected in tests).
+    worker_nice : int
+        Niceness added to each search thread (Linux schedules threads separately), so the
+        event-loop thread that answers requests gets a core first when every core is busy.
     """
 
     def __init__(
@@ -68,6 +73,7 @@ class Admission:
         workers: int,
         min_search_ms: float,
         clock: Callable[[], float] = time.perf_counter,
+        worker_nice: int = 0,
     ) -> None:
         if workers < 1:
             raise ValueError(f"workers must be >= 1, got {workers}")
@@ -79,11 +85,17 @@ class Admission:
         self._running: dict[int, Ticket] = {}
         self._queued: dict[int, Ticket] = {}  # insertion order == FIFO order of the pool
         self._ids = itertools.count(1)
+        self.worker_nice = worker_nice
         self._executor = ThreadPoolExecutor(
-            max_workers=workers, thread_name_prefix="dueroute-search"
+            max_workers=workers, thread_name_prefix="dueroute-search", initializer=self._renice
         )
         self.admitted_total = 0
         self.shed_total = 0
+
+    def _renice(self) -> None:
+        if self.worker_nice > 0 and hasattr(os, "setpriority"):
+            with contextlib.suppress(OSError):  # not permitted or not supported: keep going
+                os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), self.worker_nice)
 
     # ---------------------------------------------------------------------------------------
     def estimate_start_s(self, now_s: float) -> float:

@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import gc
 import json
 import logging
 import sys
@@ -257,6 +258,10 @@ def warm_up(state: AppState) -> None:
         "warmup_ms": round((t_done - t_lm) * 1000.0, 1),
         "warmup_searches": searches,
     }
+    # Collect start-up garbage once and move everything alive now out of the collector's
+    # view (gc.freeze), so no full collection of import-time objects stalls a request later.
+    gc.collect()
+    gc.freeze()
     state.engine = engine
     state.ready = True
     state.metrics.ready.set(1)
@@ -303,7 +308,9 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     state = AppState(
         settings=settings,
         metrics=metrics,
-        admission=Admission(settings.workers, settings.min_search_ms),
+        admission=Admission(
+            settings.workers, settings.min_search_ms, worker_nice=settings.worker_nice
+        ),
         plans=PlanStore(settings.background_max, settings.background_ttl_s),
         policies=policies,
     )

@@ -67,6 +67,13 @@ class Settings(BaseSettings):
         description="a request that could not search at least this long before its "
         "deadline is shed with 503 (admission control)",
     )
+    worker_nice: int = Field(
+        default=10,
+        ge=0,
+        le=19,
+        description="niceness of the search threads, so the thread answering requests gets "
+        "a core first when every core is busy (Linux; 0 disables)",
+    )
     max_deadline_ms: int = Field(
         default=60_000, ge=1, description="largest deadline_ms a request may ask"
     )

@@ -151,10 +151,14 @@ async def create_plan(body: PlanRequest, request: Request, state: StateDep) -> R
         )
         result = dict(job.final or job.current())
     except TimeoutError:
-        # The search overran its deadline: stop it and answer with what it has now.
+        # The search overran its deadline (or never got a worker): stop it and answer with
+        # what it has now. A plan still queued gives its queue place back at once.
         ticket.cancel.set()
+        if job.future.cancel():
+            state.admission.release(ticket)
+            engine.finish(job, "contract_spent", None)
         result = dict(job.current())
-        result["status"] = "contract_spent"
+        result["status"] = "contract_spent" if job.final is None else result["status"]
         metrics.plans.labels(outcome="watchdog").inc()
     now = time.perf_counter()
     timings = dict(result["timings"])
@@ -163,7 +167,14 @@ async def create_plan(body: PlanRequest, request: Request, state: StateDep) -> R
     _observe(state, job, result, now)
     if state.plans.reserve(required=False, now_s=now):
         state.plans.add(job)
-    return _json(result)
+    return _json(result, headers={"Server-Timing": _server_timing(timings)})
+
+
+def _server_timing(timings: dict[str, float]) -> str:
+    """W3C Server Timing header: lets a load tester read timings without parsing the body."""
+    return ", ".join(
+        f"{name};dur={timings[f'{name}_ms']:.3f}" for name in ("queue", "search", "total")
+    )
 
 
 def _observe(state: AppState, job: PlanJob, result: dict[str, Any], now_s: float) -> None:
