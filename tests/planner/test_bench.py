@@ -16,8 +16,11 @@ from service.cli import main
 RATIO_KEYS = (
     "kernel_vs_scipy_rate",
     "alt_expansion_reduction",
+    "alt_time_reduction",
     "setup_us_large",
+    "start_us_large",
     "speedup_vs_networkx",
+    "speedup_vs_networkx_with_alt",
     "hilbert_vs_input_rate",
 )
 
