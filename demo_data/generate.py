@@ -45,7 +45,7 @@ from planner.graph import EARTH_RADIUS_M
 
 #: Bump whenever the generator or ``region.toml`` changes what is generated: it keys the
 #: build cache (``demo_data.build``), so stale cached graphs are rebuilt.
-GENERATOR_VERSION = "1"
+GENERATOR_VERSION = "2"
 
 #: Sizes defined in the scenario file, smallest first.
 SIZES = ("tiny", "demo", "large")
@@ -390,11 +390,15 @@ class _Generator:
         reg = sc["region"]
         self.W = float(reg["width_km"]) * s
         self.H = float(reg["height_km"]) * s
+        # small sizes shrink the built-up areas a little more, to keep some countryside
+        f = float(sc["sizes"][size].get("place_radius_factor", 1.0))
+        min_village = float(sc["cells"].get("min_village_radius_km", 0.0))
         self.towns = [
-            dict(t, x=t["x_km"] * s, y=t["y_km"] * s, r=t["radius_km"] * s) for t in sc["towns"]
+            dict(t, x=t["x_km"] * s, y=t["y_km"] * s, r=t["radius_km"] * s * f) for t in sc["towns"]
         ]
         self.villages = [
-            dict(v, x=v["x_km"] * s, y=v["y_km"] * s, r=v["radius_km"] * s) for v in sc["villages"]
+            dict(v, x=v["x_km"] * s, y=v["y_km"] * s, r=max(v["radius_km"] * s * f, min_village))
+            for v in sc["villages"]
         ]
         self.hills = [
             dict(h, x=h["x_km"] * s, y=h["y_km"] * s, r=h["radius_km"] * s) for h in sc["hills"]
