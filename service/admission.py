@@ -9,8 +9,9 @@ schedule that needs no guess about how long searches take:
 * queued plans take slots in FIFO order (the thread pool's order) and each frees its slot by
   its own search deadline, or at once if it can no longer start in time.
 
-A new request is admitted only if, in that worst case, it starts at least ``min_search_ms``
-before its own search deadline; otherwise it is shed at once (503 + ``Retry-After``). The
+A new request is admitted if a worker is free now, or if, in that worst case, it starts at
+least ``min_search_ms`` before its own search deadline; otherwise it is shed at once (503 +
+``Retry-After``). The
 estimate is pessimistic when searches finish early, never optimistic — but an admitted plan
 never waits past its deadline in any case: a plan that starts late simply searches for less time
 (and one that cannot start at all answers at once without searching).
@@ -113,12 +114,21 @@ class Admission:
             heapq.heappush(free, max(start, t.search_deadline_s))
         return free[0]
 
-    def admit(self, arrival_s: float, search_deadline_s: float) -> Ticket:
-        """Admit a plan or raise :class:`Shed` (never blocks)."""
+    def admit(
+        self, arrival_s: float, search_deadline_s: float, min_search_s: float | None = None
+    ) -> Ticket:
+        """Admit a plan or raise :class:`Shed` (never blocks).
+
+        ``min_search_s`` overrides the configured minimum (a request whose whole deadline is
+        shorter than the minimum asks for less).
+        """
+        need_s = self.min_search_s if min_search_s is None else min_search_s
         now = self.clock()
         with self._lock:
             start = self._estimate_locked(now)
-            if start + self.min_search_s > search_deadline_s:
+            # A free worker always takes the plan: it starts now and searches what is left
+            # (perhaps nothing, for a deadline shorter than the request's own handling).
+            if start > now and start + need_s > search_deadline_s:
                 self.shed_total += 1
                 wait_s = max(0.0, start - now)
                 busy = len(self._running)
@@ -126,7 +136,7 @@ class Admission:
                 raise Shed(
                     f"overloaded: {busy} of {self.workers} workers busy and {queued} plans "
                     f"queued; a worker is expected free in {wait_s * 1000:.0f} ms, too late to "
-                    f"search at least {self.min_search_s * 1000:.0f} ms before the deadline. "
+                    f"search at least {need_s * 1000:.1f} ms before the deadline. "
                     "Retry later or with a longer deadline_ms.",
                     retry_after_s=max(1, math.ceil(wait_s)),
                 )

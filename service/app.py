@@ -27,6 +27,7 @@ from typing import Any
 from fastapi import FastAPI, HTTPException, Request
 from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
+from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from service.admission import Admission
 from service.deps import AppState
@@ -44,6 +45,11 @@ Send = Callable[[Message], Awaitable[None]]
 
 #: Shipped default policy (may not exist yet: then ``learned`` uses the fallback controller).
 DEFAULT_POLICY = Path(__file__).resolve().parent.parent / "policies" / "default.onnx"
+
+_JSON_EXAMPLE = (
+    'send a JSON object such as {"origin": {"node": 0}, "destination": {"node": 1}, '
+    '"deadline_ms": 100}'
+)
 
 # Hints appended to validation messages: what each field allows.
 _ALLOWED = {
@@ -189,9 +195,7 @@ def _validation_message(exc: RequestValidationError, settings: Settings) -> str:
         if kind == "json_invalid":
             ctx = err.get("ctx") or {}
             parts.append(
-                f"the body is not valid JSON ({ctx.get('error', 'parse error')}); send a JSON "
-                'object such as {"origin": {"node": 0}, "destination": {"node": 1}, '
-                '"deadline_ms": 100}'
+                f"the body is not valid JSON ({ctx.get('error', 'parse error')}); {_JSON_EXAMPLE}"
             )
             continue
         # Union members add their class name to the location; keep only field names.
@@ -343,6 +347,28 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             state.metrics.plans.labels(outcome="rejected").inc()
         return JSONResponse(status_code=422, content={"detail": _validation_message(exc, settings)})
 
+    @app.exception_handler(StarletteHTTPException)
+    async def _on_http(request: Request, exc: StarletteHTTPException) -> JSONResponse:
+        if exc.status_code == 400 and request.url.path == "/v1/plans":
+            # FastAPI's answer to a body it cannot decode (e.g. not UTF-8): say what is allowed.
+            if request.url.path == "/v1/plans":
+                state.metrics.plans.labels(outcome="rejected").inc()
+            return JSONResponse(
+                status_code=422,
+                content={"detail": "the body is not valid JSON text (UTF-8); " + _JSON_EXAMPLE},
+            )
+        headers = dict(getattr(exc, "headers", None) or {})
+        if exc.status_code == 405:
+            # One path may be served by several routes (GET and DELETE /v1/plans/{id}): list
+            # every method allowed on it (RFC 9110 section 15.5.6), not the first route's only.
+            allowed = sorted(_allowed_methods(app, request.url.path))
+            headers["Allow"] = ", ".join(allowed)
+            detail = f"method {request.method} is not allowed here; allowed: {', '.join(allowed)}"
+            return JSONResponse(status_code=405, content={"detail": detail}, headers=headers)
+        return JSONResponse(
+            status_code=exc.status_code, content={"detail": exc.detail}, headers=headers or None
+        )
+
     @app.exception_handler(Exception)
     async def _on_error(request: Request, exc: Exception) -> JSONResponse:
         log.exception("unhandled error", extra={"path": request.url.path})
@@ -358,6 +384,15 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.include_router(health.router)
     app.add_middleware(EdgeMiddleware, settings=settings)
     return app
+
+
+def _allowed_methods(app: FastAPI, path: str) -> set[str]:
+    methods: set[str] = set()
+    for route in app.routes:
+        regex = getattr(route, "path_regex", None)
+        if regex is not None and regex.match(path):
+            methods |= set(getattr(route, "methods", None) or ())
+    return methods
 
 
 async def _warm(state: AppState) -> None:

@@ -7,9 +7,17 @@ on settings (the largest deadline) are checked in the route with a message of th
 from __future__ import annotations
 
 import re
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
-from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictInt, field_validator
+from pydantic import (
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    StrictBool,
+    StrictInt,
+    field_validator,
+)
 
 #: Largest deadline the schema allows; the service may be configured lower.
 MAX_DEADLINE_MS = 60_000
@@ -19,11 +27,22 @@ CONTROLLER_PATTERN = r"^(learned|decreasing|ana|random|fixed:[0-9]+(\.[0-9]+)?)$
 PlanStatus = Literal["running", "optimal", "contract_spent", "no_route", "cancelled"]
 
 
+def _whole_number(v: Any) -> Any:
+    """JSON Schema counts 40.0 as an integer; accept it, but never a string or a boolean."""
+    if isinstance(v, float) and v.is_integer():
+        return int(v)
+    return v
+
+
+#: An integer in the JSON Schema sense: 5 and 5.0 pass; 5.5, "5" and true do not.
+WholeNumber = Annotated[StrictInt, BeforeValidator(_whole_number)]
+
+
 class NodeRef(BaseModel):
     """A graph node by its index (0..n_nodes-1)."""
 
     model_config = ConfigDict(extra="forbid")
-    node: StrictInt = Field(..., ge=0, description="node index in the compiled graph")
+    node: WholeNumber = Field(..., ge=0, description="node index in the compiled graph")
 
 
 class PointRef(BaseModel):
@@ -57,7 +76,7 @@ class PlanRequest(BaseModel):
 
     origin: Place
     destination: Place
-    deadline_ms: StrictInt = Field(
+    deadline_ms: WholeNumber = Field(
         default=...,
         ge=1,
         le=MAX_DEADLINE_MS,

@@ -98,11 +98,16 @@ async def create_plan(body: PlanRequest, request: Request, state: StateDep) -> R
         metrics.plans.labels(outcome="rejected").inc()
         return _error(exc.status, str(exc))
 
-    search_deadline_s = arrival_s + (body.deadline_ms - settings.response_headroom_ms) / 1000.0
+    # Short deadlines scale the headroom and the minimum search down, so a 1 ms request on an
+    # idle service is served (searching 0.8 ms), not refused.
+    headroom_ms = min(settings.response_headroom_ms, 0.2 * body.deadline_ms)
+    budget_ms = body.deadline_ms - headroom_ms
+    search_deadline_s = arrival_s + budget_ms / 1000.0
+    min_search_s = min(settings.min_search_ms, 0.5 * budget_ms) / 1000.0
     try:
         if not body.wait:
             state.plans.reserve(required=True, now_s=time.perf_counter())
-        ticket = state.admission.admit(arrival_s, search_deadline_s)
+        ticket = state.admission.admit(arrival_s, search_deadline_s, min_search_s)
     except (Shed, StoreFull) as exc:
         metrics.plans.labels(outcome="shed").inc()
         metrics.sheds.inc()

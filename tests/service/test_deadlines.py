@@ -38,7 +38,7 @@ DEADLINE_MS = 20
 TOLERANCE_MS = 5.0
 #: Allowance for a shared, oversubscribed CI machine on top of the promised tolerance; set
 #: DUEROUTE_TEST_LATE_MARGIN_MS=0 on a quiet machine to check the bare 5 ms promise.
-CI_MARGIN_MS = float(os.environ.get("DUEROUTE_TEST_LATE_MARGIN_MS", "50"))
+CI_MARGIN_MS = float(os.environ.get("DUEROUTE_TEST_LATE_MARGIN_MS", "100"))
 DURATION_S = 3.0
 
 
@@ -91,6 +91,7 @@ def _report(name: str, records: list[dict]) -> dict[str, Any]:
     overhead = np.array([r["latency_ms"] - r["search_ms"] for r in ok])
     late_client = lat - DEADLINE_MS
     out = {
+        "load_avg_1min": os.getloadavg()[0],
         "requests": len(records),
         "accepted": len(ok),
         "shed": len(shed),
