@@ -480,6 +480,9 @@ def summarize_cell(cell: CellResult, tolerance_ms: float) -> dict[str, Any]:
     errors = [r for r in recs if not r.answered and not r.shed]
     lat = distribution([r.latency_ms for r in answers])
     late = sum(1 for r in answers if r.latency_ms > cell.deadline_ms + tolerance_ms)
+    # the service's own clock (arrival to answer built): excludes HTTP and client overhead
+    srv = [float(r.server_total_ms) for r in answers if r.server_total_ms is not None]
+    late_srv = sum(1 for v in srv if v > cell.deadline_ms + tolerance_ms)
     routed = [r for r in answers if r.cost_s is not None]
     gaps = sorted(float(r.gap) for r in routed if r.gap is not None)
     proven = [1.0 - g for g in gaps]  # bound / cost: quality proven by the server itself
@@ -501,6 +504,9 @@ def summarize_cell(cell: CellResult, tolerance_ms: float) -> dict[str, Any]:
         "latency_ms": lat,
         "late": late,
         "late_share": late / n_ans if n_ans else None,
+        "server_latency_ms": distribution(srv),
+        "late_by_server_clock": late_srv,
+        "late_by_server_clock_share": late_srv / len(srv) if srv else None,
         "shed": len(shed),
         "shed_share": len(shed) / n_req if n_req else None,
         "errors": len(errors),
@@ -528,7 +534,6 @@ def summarize_cell(cell: CellResult, tolerance_ms: float) -> dict[str, Any]:
         "route_mismatches": sum(1 for r in answers if r.route_mismatch),
         "cost_below_optimal": sum(1 for r in answers if r.cost_below_optimal),
         "bound_above_optimal": sum(1 for r in answers if r.bound_above_optimal),
-        "server_total_ms_mean": _mean([r.server_total_ms for r in answers]),
         "queue_ms_mean": _mean([r.queue_ms for r in answers]),
         "expansions_mean": _mean([r.expansions for r in answers]),
     }
@@ -938,7 +943,9 @@ def markdown_table(summary: dict[str, Any]) -> str:
         "p95 ms",
         "p99 ms",
         "max ms",
+        "server p95 ms",
         "late",
+        "late (server)",
         "shed",
         "errors",
         "mean gap",
@@ -959,7 +966,9 @@ def markdown_table(summary: dict[str, Any]) -> str:
             _fmt(lat["p95"]),
             _fmt(lat["p99"]),
             _fmt(lat["max"]),
+            _fmt(c["server_latency_ms"]["p95"]),
             _pct(c["late_share"]),
+            _pct(c["late_by_server_clock_share"]),
             _pct(c["shed_share"]),
             str(c["errors"]),
             _pct(gap["mean"]),
@@ -994,6 +1003,10 @@ def markdown_report(summary: dict[str, Any]) -> str:
             "quality = optimal cost / returned cost, exact costs from scipy.sparse.csgraph."
             "dijkstra on the same graph (0 when a route exists but none was returned)."
         )
+    notes.append(
+        "Latencies are client-measured (HTTP and client included); 'server p95' and "
+        "'late (server)' use the service's own timings.total_ms (arrival to answer built)."
+    )
     notes.append("gap = (cost - lower bound) / cost as the service proved it.")
     return "\n".join(notes) + "\n"
 
@@ -1037,6 +1050,7 @@ def write_plots(result: LoadTestResult, out: Path, *, max_points: int = 4000) ->
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
+    from matplotlib.ticker import ScalarFormatter
 
     use_ref = result.reference
     qlabel = "quality = optimal / returned cost" if use_ref else "proven quality = bound / cost"
@@ -1101,9 +1115,19 @@ def write_plots(result: LoadTestResult, out: Path, *, max_points: int = 4000) ->
             if lat:
                 cdf_x, cdf_y = empirical_cdf(lat)
                 ax.step(cdf_x, cdf_y, where="post", color=color(i, len(concs)), label=f"{conc}")
+        if not ax.lines:
+            ax.text(
+                0.5,
+                0.5,
+                "no answers\n(all shed or failed)",
+                ha="center",
+                va="center",
+                transform=ax.transAxes,
+            )
         ax.axvline(d + result.config.tolerance_ms, color="red", lw=0.8, ls="--")
+        ax.set_xscale("log")
         ax.set_title(f"deadline {d} ms")
-        ax.set_xlabel("latency (ms)")
+        ax.set_xlabel("latency (ms, log)")
         ax.grid(True, alpha=0.3)
     axes[0][0].set_ylabel("share of answers")
     axes[0][-1].legend(title="concurrency", fontsize=8)
@@ -1140,8 +1164,7 @@ def write_plots(result: LoadTestResult, out: Path, *, max_points: int = 4000) ->
                     color=color(i, len(controllers)),
                     label=f"{k}, conc. {conc}",
                 )
-    ax.set_xscale("log")
-    ax.set_xlabel("deadline (ms, log)")
+    _deadline_axis(ax, deadlines)
     ax.set_ylabel(f"mean {qlabel}")
     ax.set_title("Quality against deadline, per controller")
     ax.grid(True, alpha=0.3)
@@ -1150,4 +1173,77 @@ def write_plots(result: LoadTestResult, out: Path, *, max_points: int = 4000) ->
     paths["plot_quality_deadline"] = out / "quality_vs_deadline.png"
     fig.savefig(paths["plot_quality_deadline"], dpi=110)
     plt.close(fig)
+
+    # 4. overview: what a deadline buys (latency, quality, shed share against the deadline)
+    summary = [summarize_cell(c, result.config.tolerance_ms) for c in result.cells]
+    fig, axes = plt.subplots(1, 3, figsize=(13, 3.8))
+    for i, k in enumerate(controllers):
+        for j, conc in enumerate(concs):
+            cells = sorted(
+                (c for c in summary if c["controller"] == k and c["concurrency"] == conc),
+                key=lambda c: c["deadline_ms"],
+            )
+            style = dict(color=color(i, len(controllers)), ls=styles[j % len(styles)], marker="o")
+            label = f"{k}, conc. {conc}"
+            ans = [c for c in cells if c["answers"]]
+            axes[0].plot(
+                [c["deadline_ms"] for c in ans],
+                [c["latency_ms"]["p95"] for c in ans],
+                label=label,
+                **style,
+            )
+            qkey = "mean" if use_ref else None
+            by_deadline: list[tuple[int, float]] = [
+                (int(c["deadline_ms"]), float(q))
+                for c in ans
+                if (q := c["quality"][qkey] if qkey else c["proven_quality_mean"]) is not None
+            ]
+            if by_deadline:
+                axes[1].plot(
+                    [d for d, _ in by_deadline],
+                    [q for _, q in by_deadline],
+                    label=label,
+                    **style,
+                )
+            axes[2].plot(
+                [c["deadline_ms"] for c in cells],
+                [100.0 * (c["shed_share"] or 0.0) for c in cells],
+                label=label,
+                **style,
+            )
+    lim = [min(deadlines), max(deadlines)] if deadlines else [1, 2]
+    axes[0].plot(
+        lim,
+        [v + result.config.tolerance_ms for v in lim],
+        color="red",
+        lw=0.8,
+        ls="--",
+        label="deadline + tolerance",
+    )
+    axes[0].set_yscale("log")
+    axes[0].yaxis.set_major_formatter(ScalarFormatter())
+    axes[0].yaxis.set_minor_formatter(ScalarFormatter())
+    axes[0].set_ylabel("p95 client latency (ms, log)")
+    axes[1].set_ylabel(f"mean {qlabel}")
+    axes[2].set_ylabel("shed (503) share of requests (%)")
+    for ax in axes:
+        _deadline_axis(ax, deadlines)
+        ax.grid(True, alpha=0.3)
+    axes[0].legend(fontsize=7)
+    fig.suptitle("What a deadline buys: latency, route quality and shedding against the deadline")
+    fig.tight_layout()
+    paths["plot_overview"] = out / "overview.png"
+    fig.savefig(paths["plot_overview"], dpi=100)
+    plt.close(fig)
     return paths
+
+
+def _deadline_axis(ax: Any, deadlines: Sequence[int]) -> None:
+    """Log x axis labelled with the deadlines themselves."""
+    from matplotlib.ticker import NullFormatter
+
+    ax.set_xscale("log")
+    ax.set_xticks(list(deadlines))
+    ax.set_xticklabels([str(d) for d in deadlines])
+    ax.xaxis.set_minor_formatter(NullFormatter())
+    ax.set_xlabel("deadline (ms, log)")

@@ -511,6 +511,8 @@ def test_late_answers_are_counted(graph: Any) -> None:
     s = lt.summarize_cell(result.cells[0], config.tolerance_ms)
     # every answer slept 40 ms > 5 + 5 ms, so all are late whatever the machine's speed
     assert s["answers"] == 4 and s["late"] == 4 and s["late_share"] == 1.0
+    # the double's own clock claims 1.2 ms: the server-side view is kept apart
+    assert s["late_by_server_clock"] == 0 and s["server_latency_ms"]["p95"] == pytest.approx(1.2)
 
 
 def test_a_refused_controller_stops_with_the_reason(graph: Any) -> None:
@@ -592,7 +594,12 @@ def test_cli_run_against_a_local_server(
     assert double.count == 2 * 1 + 8 * 6  # warm-up per controller + the cells, nothing more
     md = (out / "summary.md").read_text()
     assert md.count("\n| decreasing |") == 4 and "quality mean" in md
-    for name in ("latency_vs_quality.png", "latency_cdf.png", "quality_vs_deadline.png"):
+    for name in (
+        "latency_vs_quality.png",
+        "latency_cdf.png",
+        "quality_vs_deadline.png",
+        "overview.png",
+    ):
         data = (out / name).read_bytes()
         assert data[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG spec, ISO/IEC 15948)
     lines = (out / "requests.csv").read_text().strip().splitlines()
