@@ -123,7 +123,8 @@ N_FCOLS = 2
 #: Mean earth radius in metres (the value of planner.graph.EARTH_RADIUS_M, osmnx's).
 _EARTH_RADIUS_M = 6_371_009.0
 _INF = np.inf
-#: Heap arity: a 4-ary heap is half as deep as a binary one and its children share cache lines.
+#: Heap arity: a 4-ary heap is half as deep as a binary one and its children share cache lines
+#: (``_sift_down`` unrolls the comparison of 4 children).
 _D = 4
 
 
@@ -179,18 +180,31 @@ def _sift_down(heap, row, i, key, node, size):
     """Place entry (key, node) at slot i or below in a heap of ``size`` entries."""
     while True:
         c = _D * i + 1
-        if c >= size:
+        if c + _D <= size:  # all children present: fixed-length, branch-light comparison
+            best = c
+            bk = heap[row, c, 0]
+            k1 = heap[row, c + 1, 0]
+            if k1 < bk:
+                best = c + 1
+                bk = k1
+            k2 = heap[row, c + 2, 0]
+            if k2 < bk:
+                best = c + 2
+                bk = k2
+            k3 = heap[row, c + 3, 0]
+            if k3 < bk:
+                best = c + 3
+                bk = k3
+        elif c < size:
+            best = c
+            bk = heap[row, c, 0]
+            for j in range(c + 1, size):
+                jk = heap[row, j, 0]
+                if jk < bk:
+                    best = j
+                    bk = jk
+        else:
             break
-        best = c
-        bk = heap[row, c, 0]
-        end = c + _D
-        if end > size:
-            end = size
-        for j in range(c + 1, end):
-            jk = heap[row, j, 0]
-            if jk < bk:
-                best = j
-                bk = jk
         if key <= bk:
             break
         heap[row, i, 0] = bk
