@@ -641,7 +641,12 @@ def load_or_build_landmarks(
     if target is None and graph.path is not None:
         target = landmarks_path(graph.path)
     if target is not None and target.is_file() and not rebuild:
-        found = load_landmarks(target)
+        try:
+            found = load_landmarks(target)
+        except CorruptGraphFile as exc:
+            raise CorruptGraphFile(
+                f"{exc}; it is derived data: delete it and it is rebuilt from the graph"
+            ) from exc
         wanted = min(int(count), int(largest_component_nodes(graph).shape[0]))
         if (
             found.graph_fingerprint == graph.fingerprint

@@ -326,6 +326,12 @@ def test_load_or_build_stores_beside_the_graph_and_rebuilds_when_stale(tmp_path:
     more = load_or_build_landmarks(other, count=5, progress=False)
     assert more.count == 5
 
+    # a damaged cache file is reported with what to do about it
+    more.path.write_bytes(b"garbage")
+    with pytest.raises(CorruptGraphFile, match="delete it and it is rebuilt"):
+        load_or_build_landmarks(other, count=5, progress=False)
+    assert load_or_build_landmarks(other, count=5, progress=False, rebuild=True).count == 5
+
 
 # ---------------------------------------------------------------------------------------------
 # Real OpenStreetMap fixtures
