@@ -170,7 +170,7 @@ def build_demo_graph(
         else:
             t0 = time.perf_counter()
             bar.set_postfix_str(steps[1])
-            graph = compile_region(region)
+            graph = compile_region(region, progress=progress)
             timings["compile_s"] = time.perf_counter() - t0
             source = {"source": f"demo_data generator ({size}) compiled directly"}
         t0 = time.perf_counter()
@@ -240,7 +240,9 @@ _ONEWAY_VALUES = frozenset({"yes", "true", "1", "-1", "reverse", "T", "F"})
 _REVERSED_VALUES = frozenset({"-1", "reverse", "T"})
 
 
-def compile_region(region: RegionMap, *, spatial_order: bool = True) -> RoadGraph:
+def compile_region(
+    region: RegionMap, *, spatial_order: bool = True, progress: bool = False
+) -> RoadGraph:
     """Compile generated ways into a :class:`RoadGraph` without XML or osmnx.
 
     Follows the import pipeline step by step: the drivable filter
@@ -322,7 +324,12 @@ def compile_region(region: RegionMap, *, spatial_order: bool = True) -> RoadGrap
     len_l = e_len.tolist()
     endpoint_l = endpoint.tolist()
     lat_l, lon_l = lat.tolist(), lon.tolist()
-    for u in np.nonzero(endpoint)[0].tolist():
+    from tqdm import tqdm
+
+    starts = np.nonzero(endpoint)[0].tolist()
+    for u in tqdm(
+        starts, desc="simplify", unit="node", disable=not progress, mininterval=0.5, leave=False
+    ):
         for e in range(ptr_l[u], ptr_l[u + 1]):
             prev, v = u, head_l[e]
             length = len_l[e]

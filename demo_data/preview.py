@@ -35,8 +35,13 @@ def render_preview(
     dpi: int = 110,
     size_in: float = 9.0,
     window_km: tuple[float, float, float, float] | None = None,
+    colours: int | None = None,
 ) -> Path:
-    """Render ``region`` to a PNG at ``path``; ``window_km`` = (x0, y0, x1, y1) crops."""
+    """Render ``region`` to a PNG at ``path``.
+
+    ``window_km`` = (x0, y0, x1, y1) crops to a window in km; ``colours`` writes a palette PNG
+    with that many colours (smaller file, used for the committed preview).
+    """
     import matplotlib
 
     matplotlib.use("Agg")
@@ -91,7 +96,21 @@ def render_preview(
     ax.set_title(f"{region.name}: {region.n_nodes:,} OSM nodes, {len(region.ways):,} ways")
     fig.tight_layout()
     path = Path(path)
-    fig.savefig(path, dpi=dpi)
+    if colours is None:
+        fig.savefig(path, dpi=dpi)
+    else:
+        # a palette PNG is several times smaller for a line drawing with few colours
+        import io
+
+        from PIL import Image
+
+        buf = io.BytesIO()
+        fig.savefig(buf, dpi=dpi, format="png")
+        buf.seek(0)
+        with Image.open(buf) as img:
+            img.convert("RGB").quantize(colors=colours, method=Image.Quantize.FASTOCTREE).save(
+                path, optimize=True
+            )
     plt.close(fig)
     return path
 
@@ -104,6 +123,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--dpi", type=int, default=110)
     ap.add_argument("--inches", type=float, default=9.0)
     ap.add_argument("--window", type=float, nargs=4, default=None, metavar=("X0", "Y0", "X1", "Y1"))
+    ap.add_argument("--colours", type=int, default=None, help="palette PNG with this many colours")
     args = ap.parse_args(argv)
     region = generate(args.size, seed=args.seed)
     render_preview(
@@ -112,6 +132,7 @@ def main(argv: list[str] | None = None) -> int:
         dpi=args.dpi,
         size_in=args.inches,
         window_km=tuple(args.window) if args.window else None,
+        colours=args.colours,
     )
     print(args.out)
     return 0
