@@ -315,6 +315,72 @@ def test_publish_graph_refuses_an_empty_source(tmp_path: Path) -> None:
     assert proc.returncode != 0 and "no .npz graph files" in proc.stderr
 
 
+class _PolicyDouble(http.server.BaseHTTPRequestHandler):
+    """PUT /v1/policy as the HTTP contract describes it (bearer token, ?dry_run=true)."""
+
+    token = "s3cret-token"
+    received: list[tuple[str, bytes]] = []
+
+    def do_PUT(self) -> None:  # noqa: N802 (http.server naming)
+        body = self.rfile.read(int(self.headers["Content-Length"]))
+        type(self).received.append((self.path, body))
+        if self.headers.get("Authorization") != f"Bearer {self.token}":
+            code, doc = 401, {"detail": "missing or wrong bearer token"}
+        elif body != b"ONNX-BYTES":
+            code, doc = 400, {"detail": ["not an ONNX model", "schema version missing"]}
+        else:
+            code, doc = 200, {"sha256": "ab" * 32}
+        raw = json.dumps(doc).encode()
+        self.send_response(code)
+        self.send_header("Content-Length", str(len(raw)))
+        self.end_headers()
+        self.wfile.write(raw)
+
+    def log_message(self, *args: Any) -> None:
+        pass
+
+
+def test_push_policy_puts_the_file_with_the_token(tmp_path: Path) -> None:
+    """The rollout helper speaks the documented API: PUT /v1/policy with a bearer token, the
+    file as the body, ?dry_run=true for a dry run; a refusal exits 1 listing the problems."""
+    handler = type("Handler", (_PolicyDouble,), {"received": []})
+    server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), handler)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    good, bad = tmp_path / "good.onnx", tmp_path / "bad.onnx"
+    good.write_bytes(b"ONNX-BYTES")
+    bad.write_bytes(b"junk")
+
+    def push(*args: str, token: str = "s3cret-token") -> subprocess.CompletedProcess[str]:
+        env = dict(
+            os.environ, DUEROUTE_PORT=str(server.server_address[1]), DUEROUTE_ADMIN_TOKEN=token
+        )
+        return subprocess.run(
+            [sys.executable, str(DOCKER / "push_policy.py"), *args],
+            env=env,
+            capture_output=True,
+            text=True,
+            timeout=60,
+        )
+
+    try:
+        ok = push(str(good))
+        assert ok.returncode == 0 and "is active" in ok.stdout
+        dry = push("--dry-run", str(good))
+        assert dry.returncode == 0 and "dry run" in dry.stdout
+        refused = push(str(bad))
+        assert refused.returncode == 1 and "schema version missing" in refused.stderr
+        wrong = push(str(good), token="wrong-token")
+        assert wrong.returncode == 1 and "HTTP 401" in wrong.stderr
+        assert push(str(good), token="").returncode == 2
+        assert push(str(tmp_path / "missing.onnx")).returncode == 2
+    finally:
+        server.shutdown()
+        server.server_close()
+    paths = [p for p, _ in handler.received]
+    assert paths == ["/v1/policy", "/v1/policy?dry_run=true", "/v1/policy", "/v1/policy"]
+    assert handler.received[0][1] == b"ONNX-BYTES"
+
+
 # --------------------------------------------------------------------------------------------
 # Compose file and load balancer
 
