@@ -394,3 +394,26 @@ def test_stats_and_result_fields() -> None:
     d = search.result().to_dict()
     json.dumps(d, allow_nan=False)
     assert d["weights"][0]["weight"] == 2.0 and d["steps"] == 4
+
+
+def test_per_query_setup_does_not_touch_graph_sized_memory() -> None:
+    """Generation stamps: once a workspace exists, starting and closing a query allocates a
+    few kilobytes however large the graph (an O(n) clear of a 90 000-node workspace would
+    allocate or write megabytes). Measured with tracemalloc (Python standard library)."""
+    import tracemalloc
+
+    g = grid_graph(300, seed=17)
+    planner = Planner(g)
+    planner.warm_up()
+    planner.start(0, g.n_nodes - 1, budget_expansions=10).close()  # create the workspace
+    tracemalloc.start()
+    try:
+        for k in range(20):
+            search = planner.start(k, g.n_nodes - 1 - k, budget_expansions=100, steps=1)
+            search.run_step(1.0)
+            search.close()
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    assert len(planner._pool) == 1
+    assert peak < 200_000, peak  # a workspace for this graph is about 9 MB
