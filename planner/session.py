@@ -601,7 +601,9 @@ class Search:
         assert ws is not None
         k = self.steps_done
         wall0 = time.perf_counter()
-        cpu0 = time.thread_time()
+        # CPU share only matters against the wall clock; under budgets it is 1 by definition
+        timed = self._deadline_at is not None
+        cpu0 = time.thread_time() if timed else 0.0
         self.weight = w
         ws.fstate[K.F_WEIGHT] = w
         self.weights.append(
@@ -617,8 +619,8 @@ class Search:
         else:
             self._run_deadline_step(ws, k)
         wall1 = time.perf_counter()
-        cpu1 = time.thread_time()
-        self._cpu_share = min(1.0, (cpu1 - cpu0) / (wall1 - wall0)) if wall1 > wall0 else 1.0
+        if timed and wall1 > wall0:
+            self._cpu_share = min(1.0, (time.thread_time() - cpu0) / (wall1 - wall0))
         self.steps_done = k + 1
         out_of_time = self._deadline_at is not None and wall1 >= self._deadline_at
         if not self.done and (self.steps_done >= self.steps_total or out_of_time):
