@@ -87,11 +87,20 @@ class Admission:
         self._queued: dict[int, Ticket] = {}  # insertion order == FIFO order of the pool
         self._ids = itertools.count(1)
         self.worker_nice = worker_nice
-        self._executor = ThreadPoolExecutor(
-            max_workers=workers, thread_name_prefix="dueroute-search", initializer=self._renice
-        )
+        self._executor: ThreadPoolExecutor | None = None
         self.admitted_total = 0
         self.shed_total = 0
+
+    def _pool(self) -> ThreadPoolExecutor:
+        """The worker pool, (re)created on first use after construction or shutdown."""
+        with self._lock:
+            if self._executor is None:
+                self._executor = ThreadPoolExecutor(
+                    max_workers=self.workers,
+                    thread_name_prefix="dueroute-search",
+                    initializer=self._renice,
+                )
+            return self._executor
 
     def _renice(self) -> None:
         if self.worker_nice > 0 and hasattr(os, "setpriority"):
@@ -161,11 +170,27 @@ class Admission:
                     ticket.finished_s = self.clock()
 
         try:
-            return self._executor.submit(run)
+            return self._pool().submit(run)
         except RuntimeError:  # pool shut down: release the claim
             with self._lock:
                 self._queued.pop(ticket.ticket_id, None)
             raise
+
+    def prestart(self, fn: Callable[[], Any]) -> list[Any]:
+        """Run ``fn`` once on every worker thread at the same time (start-up only).
+
+        Starts all the pool's threads now rather than on the first requests, and lets ``fn``
+        warm per-thread state (the planner pools one search workspace per concurrent search).
+        """
+        barrier = threading.Barrier(self.workers)
+
+        def run() -> Any:
+            barrier.wait(timeout=60)
+            return fn()
+
+        pool = self._pool()
+        futures = [pool.submit(run) for _ in range(self.workers)]
+        return [f.result() for f in futures]
 
     def release(self, ticket: Ticket) -> None:
         """Drop a ticket that was admitted but never submitted (the request failed early)."""
@@ -198,4 +223,7 @@ class Admission:
             tickets = list(self._running.values()) + list(self._queued.values())
         for t in tickets:
             t.cancel.set()
-        self._executor.shutdown(wait=True, cancel_futures=False)
+        with self._lock:
+            pool, self._executor = self._executor, None
+        if pool is not None:
+            pool.shutdown(wait=True, cancel_futures=False)

@@ -250,7 +250,11 @@ def warm_up(state: AppState) -> None:
     planner = Planner(graph, landmarks=landmarks)
     planner.warm_up()
     engine = PlanningEngine(graph, planner, steps=settings.steps)
-    searches = _warmup_searches(engine, state, settings.warmup_searches)
+    # Every worker thread runs the warm-up searches at once: threads exist, numba has
+    # compiled, and the planner holds one workspace per worker before the first request.
+    searches = sum(
+        state.admission.prestart(lambda: _warmup_searches(engine, state, settings.warmup_searches))
+    )
     t_done = time.perf_counter()
     state.warmup = {
         "graph": str(graph.path),
@@ -284,7 +288,7 @@ def _warmup_searches(engine: PlanningEngine, state: AppState, count: int) -> int
     comp = np.asarray(graph.component)
     biggest = int(np.bincount(comp).argmax())
     nodes = np.flatnonzero(comp == biggest)
-    rng = np.random.default_rng(0)
+    rng = np.random.default_rng()
     active = state.policies.active
     specs = ["decreasing", "ana", "learned" if active.policy is not None else "fixed:2"]
     done = 0
@@ -321,17 +325,18 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
-        state.tasks.append(asyncio.create_task(_warm(state)))
-        state.tasks.append(asyncio.create_task(_sweep(state)))
+        # Counted, so an app whose lifespan is entered twice (a test client per call inside a
+        # running one) warms up once and shuts its worker pool down only after the last exit.
+        state.lifespans += 1
+        if not state.tasks:
+            state.tasks.append(asyncio.create_task(_warm(state)))
+            state.tasks.append(asyncio.create_task(_sweep(state)))
         try:
             yield
         finally:
-            for task in state.tasks:
-                task.cancel()
-            for task in state.tasks:
-                with contextlib.suppress(asyncio.CancelledError, Exception):
-                    await task
-            await asyncio.to_thread(state.admission.shutdown)
+            state.lifespans -= 1
+            if state.lifespans == 0:
+                await _shutdown(state)
 
     app = FastAPI(
         title="dueroute",
@@ -395,7 +400,26 @@ def _allowed_methods(app: FastAPI, path: str) -> set[str]:
     return methods
 
 
+async def _shutdown(state: AppState) -> None:
+    loop = asyncio.get_running_loop()
+    mine = [t for t in state.tasks if t.get_loop() is loop]
+    for task in state.tasks:
+        if task in mine:
+            task.cancel()
+        else:
+            with contextlib.suppress(RuntimeError):  # that loop is already closed
+                task.get_loop().call_soon_threadsafe(task.cancel)
+    for task in mine:
+        with contextlib.suppress(asyncio.CancelledError, Exception):
+            await task
+    state.tasks.clear()
+    await asyncio.to_thread(state.admission.shutdown)
+
+
 async def _warm(state: AppState) -> None:
+    if state.ready:  # a second lifespan of the same app: already warm
+        return
+    state.warmup_error = None
     try:
         await asyncio.to_thread(warm_up, state)
     except Exception as exc:  # keep serving /healthz; /readyz reports the reason

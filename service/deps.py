@@ -32,6 +32,7 @@ class AppState:
     warmup: dict[str, Any] = field(default_factory=dict)
     started_wall: float = field(default_factory=time.time)
     tasks: list[asyncio.Task[Any]] = field(default_factory=list)
+    lifespans: int = 0  # lifespans entered and not yet left
 
 
 def get_state(request: Request) -> AppState:

@@ -409,6 +409,8 @@ class PlanningEngine:
                     weight = float(ctrl.decide(compute_features(stats), stats))
                 result = search.result()
                 status = str(result.status)
+                if result.lower_bound_s is None:  # no route yet: the bound is still proven
+                    job.best_bound_s = float(search.stats().lower_bound_s)
         except NoRoute:
             status = "no_route"
         except Exception as exc:  # never leave a caller waiting
@@ -454,7 +456,9 @@ class PlanningEngine:
         if result is not None:
             feature = route_feature(self.graph, result.route, result.route_edges)
             cost = _float_or_none(result.cost_s)
-            bound = _float_or_none(result.lower_bound_s) or 0.0
+            bound = _float_or_none(result.lower_bound_s)
+            if bound is None:
+                bound = job.best_bound_s
             gap = _float_or_none(result.gap)
             improvements = [improvement_dict(i) for i in result.improvements]
             expansions = int(result.expansions)

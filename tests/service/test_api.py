@@ -94,7 +94,7 @@ def test_no_route_and_same_node(make_client, tiny_graph_path):
         (body(0, 3, deadline_ms="10"), 422, "integer number of milliseconds"),
         (body({"node": "x"}, 3), 422, "allowed for origin"),
         (body({"lat": 91.0, "lon": 0.0}, 3), 422, "less than or equal to 90"),
-        (body(0, 3, controller="fixed:9"), 422, "between 1 and 5"),
+        (body(0, 3, controller="fixed:9"), 422, "fixed:W with W in 1..5"),
         (body(0, 3, controller="greedy"), 422, "one of learned, decreasing"),
         (body(0, 3, wait="yes"), 422, "true or false"),
         ({"origin": {"node": 0}, "deadline_ms": 5}, 422, "destination: field required"),
@@ -200,23 +200,45 @@ def test_unknown_plan_ids_are_404(make_client, tiny_graph_path):
     assert client.get(f"{PLAN}/nope/events").status_code == 404
 
 
-def test_background_plans_expire_and_the_store_is_bounded(make_client, grid_graph_path):
-    client = make_client(grid_graph_path, background_max=2, background_ttl_s=0.3, workers=2)
-    long = body(0, 89_999, deadline_ms=10_000, controller="fixed:1", wait=False)
-    a = client.post(PLAN, json=long).headers["location"]
-    b = client.post(PLAN, json=long).headers["location"]
-    r = client.post(PLAN, json=long)
-    assert r.status_code == 503, r.text
-    assert "plan store is full" in r.json()["detail"] and int(r.headers["retry-after"]) >= 1
-    for url in (a, b):
-        client.delete(url)
-    # finished plans make room (oldest first) ...
-    c = client.post(PLAN, json=body(0, 1, wait=False))
-    assert c.status_code == 202
-    # ... and expire after the TTL
-    time.sleep(0.5)
-    for url in (a, b, c.headers["location"]):
+def test_background_plans_expire_and_the_oldest_finished_makes_room(make_client, tiny_graph_path):
+    client = make_client(tiny_graph_path, background_max=2, background_ttl_s=0.5)
+    urls = []
+    for _ in range(3):
+        r = client.post(PLAN, json=body(0, 3, wait=False))
+        assert r.status_code == 202
+        urls.append(r.headers["location"])
+        with client.stream("GET", urls[-1] + "/events") as resp:
+            resp.read()  # wait until it is finished
+    # bounded at 2: the oldest finished plan was evicted for the third
+    assert client.get(urls[0]).status_code == 404
+    assert [client.get(u).json()["status"] for u in urls[1:]] == ["optimal", "optimal"]
+    time.sleep(0.7)
+    for url in urls:  # expired after the TTL
         assert client.get(url).status_code == 404
+
+
+def _job(plan_id: str, deadline_s: float):
+    from service.jobs import PlanJob
+
+    return PlanJob(plan_id, 0, 1, 1000, "ana", False, 0.0, deadline_s, None)
+
+
+def test_plan_store_full_of_running_plans_refuses_with_retry_after():
+    from service.jobs import PlanStore, StoreFull
+
+    store = PlanStore(max_plans=2, ttl_s=60.0)
+    for i in range(2):
+        assert store.reserve(required=True, now_s=10.0)
+        store.add(_job(f"p{i}", deadline_s=12.5 + i))
+    assert store.reserve(required=False, now_s=10.0) is False  # wait=true plans just skip
+    with pytest.raises(StoreFull, match="all 2 slots hold running background plans") as full:
+        store.reserve(required=True, now_s=10.0)
+    assert full.value.retry_after_s == 3  # the soonest deadline, 2.5 s away, rounded up
+    # once one finishes it makes room (oldest finished first) and is forgotten after the TTL
+    store.get("p1").final = {"status": "optimal"}
+    store.get("p1").finished_wall = 0.0
+    assert store.get("p1") is None and store.expired_total == 1
+    assert store.reserve(required=True, now_s=10.0)
 
 
 def test_health_ready_metrics_and_openapi(make_client, tiny_graph_path):
