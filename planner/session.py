@@ -266,9 +266,8 @@ class Planner:
         self._indptr = _readonly(graph.indptr, np.int64)
         self._head = _readonly(graph.head, np.int32)
         self._cost = _readonly(graph.travel_time_s, np.float64)
-        self._coords = _readonly(
-            K.node_coords(graph.lat, graph.lon) if n else np.zeros((1, 3)), np.float64
-        )
+        coords, self._gc_margin = K.node_coords(graph.lat, graph.lon)
+        self._coords = _readonly(coords if n else np.zeros((1, 3)), np.float32)
         self._component = np.asarray(graph.component)
         self._gc_scale = (1.0 - 1e-9) / float(graph.max_speed_mps)
         if landmarks is None:
@@ -555,6 +554,7 @@ class Search:
         ist[K.I_MODE] = _MODE_CODE[mode]
         fst[K.F_WEIGHT] = 1.0
         fst[K.F_GC_SCALE] = planner._gc_scale
+        fst[K.F_GC_MARGIN] = planner._gc_margin
         fst[K.F_LM_SLACK] = planner._lm_slack
         self._h_start = float(
             K.start_query(

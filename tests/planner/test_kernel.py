@@ -113,6 +113,7 @@ def _run_to_end(planner: Planner, origin: int, target: int, weight: float, mode:
         ist[K.I_ORIGIN], ist[K.I_TARGET], ist[K.I_MODE] = origin, target, mode
         fst[K.F_WEIGHT] = weight
         fst[K.F_GC_SCALE] = planner._gc_scale
+        fst[K.F_GC_MARGIN] = planner._gc_margin
         fst[K.F_LM_SLACK] = planner._lm_slack
         K.start_query(
             planner._coords,
@@ -194,6 +195,7 @@ def test_heuristic_is_admissible_against_dijkstra() -> None:
     ws.istate[K.I_GEN] = ws.next_generation()
     ws.istate[K.I_ORIGIN], ws.istate[K.I_TARGET] = 0, t
     ws.fstate[K.F_GC_SCALE] = planner._gc_scale
+    ws.fstate[K.F_GC_MARGIN] = planner._gc_margin
     ws.fstate[K.F_LM_SLACK] = planner._lm_slack
     ws.fstate[K.F_WEIGHT] = 1.0
     K.start_query(
