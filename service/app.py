@@ -249,6 +249,8 @@ def warm_up(state: AppState) -> None:
     t_lm = time.perf_counter()
     planner = Planner(graph, landmarks=landmarks)
     planner.warm_up()
+    if graph.n_nodes:  # builds the snapping k-d tree now, not inside the first request
+        graph.snap(float(graph.lat[0]), float(graph.lon[0]), settings.snap_max_m)
     engine = PlanningEngine(graph, planner, steps=settings.steps)
     # Every worker thread runs the warm-up searches at once: threads exist, numba has
     # compiled, and the planner holds one workspace per worker before the first request.

@@ -29,8 +29,8 @@ class Settings(BaseSettings):
     )
     policy: Path | None = Field(
         default=None,
-        description="ONNX policy file to activate at start-up (default: the policy directory's "
-        "active policy, else the shipped default policy, else no policy)",
+        description="ONNX policy file to activate at start-up; unset: the policy directory's "
+        "active policy, else the shipped default policy, else none",
     )
     policy_dir: Path = Field(
         default=Path(".dueroute/policies"),
@@ -46,7 +46,7 @@ class Settings(BaseSettings):
         default_factory=_default_workers,
         ge=1,
         le=256,
-        description="searches that run at once, each in its own thread (default: CPU count)",
+        description="searches that run at once, each in its own thread",
     )
     deadline_tolerance_ms: float = Field(
         default=5.0,
@@ -75,7 +75,7 @@ class Settings(BaseSettings):
         "a core first when every core is busy (Linux; 0 disables)",
     )
     max_deadline_ms: int = Field(
-        default=60_000, ge=1, description="largest deadline_ms a request may ask"
+        default=60_000, ge=1, le=60_000, description="largest deadline_ms a request may ask"
     )
     max_body_bytes: int = Field(
         default=16_384, ge=256, description="largest request body (413 above)"

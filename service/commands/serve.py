@@ -30,6 +30,8 @@ def register(sub: Any) -> None:
     p = sub.add_parser(
         "serve",
         help="run the HTTP routing service",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        epilog=_settings_epilog(),
         description=(
             "Serve POST /v1/plans and friends (OpenAPI at /docs). Every flag can also be set "
             "with the environment variable DUEROUTE_<FLAG> (e.g. DUEROUTE_WORKERS=4); flags win. "
@@ -78,6 +80,17 @@ def register(sub: Any) -> None:
     p.add_argument("--log-level", default=None, help="debug, info, warning, error")
     p.add_argument("--plain-logs", action="store_true", help="human-readable instead of JSON logs")
     p.set_defaults(func=run)
+
+
+def _settings_epilog() -> str:
+    """Every setting as its environment variable, default and one-line meaning."""
+    from service.settings import Settings
+
+    lines = ["settings (environment variables; the flags above override them):"]
+    for name, field in Settings.model_fields.items():
+        default = "cpu count" if name == "workers" else field.default
+        lines.append(f"  DUEROUTE_{name.upper():<24} {field.description} (default: {default})")
+    return "\n".join(lines)
 
 
 def build_settings(args: argparse.Namespace) -> Any:

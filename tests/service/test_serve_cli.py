@@ -1,0 +1,51 @@
+"""``dueroute serve`` refuses bad settings before it starts, with one error line and exit 2."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from service.cli import main
+
+
+@pytest.mark.parametrize(
+    ("args", "words"),
+    [
+        (["--workers", "0"], "workers: Input should be greater than or equal to 1"),
+        (["--port", "70000"], "port: Input should be less than or equal to 65535"),
+        (["--log-level", "loud"], "log_level must be one of"),
+        (["--graph", "nowhere.npz"], "graph file not found"),
+        (["--graph", "map.osm"], "is not a compiled graph"),
+    ],
+)
+def test_bad_settings_exit_2_with_one_line(args, words, capsys, tmp_path: Path):
+    code = main(["serve", "--policy-dir", str(tmp_path / "p"), *args])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2
+    assert len(err) == 1 and err[0].startswith("dueroute: error: ") and words in err[0], err
+
+
+def test_bad_policy_file_stops_the_start(capsys, tmp_path: Path, tiny_graph_path: Path):
+    bad = tmp_path / "bad.onnx"
+    bad.write_bytes(b"")
+    code = main(["serve", "--graph", str(tiny_graph_path), "--policy", str(bad)])
+    err = capsys.readouterr().err.strip().splitlines()
+    assert code == 2 and "policy refused" in err[-1], err
+
+
+def test_environment_settings_are_read(monkeypatch, capsys, tmp_path: Path):
+    monkeypatch.setenv("DUEROUTE_WORKERS", "-3")
+    assert main(["serve", "--policy-dir", str(tmp_path / "p")]) == 2
+    assert "workers" in capsys.readouterr().err
+
+
+def test_admin_token_file(tmp_path: Path):
+    import argparse
+
+    from service.commands.serve import build_settings
+
+    token = tmp_path / "token"
+    token.write_text("a-long-enough-token\n")
+    ns = argparse.Namespace(admin_token_file=token, workers=None, graph=None)
+    assert build_settings(ns).admin_token.get_secret_value() == "a-long-enough-token"
