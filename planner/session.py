@@ -152,7 +152,8 @@ class PlanResult:
 
     ``route`` holds node indices (int64[k + 1]) and ``route_edges`` edge indices (int64[k], so
     parallel edges are unambiguous); both are ``None`` when no route was found.
-    ``cost_s`` / ``lower_bound_s`` / ``gap`` are ``None`` when there is no route.
+    ``cost_s`` / ``gap`` are ``None`` when no route was found; ``lower_bound_s`` is ``None`` only
+    for ``no_route`` (a search stopped before its first route still proves a bound).
     """
 
     status: str
@@ -289,12 +290,13 @@ class Planner:
             self._lm_slack = slack
         self.n_landmarks = int(self._lm_from.shape[1])
         self._dag: tuple[np.ndarray, np.ndarray] | None = None
+        self._dag_lock = threading.Lock()
         self._pool: list[_Workspace] = []
         self._pool_lock = threading.Lock()
 
     def _condensation(self) -> tuple[np.ndarray, np.ndarray]:
         """CSR (int64 indptr, int64 head) of the SCC condensation DAG, built on first use."""
-        with self._pool_lock:
+        with self._dag_lock:
             if self._dag is None:
                 comp = self._component.astype(np.int64)
                 n_comp = int(comp.max()) + 1 if comp.size else 1
@@ -636,8 +638,11 @@ class Search:
         """The answer so far (final once :attr:`done`)."""
         status = self._status if self._status is not None else "contract_spent"
         cost = self._cost
-        bound = None if cost is None else min(self._bound, cost)
-        if status == "optimal" and cost is not None:
+        # before any route the bound (min f over open) is still a valid, useful number
+        bound: float | None = self._bound if cost is None else min(self._bound, cost)
+        if status == "no_route":
+            bound = None
+        elif status == "optimal" and cost is not None:
             bound = cost
         return PlanResult(
             status=status,

@@ -167,6 +167,8 @@ def test_property_bounds_and_routes(case) -> None:
         assert imp.lower_bound_s <= opt + tol
         assert opt <= imp.cost_s + tol
         assert 0.0 <= imp.gap <= 1.0
+    # a search stopped before its first route still reports a valid bound
+    assert res.lower_bound_s is not None and res.lower_bound_s <= opt + tol
     costs = [imp.cost_s for imp in seen]
     assert costs == sorted(costs, reverse=True)
     if res.route is not None:
