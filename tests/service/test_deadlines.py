@@ -132,6 +132,17 @@ async def _closed_loop(url: str, concurrency: int, duration_s: float, seed: int)
     return records
 
 
+def _wakeup_lag_ms(seconds: float = 0.5) -> tuple[float, float]:
+    """(p99, max) lateness of a bare 1 ms sleep here and now: the machine's own noise floor."""
+    lags = []
+    end = time.perf_counter() + seconds
+    while time.perf_counter() < end:
+        t0 = time.perf_counter()
+        time.sleep(0.001)
+        lags.append((time.perf_counter() - t0 - 0.001) * 1000.0)
+    return float(np.percentile(lags, 99)), float(max(lags))
+
+
 def _report(name: str, records: list[dict]) -> dict[str, Any]:
     ok = [r for r in records if r["status"] == 200]
     shed = [r for r in records if r["status"] == 503]
@@ -139,8 +150,11 @@ def _report(name: str, records: list[dict]) -> dict[str, Any]:
     server = np.array([r["total_ms"] for r in ok])
     overhead = np.array([r["latency_ms"] - r["search_ms"] for r in ok])
     late_client = lat - DEADLINE_MS
+    lag_p99, lag_max = _wakeup_lag_ms()
     out = {
         "load_avg_1min": os.getloadavg()[0],
+        "sleep_1ms_lag_p99_ms": lag_p99,
+        "sleep_1ms_lag_max_ms": lag_max,
         "requests": len(records),
         "accepted": len(ok),
         "shed": len(shed),
