@@ -242,13 +242,18 @@ class PlanJob:
             "cost_s": cost,
             "lower_bound_s": bound,
             "gap": _gap(cost, bound),
-            "improvements": list(self.improvements),
+            "improvements": [_published(i) for i in self.improvements],
             "expansions": self.expansions,
             "controller": self.controller,
             "policy_sha256": self.policy_sha256,
             "deadline_ms": self.deadline_ms,
             "timings": self.timings(),
         }
+
+
+def _published(entry: dict[str, Any]) -> dict[str, Any]:
+    """An improvement as a Plan lists it (the event stream adds a route summary)."""
+    return {k: v for k, v in entry.items() if k != "route"}
 
 
 def _gap(cost: float | None, bound: float) -> float | None:
@@ -467,7 +472,7 @@ class PlanningEngine:
             cost = job.best_cost_s
             bound = job.best_bound_s
             gap = _gap(cost, bound)
-            improvements = [{k: v for k, v in i.items() if k != "route"} for i in job.improvements]
+            improvements = [_published(i) for i in job.improvements]
             expansions = job.expansions
         if feature is None and status not in ("cancelled", "contract_spent", "no_route"):
             status = "no_route"

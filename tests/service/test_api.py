@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import math
+import threading
 import time
 from pathlib import Path
 
@@ -316,3 +317,42 @@ def test_route_feature_matches_edge_coords_on_the_grid(grid_graph_path):
     assert math.isclose(
         feat["properties"]["length_m"], float(np.sum(graph.length_m[result.route_edges]))
     )
+
+
+def test_watchdog_answers_on_time_when_a_search_overruns(make_client, grid_graph_path):
+    """A controller that stalls for 2 s between steps (a stand-in for a search that overruns
+    its deadline) must not hold the answer: the handler answers at the deadline with the best
+    route so far. The bound on the answer time is deliberately loose (1 s for a 50 ms deadline)
+    so the test checks the mechanism, not the machine's speed."""
+    from planner.controllers import make_controller
+
+    client = make_client(grid_graph_path)
+    engine = client.app.state.dueroute.engine
+    release = threading.Event()
+
+    class Stalling:
+        name, mode = "stalling", "weighted"
+
+        def __init__(self) -> None:
+            self.inner = make_controller("fixed:2")
+
+        def reset(self, seed):
+            return self.inner.reset(seed)
+
+        def decide(self, features, stats):
+            release.wait(2.0)
+            return 2.0
+
+    original = engine.make_controller
+    engine.make_controller = lambda spec, policy: Stalling()
+    try:
+        t0 = time.perf_counter()
+        r = client.post(PLAN, json=body(0, 89_999, deadline_ms=50, controller="ana"))
+        waited_s = time.perf_counter() - t0
+    finally:
+        release.set()
+        engine.make_controller = original
+    assert r.status_code == 200 and waited_s < 1.0
+    plan = r.json()
+    assert plan["status"] == "contract_spent"
+    assert 'dueroute_plans_total{outcome="watchdog"} 1.0' in client.get("/metrics").text
