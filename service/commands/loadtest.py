@@ -4,12 +4,18 @@ from __future__ import annotations
 
 import argparse
 import asyncio
+import signal
 import sys
+import threading
 import time
 from typing import Any
 
 from planner.errors import InvalidRequest
 from service.commands.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
+
+
+def _interrupt(signum: int, frame: Any) -> None:
+    raise KeyboardInterrupt
 
 
 def register(sub: Any) -> None:
@@ -117,6 +123,10 @@ def run(args: argparse.Namespace) -> int:
         bar.update(1)
 
     code = 0
+    previous_term = None
+    if threading.current_thread() is threading.main_thread():
+        # SIGTERM (e.g. from a job runner) stops the run like Ctrl-C: write what was measured
+        previous_term = signal.signal(signal.SIGTERM, _interrupt)
     try:
         asyncio.run(
             lt.run_loadtest(
@@ -135,6 +145,8 @@ def run(args: argparse.Namespace) -> int:
         print("dueroute: interrupted; writing the cells measured so far", file=sys.stderr)
     finally:
         bar.close()
+        if previous_term is not None:
+            signal.signal(signal.SIGTERM, previous_term)
     if not result.cells:
         if code:
             return code

@@ -610,3 +610,47 @@ def test_cli_needs_queries_or_graph(tmp_path: Path, capsys: Any) -> None:
     code = main(["loadtest", "--out", str(tmp_path)])
     assert code == 2
     assert "no queries" in capsys.readouterr().err
+
+
+@pytest.mark.parametrize("signame", ["SIGINT", "SIGTERM"])
+def test_interrupted_cli_writes_what_it_measured(
+    served: tuple[str, PlanDouble], tmp_path: Path, signame: str
+) -> None:
+    """Ctrl-C (SIGINT) or SIGTERM during a cell: exit 130, summary written, marked interrupted."""
+    import signal
+    import subprocess
+    import sys
+
+    url, double = served
+    q = tmp_path / "q.csv"
+    q.write_text("origin,destination\n0,24\n3,7\n")
+    out = tmp_path / "out"
+    exe = Path(sys.executable).with_name("dueroute")
+    argv = [str(exe), "loadtest", "--url", url, "--queries", str(q), "--concurrency", "1",
+            "--deadlines", "5", "--duration", "120", "--warmup", "0", "--out", str(out)]  # fmt: skip
+    proc = subprocess.Popen(
+        argv,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        # a background process may inherit "ignore SIGINT"; a terminal's Ctrl-C does not
+        preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL),
+    )
+    try:
+        for _ in range(600):  # bounded wait until the cell is under way
+            if double.count >= 20 or proc.poll() is not None:
+                break
+            time.sleep(0.05)
+        assert proc.poll() is None, proc.stderr.read() if proc.stderr else ""
+        proc.send_signal(getattr(signal, signame))
+        _, err = proc.communicate(timeout=60)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == 130, err
+    assert "interrupted; writing the cells measured so far" in err
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["interrupted"] is True
+    (cell,) = summary["cells"]
+    assert cell["complete"] is False and cell["requests"] >= 10
+    assert (out / "summary.md").read_text().count("Interrupted") == 1
