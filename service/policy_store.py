@@ -169,8 +169,13 @@ class PolicyStore:
                 )
         if default is not None and default.is_file():
             try:
+                # Not persisted: a newer shipped default replaces it on the next start, while
+                # an uploaded or --policy file stays active across restarts.
                 self._activate(
-                    _read_file(default), source=f"default:{default.name}", push_history=False
+                    _read_file(default),
+                    source=f"default:{default.name}",
+                    push_history=False,
+                    persist=False,
                 )
             except PolicyRejected as exc:
                 log.error(
@@ -230,7 +235,9 @@ class PolicyStore:
         raise NothingToRollBack("there is no earlier policy to roll back to")
 
     # -------------------------------------------------------------------------------------
-    def _activate(self, data: bytes, *, source: str, push_history: bool) -> ActivePolicy:
+    def _activate(
+        self, data: bytes, *, source: str, push_history: bool, persist: bool = True
+    ) -> ActivePolicy:
         problems = self.validate(data)
         if problems:
             raise PolicyRejected(problems)
@@ -246,7 +253,8 @@ class PolicyStore:
                 self._history.append(old)
                 del self._history[:-HISTORY_LIMIT]
             self._active = snap  # the swap: one reference assignment
-            self._write_pointer()
+            if persist:
+                self._write_pointer()
         log.info("policy activated", extra={"sha256": sha, "source": source, "previous": old})
         return snap
 

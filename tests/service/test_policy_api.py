@@ -235,3 +235,20 @@ def test_policy_store_keeps_the_snapshot_for_plans_in_flight(tmp_path: Path):
     store.swap(policy_bytes(seed=2))
     assert held.sha256 == hashlib.sha256(policy_bytes(seed=1)).hexdigest()
     assert store.active.sha256 != held.sha256 and held.policy is not store.active.policy
+
+
+def test_shipped_default_is_used_but_an_upload_outlives_it(tmp_path: Path):
+    """Start-up order: persisted upload > shipped default > none; the default is not pinned."""
+    from service.policy_store import PolicyStore
+
+    default = tmp_path / "default.onnx"
+    default.write_bytes(policy_bytes(seed=7))
+    store = PolicyStore(tmp_path / "p", max_bytes=1_000_000)
+    assert store.startup(None, default).source == "default:default.onnx"
+    default.write_bytes(policy_bytes(seed=8))  # a newer release ships a new default
+    store = PolicyStore(tmp_path / "p", max_bytes=1_000_000)
+    assert store.startup(None, default).sha256 == hashlib.sha256(policy_bytes(seed=8)).hexdigest()
+    store.swap(policy_bytes(seed=9))
+    store = PolicyStore(tmp_path / "p", max_bytes=1_000_000)
+    assert store.startup(None, default).sha256 == hashlib.sha256(policy_bytes(seed=9)).hexdigest()
+    assert store.rollback().sha256 == hashlib.sha256(policy_bytes(seed=8)).hexdigest()
