@@ -43,7 +43,7 @@ class DQNConfig:
     seed: int = field(
         default=0, metadata={"help": "seed of the network init, exploration and replay sampling"}
     )
-    episodes: int = field(default=3000, metadata={"help": "training episodes (episodes)"})
+    episodes: int = field(default=12_000, metadata={"help": "training episodes (episodes)"})
     hidden_units: int = field(
         default=64, metadata={"help": "units in each of the two hidden layers (units)"}
     )
@@ -88,7 +88,7 @@ class DQNConfig:
         },
     )
     eval_every_episodes: int = field(
-        default=0,
+        default=1000,
         metadata={
             "help": "episodes between greedy evaluations on fixed validation episodes; the "
             "best-evaluated network is returned (0 = off, keep the last network)"

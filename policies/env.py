@@ -41,20 +41,20 @@ class EnvConfig:
     """Settings of the training environment (saved with the training config of a policy)."""
 
     budget_expansions: int = field(
-        default=20_000, metadata={"help": "expansion budget per search: the contract (expansions)"}
+        default=3_000, metadata={"help": "expansion budget per search: the contract (expansions)"}
     )
     steps: int = field(
         default=20, metadata={"help": "decision steps the contract is cut into (steps)"}
     )
     action_kind: str = field(
-        default="pick",
+        default="step",
         metadata={
             "help": "actions: 'pick' chooses any weight of the set, 'step' moves one place "
             "down / stays / moves up"
         },
     )
     initial_weight: float = field(
-        default=2.0, metadata={"help": "weight of the first step, before any feature exists (1)"}
+        default=5.0, metadata={"help": "weight of the first step, before any feature exists (1)"}
     )
     n_queries: int = field(
         default=2000, metadata={"help": "size of the training query pool (queries)"}

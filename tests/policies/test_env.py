@@ -15,7 +15,9 @@ from policies.env import ENV_ID, OptimalCosts, WeightControlEnv, quality, sample
 
 @pytest.fixture()
 def env(grid_graph):
-    return WeightControlEnv(grid_graph, budget_expansions=150, steps=6, n_queries=40)
+    return WeightControlEnv(
+        grid_graph, budget_expansions=150, steps=6, n_queries=40, action_kind="pick"
+    )
 
 
 def test_passes_gymnasium_env_checker(env):
@@ -46,7 +48,9 @@ def rollout(env, seed, actions):
 def test_same_seed_same_episode(env, grid_graph):
     actions = [0, 5, 2, 3, 1, 4, 2]
     a = rollout(env, 123, actions)
-    other = WeightControlEnv(grid_graph, budget_expansions=150, steps=6, n_queries=40)
+    other = WeightControlEnv(
+        grid_graph, budget_expansions=150, steps=6, n_queries=40, action_kind="pick"
+    )
     b = rollout(other, 123, actions)
     np.testing.assert_array_equal(a[0], b[0])
     np.testing.assert_array_equal(a[1], b[1])
