@@ -143,3 +143,49 @@ def test_step_actions_and_bad_input(grid_graph):
         env.step(7)
     with pytest.raises(ValueError, match="invalid environment config"):
         WeightControlEnv(grid_graph, steps=1)
+
+
+def test_greedy_episode_equals_serving_with_the_exported_policy(grid_graph, tmp_path):
+    """Train/serve parity: the env driven by an exported policy's greedy actions ends with the
+    same route as plan() with the onnxruntime-backed LearnedController (step actions). The
+    network ignores the CPU-share input, which the env randomises and serving measures."""
+    from planner.features import FEATURE_NAMES
+    from policies.dqn import QNetwork, init_params
+    from policies.export import export_policy, policy_metadata
+    from policies.runtime import LearnedController, load_policy
+
+    rng = np.random.default_rng(5)
+    n = len(FEATURE_NAMES)
+    net = QNetwork(init_params(rng, n, 16, 3), np.zeros(n), np.full(n, 0.3))
+    net.params["w1"][FEATURE_NAMES.index("cpu_share_last_step")] = 0.0
+    meta = policy_metadata(
+        weights=WEIGHTS,
+        action_kind="step",
+        initial_weight=5.0,
+        contract_expansions=150,
+        decision_steps=6,
+        training_config={},
+        graph_fingerprint=grid_graph.fingerprint,
+    )
+    export_policy(net, meta, tmp_path / "p.onnx")
+    policy = load_policy(tmp_path / "p.onnx")
+    env = WeightControlEnv(
+        grid_graph,
+        budget_expansions=150,
+        steps=6,
+        n_queries=20,
+        action_kind="step",
+        initial_weight=5.0,
+    )
+    for i in range(20):
+        obs, info = env.reset(options={"query_index": i})
+        done = env._search.done
+        final = env._search.stats().incumbent_cost_s
+        while not done:
+            obs, _, term, trunc, info = env.step(int(np.argmax(policy.q_values(obs))))
+            done, final = term or trunc, info["incumbent_cost_s"]
+        o, d = (int(x) for x in env.queries[i])
+        served = plan(
+            env.planner, o, d, budget_expansions=150, steps=6, controller=LearnedController(policy)
+        )
+        assert served.cost_s == final
