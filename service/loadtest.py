@@ -234,40 +234,42 @@ def read_queries_csv(path: str | Path, n_nodes: int | None = None) -> list[tuple
     return pairs
 
 
-def random_reachable_pairs(graph: Any, n: int, seed: int = 0) -> list[tuple[int, int]]:
-    """``n`` random (origin, destination) pairs with a directed route between them.
+def random_reachable_pairs(graph: Any, n: int, seed: int = 0) -> tuple[list[tuple[int, int]], str]:
+    """``n`` reproducible (origin, destination) pairs with a directed route between them.
 
-    Both ends are drawn from the same strongly-connected component (``graph.component``), so a
-    route exists both ways; the origin is uniform over nodes of components with >= 2 nodes and
-    the destination uniform over the other nodes of its component. Uses
-    ``demo_data.sample_queries(graph, n, seed)`` when the demo package provides it.
+    Returns the pairs and a description of how they were drawn. First choice: the project's
+    query sets (:func:`demo_data.queries.sample_queries`, the documented mix of short, medium
+    and long trips). A graph too small or odd for that mix gets pairs drawn uniformly from the
+    largest strongly-connected component instead (:func:`uniform_reachable_pairs`).
     """
     if n < 1:
         raise InvalidRequest(f"--random needs at least 1 query, got {n}")
+    from demo_data.queries import DEFAULT_MIX, sample_queries
+
     try:
-        from demo_data import sample_queries  # type: ignore[attr-defined]
-    except ImportError:
-        sample_queries = None
-    if sample_queries is not None:
-        return [(int(o), int(d)) for o, d in sample_queries(graph, n, seed)]
+        pairs = [(int(o), int(d)) for o, d in sample_queries(graph, n, seed)]
+        mix = ", ".join(f"{100 * v:.0f}% {k}" for k, v in DEFAULT_MIX.items())
+        return pairs, f"demo_data.queries.sample_queries (seed {seed}; {mix})"
+    except InvalidRequest as exc:
+        pairs = uniform_reachable_pairs(graph, n, seed)
+        return pairs, f"uniform in the largest component (seed {seed}; the trip mix failed: {exc})"
+
+
+def uniform_reachable_pairs(graph: Any, n: int, seed: int = 0) -> list[tuple[int, int]]:
+    """``n`` pairs of distinct nodes drawn uniformly from the largest strongly-connected
+    component (``graph.component``), so a directed route exists both ways."""
     comp = np.asarray(graph.component, dtype=np.int64)
-    sizes = np.bincount(comp) if comp.size else np.zeros(0, dtype=np.int64)
-    eligible = np.flatnonzero(sizes[comp] >= 2) if comp.size else np.zeros(0, dtype=np.int64)
-    if eligible.size == 0:
+    if comp.size == 0:
+        raise InvalidRequest("the graph has no nodes; no queries to draw")
+    nodes = np.flatnonzero(comp == int(np.bincount(comp).argmax()))
+    if nodes.size < 2:
         raise InvalidRequest("the graph has no two nodes connected both ways; no queries to draw")
-    # members[c] = nodes of component c, via one stable sort
-    order = np.argsort(comp, kind="stable")
-    starts = np.concatenate(([0], np.cumsum(sizes)))
     rng = np.random.default_rng(seed)
-    pairs = []
-    for o in rng.choice(eligible, size=n):
-        c = int(comp[o])
-        lo, size = int(starts[c]), int(sizes[c])
-        d = int(order[lo + int(rng.integers(size - 1))])
-        if d == o:  # the draw skipped nothing yet: the last member stands in for the origin
-            d = int(order[lo + size - 1])
-        pairs.append((int(o), d))
-    return pairs
+    origin = rng.integers(nodes.size, size=n)
+    # a uniform other member: draw from size - 1 slots and skip over the origin's own slot
+    other = rng.integers(nodes.size - 1, size=n)
+    other = other + (other >= origin)
+    return [(int(nodes[o]), int(nodes[d])) for o, d in zip(origin, other, strict=True)]
 
 
 # --------------------------------------------------------------------------------------------
@@ -558,6 +560,7 @@ class LoadTestResult:
     server: dict[str, Any] = field(default_factory=dict)
     graph_check: dict[str, Any] = field(default_factory=dict)
     reference: bool = False
+    queries_source: str = ""
     started_at: float = field(default_factory=time.time)
     finished_at: float | None = None
     interrupted: bool = False
@@ -909,6 +912,7 @@ def summarize(result: LoadTestResult) -> dict[str, Any]:
         "tool": "dueroute loadtest",
         "config": cfg,
         "queries": len(result.queries),
+        "queries_source": result.queries_source,
         "reference": result.reference,
         "graph_check": result.graph_check,
         "server": result.server,
@@ -987,7 +991,8 @@ def markdown_report(summary: dict[str, Any]) -> str:
     notes = [
         f"# dueroute load test — {summary['started_at']}",
         "",
-        f"Target {cfg['url']}; {summary['queries']} queries; {cfg['duration_s']:g} s per cell "
+        f"Target {cfg['url']}; {summary['queries']} queries "
+        f"({summary.get('queries_source') or 'given'}); {cfg['duration_s']:g} s per cell "
         f"(at most {cfg['max_requests']} requests); late = beyond deadline + "
         f"{cfg['tolerance_ms']:g} ms (client-measured latency, includes HTTP overhead).",
     ]

@@ -94,8 +94,9 @@ def run(args: argparse.Namespace) -> int:
         raise InvalidRequest("--reference needs --graph (the graph the service searches)")
     if args.queries is not None:
         queries = lt.read_queries_csv(args.queries, graph.n_nodes if graph is not None else None)
+        source = f"file {args.queries}"
     elif graph is not None:
-        queries = lt.random_reachable_pairs(
+        queries, source = lt.random_reachable_pairs(
             graph, args.random if args.random is not None else 200, seed=args.seed
         )
     else:
@@ -104,7 +105,7 @@ def run(args: argparse.Namespace) -> int:
         )
     reference = lt.Reference(graph, queries) if args.reference else None
 
-    result = lt.LoadTestResult(config=config, queries=list(queries))
+    result = lt.LoadTestResult(config=config, queries=list(queries), queries_source=source)
     bar = progress(total=config.n_cells, unit="cell", desc="loadtest")
     last_postfix = [0.0]
 

@@ -397,16 +397,33 @@ def test_queries_csv(tmp_path: Path) -> None:
 
 
 def test_random_pairs_are_reachable() -> None:
-    """Reference: scipy.sparse.csgraph.dijkstra — every drawn pair has a finite distance."""
+    """Reference: scipy.sparse.csgraph.dijkstra — every drawn pair has a finite distance.
+    A 4x4 grid is too small for the trip mix, so the uniform fallback draws (and says so)."""
     g = _grid_graph(side=4, one_way_node=5)  # node 5 has no outgoing road: its own component
-    pairs = lt.random_reachable_pairs(g, 200, seed=1)
+    pairs, source = lt.random_reachable_pairs(g, 200, seed=1)
+    assert source.startswith("uniform in the largest component")
     assert len(pairs) == 200
     dist = dijkstra(g.csr(), directed=True)
     for o, d in pairs:
         assert o != d
         assert np.isfinite(dist[o, d]) and np.isfinite(dist[d, o])
         assert 5 not in (o, d)
-    assert pairs == lt.random_reachable_pairs(g, 200, seed=1)
+    assert pairs == lt.random_reachable_pairs(g, 200, seed=1)[0]
+    # every other node of the big component can be drawn (uniform, not a fixed subset)
+    assert {n for p in pairs for n in p} == set(range(16)) - {5}
+
+
+def test_random_pairs_use_the_project_query_sets(tmp_path: Path, monkeypatch: Any) -> None:
+    """On the tiny demo region the pairs are demo_data.queries.sample_queries' pairs."""
+    from demo_data.build import demo_graph_path
+    from demo_data.queries import sample_queries
+    from planner.graph import load_graph
+
+    monkeypatch.setenv("DUEROUTE_DATA_DIR", str(tmp_path))
+    g = load_graph(demo_graph_path("tiny", progress=False))
+    pairs, source = lt.random_reachable_pairs(g, 30, seed=2)
+    assert source.startswith("demo_data.queries.sample_queries")
+    assert pairs == [tuple(map(int, p)) for p in sample_queries(g, 30, 2)]
 
 
 # --------------------------------------------------------------------------------------------
@@ -417,7 +434,7 @@ def test_reference_quality_against_scipy(graph: Any) -> None:
     """Reference: scipy.sparse.csgraph.dijkstra. Quality = optimal / returned cost is <= 1,
     exactly 1 for answers proven optimal, and equals the scipy ratio for the detours."""
     double = PlanDouble(graph, detour_every=2)
-    queries = lt.random_reachable_pairs(graph, 30, seed=4)
+    queries, _ = lt.random_reachable_pairs(graph, 30, seed=4)
     config = _config(concurrency=(2,), deadlines_ms=(10,), max_requests=40)
     reference = lt.Reference(graph, queries)
     result = _run(
@@ -456,7 +473,7 @@ def test_reference_flags_a_route_from_another_graph(graph: Any) -> None:
     other = _grid_graph()
     double = PlanDouble(other, fingerprint=graph.fingerprint)
     double.dist = double.dist * 0.5  # the server believes every road is twice as fast
-    queries = lt.random_reachable_pairs(graph, 10, seed=2)
+    queries, _ = lt.random_reachable_pairs(graph, 10, seed=2)
     result = _run(
         lt.run_loadtest(
             _config(concurrency=(1,), deadlines_ms=(10,), max_requests=10),
