@@ -15,6 +15,12 @@ from pydantic import Field, SecretStr, field_validator, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 
+def _default_policy_dir() -> Path:
+    """``$XDG_STATE_HOME/dueroute/policies`` (``~/.local/state/...``): state, not cache."""
+    base = os.environ.get("XDG_STATE_HOME") or str(Path.home() / ".local" / "state")
+    return Path(base) / "dueroute" / "policies"
+
+
 def _default_workers() -> int:
     return max(1, os.cpu_count() or 1)
 
@@ -33,7 +39,7 @@ class Settings(BaseSettings):
         "active policy, else the shipped default policy, else none",
     )
     policy_dir: Path = Field(
-        default=Path(".dueroute/policies"),
+        default_factory=_default_policy_dir,
         description="directory where uploaded policies and the active-policy pointer persist",
     )
     admin_token: SecretStr | None = Field(

@@ -7,7 +7,7 @@ from pathlib import Path
 from typing import Any
 
 from planner.errors import InvalidRequest
-from service.commands.common import GRAPH_HELP
+from service.commands.common import GRAPH_HELP, add_json_flag, emit
 
 # flag name -> Settings field (every flag defaults to None: the environment / default applies)
 _FLAGS = {
@@ -44,7 +44,8 @@ def register(sub: Any) -> None:
         "--policy-dir",
         type=Path,
         default=None,
-        help="where uploaded policies and the active one persist (default .dueroute/policies)",
+        help="where uploaded policies and the active one persist "
+        "(default $XDG_STATE_HOME/dueroute/policies, i.e. ~/.local/state/dueroute/policies)",
     )
     p.add_argument("--host", default=None, help="address to listen on (default 127.0.0.1)")
     p.add_argument("--port", type=int, default=None, help="TCP port (default 8000)")
@@ -79,6 +80,12 @@ def register(sub: Any) -> None:
     )
     p.add_argument("--log-level", default=None, help="debug, info, warning, error")
     p.add_argument("--plain-logs", action="store_true", help="human-readable instead of JSON logs")
+    p.add_argument(
+        "--check",
+        action="store_true",
+        help="validate the settings, graph path and policy, print them and exit (no server)",
+    )
+    add_json_flag(p)
     p.set_defaults(func=run)
 
 
@@ -88,7 +95,9 @@ def _settings_epilog() -> str:
 
     lines = ["settings (environment variables; the flags above override them):"]
     for name, field in Settings.model_fields.items():
-        default = "cpu count" if name == "workers" else field.default
+        default = {"workers": "cpu count", "policy_dir": "~/.local/state/dueroute/policies"}.get(
+            name, field.default
+        )
         lines.append(f"  DUEROUTE_{name.upper():<24} {field.description} (default: {default})")
     return "\n".join(lines)
 
@@ -138,6 +147,13 @@ def run(args: argparse.Namespace) -> int:
         app = create_app(settings)
     except PolicyRejected as exc:
         raise InvalidRequest(f"policy refused: {'; '.join(exc.problems)}") from None
+    if getattr(args, "check", False):
+        report = {
+            "settings": settings.model_dump(mode="json"),
+            "policy": app.state.dueroute.policies.active.info(),
+        }
+        emit(report, getattr(args, "json", False), _human_check)
+        return 0
     config = uvicorn.Config(
         app,
         host=settings.host,
@@ -149,3 +165,18 @@ def run(args: argparse.Namespace) -> int:
     )
     uvicorn.Server(config).run()
     return 0
+
+
+def _human_check(report: dict[str, Any]) -> str:
+    lines = ["settings ok:"]
+    lines += [f"  {k} = {v}" for k, v in report["settings"].items()]
+    pol = report["policy"]
+    lines.append(
+        f"policy: {pol['sha256'] or 'none'} ({pol['source']})"
+        + (
+            f", 'learned' served by {pol['fallback_controller']}"
+            if pol["fallback_controller"]
+            else ""
+        )
+    )
+    return "\n".join(lines)

@@ -29,7 +29,10 @@ def test_bad_settings_exit_2_with_one_line(args, words, capsys, tmp_path: Path):
 def test_bad_policy_file_stops_the_start(capsys, tmp_path: Path, tiny_graph_path: Path):
     bad = tmp_path / "bad.onnx"
     bad.write_bytes(b"")
-    code = main(["serve", "--graph", str(tiny_graph_path), "--policy", str(bad)])
+    code = main(
+        ["serve", "--graph", str(tiny_graph_path), "--policy", str(bad)]
+        + ["--policy-dir", str(tmp_path / "p")]
+    )
     err = capsys.readouterr().err.strip().splitlines()
     assert code == 2 and "policy refused" in err[-1], err
 
@@ -49,3 +52,19 @@ def test_admin_token_file(tmp_path: Path):
     token.write_text("a-long-enough-token\n")
     ns = argparse.Namespace(admin_token_file=token, workers=None, graph=None)
     assert build_settings(ns).admin_token.get_secret_value() == "a-long-enough-token"
+
+
+def test_check_prints_settings_as_json_without_the_token(
+    capsys, monkeypatch, tiny_graph_path, tmp_path
+):
+    import json
+
+    monkeypatch.setenv("DUEROUTE_ADMIN_TOKEN", "secret-token-value")
+    monkeypatch.setenv("XDG_STATE_HOME", str(tmp_path))
+    code = main(["serve", "--check", "--json", "--graph", str(tiny_graph_path), "--workers", "3"])
+    out = capsys.readouterr().out
+    assert code == 0 and "secret-token-value" not in out
+    report = json.loads(out)
+    assert report["settings"]["workers"] == 3 and report["settings"]["admin_token"] == "**********"
+    assert report["policy"]["fallback_controller"] == "decreasing"
+    assert report["settings"]["policy_dir"] == str(tmp_path / "dueroute" / "policies")
