@@ -266,7 +266,7 @@ class PolicyStore:
         final = self._file(sha)
         if final.is_file():
             return final
-        tmp = self.files_dir / f".tmp-{sha}-{threading.get_ident()}.onnx"
+        tmp = self.files_dir / f".tmp-{sha}-{os.getpid()}-{threading.get_ident()}.onnx"
         tmp.write_bytes(data)
         os.replace(tmp, final)
         return final
@@ -283,7 +283,7 @@ class PolicyStore:
 
     def _write_pointer(self) -> None:
         body = {"active": self._active.sha256, "history": self._history, "updated_at": _now_iso()}
-        tmp = self.pointer.with_name(f".active-{threading.get_ident()}.json")
+        tmp = self.pointer.with_name(f".active-{os.getpid()}-{threading.get_ident()}.json")
         tmp.write_text(json.dumps(body, indent=1))
         os.replace(tmp, self.pointer)
 
