@@ -644,15 +644,26 @@ def _plots(
         if curve:
             ep = np.array([r["episode"] for r in curve])
             ret = np.array([r["episode_return"] for r in curve])
-            k = max(1, min(100, len(ret) // 10))
+            k = max(1, min(200, len(ret) // 10))
             smooth = np.convolve(ret, np.ones(k) / k, mode="valid")
             fig, ax = plt.subplots(figsize=(7, 4))
-            ax.plot(ep, ret, alpha=0.15, color="tab:blue", label="episode return")
-            ax.plot(ep[k - 1 :], smooth, color="tab:blue", lw=2, label=f"mean of {k} episodes")
+            ax.plot(
+                ep[k - 1 :],
+                smooth,
+                color="tab:blue",
+                lw=1.5,
+                label=f"episode return, mean of {k} (with exploration)",
+            )
             ev = np.array([r.get("eval_return", float("nan")) for r in curve])
             ok = np.isfinite(ev)
             if ok.any():
                 ax.plot(ep[ok], ev[ok], "o-", color="black", label="greedy, validation queries")
+            eps = np.array([r.get("epsilon", float("nan")) for r in curve])
+            if np.isfinite(eps).any():
+                ax2 = ax.twinx()
+                ax2.plot(ep, eps, "--", color="gray", lw=1)
+                ax2.set_ylabel("exploration rate epsilon (dashed)", color="gray")
+                ax2.set_ylim(0, 1.05)
             ax.set_xlabel("episode")
             ax.set_ylabel("return = final quality")
             ax.set_title("training curve", fontsize=9)
