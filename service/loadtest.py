@@ -470,6 +470,7 @@ class CellResult:
     concurrency: int
     deadline_ms: int
     wall_s: float = 0.0
+    client_cpu_s: float = 0.0  # CPU time the load tester itself used during the cell
     complete: bool = False
     records: list[RequestRecord] = field(default_factory=list)
 
@@ -500,6 +501,8 @@ def summarize_cell(cell: CellResult, tolerance_ms: float) -> dict[str, Any]:
         "deadline_ms": cell.deadline_ms,
         "complete": cell.complete,
         "wall_s": cell.wall_s,
+        # share of one core the load generator used: it competes with the service on one host
+        "client_cpu_share": cell.client_cpu_s / cell.wall_s if cell.wall_s > 0 else None,
         "requests": n_req,
         "answers": n_ans,
         "throughput_per_s": n_ans / cell.wall_s if cell.wall_s > 0 else None,
@@ -713,6 +716,7 @@ async def run_cell(
     rng.shuffle(order)
     issued = 0
     t_start = time.perf_counter()
+    cpu_start = time.process_time()
     t_stop = t_start + config.duration_s
 
     pending: list[tuple[RequestRecord, dict[str, Any]]] = []
@@ -749,6 +753,7 @@ async def run_cell(
         cell.complete = True
     finally:
         cell.wall_s = time.perf_counter() - t_start
+        cell.client_cpu_s = time.process_time() - cpu_start
         if reference is not None:
             for rec, kept in pending:
                 apply_reference(rec, reference, kept)
