@@ -1017,6 +1017,12 @@ def markdown_report(summary: dict[str, Any]) -> str:
         "Latencies are client-measured (HTTP and client included); 'server p95' and "
         "'late (server)' use the service's own timings.total_ms (arrival to answer built)."
     )
+    shares = [c["client_cpu_share"] for c in summary["cells"] if c.get("client_cpu_share")]
+    if shares:
+        notes.append(
+            f"The load generator itself used {100 * min(shares):.0f}–{100 * max(shares):.0f} % "
+            "of one core per cell (on the same host as the service, it competes for the CPU)."
+        )
     notes.append("gap = (cost - lower bound) / cost as the service proved it.")
     return "\n".join(notes) + "\n"
 
