@@ -93,7 +93,8 @@ I_TOUCHED = 12  #: nodes stamped in this query (search footprint)
 I_FHEAP_ON = 13  #: 1 when heap row 1 (ordered by f) is maintained, 0 when row 0 already is
 I_HEAP0 = 14  #: entries in heap row 0 (>= open nodes: lazy deletion)
 I_HEAP1 = 15  #: entries in heap row 1
-I_COMPACTIONS = 16  #: heap rows compacted or re-keyed
+I_COMPACTIONS = 16  #: full heap rows compacted
+I_REKEYS = 17  #: open-list re-keys after a weight, mode or (ANA*) incumbent change
 I_LEN = 20
 
 # ---- fstate slots (float64) ----
@@ -370,7 +371,7 @@ def run_chunk(indptr, head, cost, coords, lm_from, lm_to, nodei, nodef, heap, is
         or (mode == MODE_ANA and inc != fstate[F_KEYED_INCUMBENT])
     ):
         h0 = _rebuild(heap, 0, 0, h0, nodei, nodef, mode, w, inc)
-        compactions += 1
+        istate[I_REKEYS] += 1
         fon_now = 0 if (mode == MODE_WEIGHTED and w == 1.0) else 1
         if fon_now and not istate[I_FHEAP_ON]:
             h1 = _rebuild(heap, 0, 1, h0, nodei, nodef, mode, w, inc)
