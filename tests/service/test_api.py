@@ -356,3 +356,51 @@ def test_watchdog_answers_on_time_when_a_search_overruns(make_client, grid_graph
     plan = r.json()
     assert plan["status"] == "contract_spent"
     assert 'dueroute_plans_total{outcome="watchdog"} 1.0' in client.get("/metrics").text
+
+
+def test_not_ready_until_warmed_up_then_ready(tmp_path, tiny_graph_path, monkeypatch):
+    """/readyz and POST /v1/plans say 503 (with Retry-After) until the warm-up has finished."""
+    from fastapi.testclient import TestClient
+
+    import service.app as app_module
+    from tests.service.conftest import settings_for, wait_ready
+
+    gate = threading.Event()
+    original = app_module.warm_up
+
+    def gated(state):
+        gate.wait(10)
+        original(state)
+
+    monkeypatch.setattr(app_module, "warm_up", gated)
+    app = app_module.create_app(settings_for(tiny_graph_path, tmp_path))
+    with TestClient(app) as client:
+        assert client.get("/healthz").status_code == 200
+        r = client.get("/readyz")
+        assert r.status_code == 503 and r.json()["status"] == "warming_up"
+        r = client.post(PLAN, json=body(0, 3))
+        assert r.status_code == 503 and r.headers["retry-after"] == "1"
+        assert "warming up" in r.json()["detail"]
+        gate.set()
+        wait_ready(client)
+        assert client.post(PLAN, json=body(0, 3)).json()["status"] == "optimal"
+        assert client.get("/readyz").json()["detail"]["warmup_searches"] >= 1
+
+
+def test_a_corrupt_graph_fails_readiness_with_the_reason(tmp_path):
+    from fastapi.testclient import TestClient
+
+    from service.app import create_app
+    from tests.service.conftest import settings_for
+
+    bad = tmp_path / "bad.npz"
+    bad.write_bytes(b"PK\x03\x04 not really a zip")
+    with TestClient(create_app(settings_for(bad, tmp_path))) as client:
+        for _ in range(100):
+            r = client.get("/readyz")
+            if r.json()["status"] == "failed":
+                break
+            time.sleep(0.05)
+        assert r.status_code == 503 and "CorruptGraphFile" in r.json()["detail"]["error"]
+        r = client.post(PLAN, json=body(0, 3))
+        assert r.status_code == 503 and "not readable" in r.json()["detail"]
