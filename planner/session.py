@@ -44,7 +44,9 @@ Thread safety
 -------------
 A :class:`Planner` is shared by threads. Each running search holds one workspace from the
 planner's pool (taken under a lock, returned when the search ends), so any number of searches
-may run at once, in one thread or many; the kernel releases the GIL while it expands.
+may run at once, in one thread or many; the kernel releases the GIL while it expands. A
+workspace takes about 80 bytes per graph node (80 MB for a million nodes) and is allocated once
+per concurrently running search, then reused.
 """
 
 from __future__ import annotations
