@@ -163,17 +163,7 @@ def _heuristic(v, t, coords, lm_from, lm_to, tx, ty, tz, margin_m, scale, slack)
 
 @njit(cache=True, nogil=True, inline="always")
 def _key(mode, g, h, w, incumbent):
-    if mode == MODE_WEIGHTED:
-        return g + w * h
-    if incumbent == _INF:
-        return h  # greedy before the first route
-    if h <= 0.0:
-        return -_INF
-    return -(incumbent - g) / h
-
-
-@njit(cache=True, nogil=True, inline="always")
-def _key(mode, g, h, w, incumbent):
+    """Search key of an open node: g + w*h, or the ANA* key (smaller is expanded first)."""
     if mode == MODE_WEIGHTED:
         return g + w * h
     if incumbent == _INF:
