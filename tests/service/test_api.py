@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
 import threading
@@ -319,43 +320,68 @@ def test_route_feature_matches_edge_coords_on_the_grid(grid_graph_path):
     )
 
 
-def test_watchdog_answers_on_time_when_a_search_overruns(make_client, grid_graph_path):
-    """A controller that stalls for 2 s between steps (a stand-in for a search that overruns
-    its deadline) must not hold the answer: the handler answers at the deadline with the best
-    route so far. The bound on the answer time is deliberately loose (1 s for a 50 ms deadline)
-    so the test checks the mechanism, not the machine's speed."""
-    from planner.controllers import make_controller
+class _Stalling:
+    """A weight controller that blocks between steps until released (a worker held busy)."""
 
-    client = make_client(grid_graph_path)
+    name, mode = "stalling", "weighted"
+
+    def __init__(self, release: threading.Event) -> None:
+        self.release = release
+
+    def reset(self, seed):
+        return 2.0
+
+    def decide(self, features, stats):
+        self.release.wait(5.0)
+        return 2.0
+
+
+@contextlib.contextmanager
+def stalling_searches(client):
     engine = client.app.state.dueroute.engine
     release = threading.Event()
-
-    class Stalling:
-        name, mode = "stalling", "weighted"
-
-        def __init__(self) -> None:
-            self.inner = make_controller("fixed:2")
-
-        def reset(self, seed):
-            return self.inner.reset(seed)
-
-        def decide(self, features, stats):
-            release.wait(2.0)
-            return 2.0
-
     original = engine.make_controller
-    engine.make_controller = lambda spec, policy: Stalling()
+    engine.make_controller = lambda spec, policy: _Stalling(release)
     try:
-        t0 = time.perf_counter()
-        r = client.post(PLAN, json=body(0, 89_999, deadline_ms=50, controller="ana"))
-        waited_s = time.perf_counter() - t0
+        yield release
     finally:
         release.set()
         engine.make_controller = original
+
+
+def test_watchdog_answers_on_time_when_a_search_overruns(make_client, grid_graph_path):
+    """A controller that stalls between steps (a stand-in for a search that overruns its
+    deadline) must not hold the answer: the handler answers at the deadline with the best
+    route so far. The bound on the answer time is deliberately loose (1 s for a 50 ms deadline)
+    so the test checks the mechanism, not the machine's speed."""
+    client = make_client(grid_graph_path)
+    with stalling_searches(client):
+        t0 = time.perf_counter()
+        r = client.post(PLAN, json=body(0, 89_999, deadline_ms=50, controller="ana"))
+        waited_s = time.perf_counter() - t0
     assert r.status_code == 200 and waited_s < 1.0
-    plan = r.json()
-    assert plan["status"] == "contract_spent"
+    assert r.json()["status"] == "contract_spent"
     assert 'dueroute_plans_total{outcome="watchdog"} 1.0' in client.get("/metrics").text
+
+
+def test_queued_plan_cancels_at_once_and_a_full_queue_sheds(make_client, grid_graph_path):
+    """One worker held busy: a second background plan queues; DELETE cancels it without
+    waiting for the worker; a plan that could not start before its deadline is shed (503)."""
+    client = make_client(grid_graph_path, workers=1)
+    admission = client.app.state.dueroute.admission
+    with stalling_searches(client):
+        busy = client.post(PLAN, json=body(0, 89_999, deadline_ms=30_000, wait=False))
+        queued = client.post(PLAN, json=body(0, 89_998, deadline_ms=60_000, wait=False))
+        assert busy.status_code == queued.status_code == 202
+        assert admission.queued == 1
+        r = client.post(PLAN, json=body(1, 2, deadline_ms=100))  # first free slot: ~30 s
+        assert r.status_code == 503 and "1 of 1 workers busy" in r.json()["detail"]
+        assert int(r.headers["retry-after"]) >= 29
+        r = client.delete(queued.headers["location"])
+        assert r.status_code == 200 and r.json()["status"] == "cancelled"
+        assert admission.queued == 0
+    r = client.delete(busy.headers["location"])
+    assert r.json()["status"] in ("cancelled", "optimal", "contract_spent")
 
 
 def test_not_ready_until_warmed_up_then_ready(tmp_path, tiny_graph_path, monkeypatch):
