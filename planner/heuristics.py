@@ -563,12 +563,10 @@ def load_landmarks(
                     arrays[name] = np.memmap(path, dtype=dt, mode="r", offset=offset, shape=shape)
                 else:
                     arrays[name] = np.ascontiguousarray(npz[name])
-            fields = {
-                "slack_s": float(meta["slack_s"]),
-                "max_distance_s": float(meta["max_distance_s"]),
-                "method": str(meta["method"]),
-                "graph_fingerprint": str(meta["graph_fingerprint"]),
-            }
+            slack_s = float(meta["slack_s"])
+            max_distance_s = float(meta["max_distance_s"])
+            method = str(meta["method"])
+            graph_fingerprint = str(meta["graph_fingerprint"])
     except (CorruptGraphFile, GraphFileNotFound):
         raise
     except (
@@ -581,7 +579,17 @@ def load_landmarks(
         json.JSONDecodeError,
     ) as exc:
         raise CorruptGraphFile(f"{path}: not a readable landmark file ({exc})") from exc
-    landmarks = Landmarks(**arrays, **fields, meta=meta, path=path)
+    landmarks = Landmarks(
+        nodes=arrays["nodes"],
+        lm_from=arrays["lm_from"],
+        lm_to=arrays["lm_to"],
+        slack_s=slack_s,
+        max_distance_s=max_distance_s,
+        method=method,
+        graph_fingerprint=graph_fingerprint,
+        meta=meta,
+        path=path,
+    )
     _validate(landmarks, path)
     if graph is not None:
         landmarks.check_graph(graph)
