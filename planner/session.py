@@ -277,6 +277,9 @@ class Planner:
             empty = _readonly(np.zeros((1, 0), dtype=np.float32), np.float32)
             self._lm_from, self._lm_to, self._lm_slack = empty, empty, 0.0
         else:
+            check_graph = getattr(landmarks, "check_graph", None)
+            if check_graph is not None:  # landmarks of another graph give wrong bounds
+                check_graph(graph)
             lm_from = np.asarray(landmarks.lm_from)
             lm_to = np.asarray(landmarks.lm_to)
             if lm_from.ndim != 2 or lm_from.shape != lm_to.shape or lm_from.shape[0] != n:

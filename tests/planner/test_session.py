@@ -419,3 +419,16 @@ def test_per_query_setup_does_not_touch_graph_sized_memory() -> None:
         tracemalloc.stop()
     assert len(planner._pool) == 1
     assert peak < 200_000, peak  # a workspace for this graph is about 9 MB
+
+
+def test_landmarks_of_another_graph_are_refused() -> None:
+    """Landmarks built for one graph give wrong (inadmissible) bounds on another: refused."""
+    from planner.heuristics import build_landmarks
+
+    g1 = grid_graph(6, seed=0)
+    g2 = grid_graph(6, seed=1)
+    assert g1.fingerprint != g2.fingerprint
+    lm = build_landmarks(g1, count=2, progress=False)
+    Planner(g1, landmarks=lm)  # its own graph is fine
+    with pytest.raises(InvalidRequest, match="another graph"):
+        Planner(g2, landmarks=lm)
