@@ -151,15 +151,14 @@ class EdgeMiddleware:
 
             await self.app(scope, receive_limited, send_logged)
         if log.isEnabledFor(logging.INFO):
-            log.info(
-                "request",
-                extra={
-                    "method": scope.get("method"),
-                    "path": scope.get("path"),
-                    "status": status["code"],
-                    "duration_ms": round((time.perf_counter() - arrival_s) * 1000.0, 3),
-                },
-            )
+            fields = {
+                "method": scope.get("method"),
+                "path": scope.get("path"),
+                "status": status["code"],
+                "duration_ms": round((time.perf_counter() - arrival_s) * 1000.0, 3),
+            }
+            fields.update(scope["state"].get("log") or {})  # what the handler adds (plan id, ...)
+            log.info("request", extra=fields)
 
 
 def _too_large_text(size: int, limit: int) -> str:
@@ -313,7 +312,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     metrics = ServiceMetrics()
     policies = PolicyStore(settings.policy_dir, settings.max_policy_bytes)
     # Choose the active policy now: a bad --policy file fails the start, loudly.
-    active = policies.startup(settings.policy, DEFAULT_POLICY)
+    active = policies.startup(settings.policy, DEFAULT_POLICY if settings.shipped_policy else None)
     metrics.set_policy(active.sha256, active.source, active.fallback_controller)
     state = AppState(
         settings=settings,

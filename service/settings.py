@@ -38,6 +38,11 @@ class Settings(BaseSettings):
         description="ONNX policy file to activate at start-up; unset: the policy directory's "
         "active policy, else the shipped default policy, else none",
     )
+    shipped_policy: bool = Field(
+        default=True,
+        description="with no --policy and nothing persisted, activate the policy shipped with "
+        "dueroute (policies/default.onnx); false: 'learned' uses the fallback controller",
+    )
     policy_dir: Path = Field(
         default_factory=_default_policy_dir,
         description="directory where uploaded policies and the active-policy pointer persist",

@@ -87,6 +87,7 @@ def settings_for(graph: Path, tmp_path: Path, **overrides: Any) -> Any:
     values: dict[str, Any] = {
         "graph": str(graph),
         "policy_dir": tmp_path / "policies",
+        "shipped_policy": False,  # tests choose their policies; the shipped one may change
         "workers": 2,
         "landmarks": False,
         "warmup_searches": 1,

@@ -361,7 +361,7 @@ def test_watchdog_answers_on_time_when_a_search_overruns(make_client, grid_graph
         waited_s = time.perf_counter() - t0
     assert r.status_code == 200 and waited_s < 1.0
     assert r.json()["status"] == "contract_spent"
-    assert 'dueroute_plans_total{outcome="watchdog"} 1.0' in client.get("/metrics").text
+    assert "dueroute_watchdog_answers_total 1.0" in client.get("/metrics").text
 
 
 def test_queued_plan_cancels_at_once_and_a_full_queue_sheds(make_client, grid_graph_path):
@@ -429,4 +429,18 @@ def test_a_corrupt_graph_fails_readiness_with_the_reason(tmp_path):
             time.sleep(0.05)
         assert r.status_code == 503 and "CorruptGraphFile" in r.json()["detail"]["error"]
         r = client.post(PLAN, json=body(0, 3))
-        assert r.status_code == 503 and "not readable" in r.json()["detail"]
+        assert r.status_code == 503 and "not a readable compiled graph" in r.json()["detail"]
+
+
+def test_the_shipped_policy_serves_learned(make_client, tiny_graph_path):
+    """With no policy given, 'learned' runs the policy shipped in policies/default.onnx."""
+    from service.app import DEFAULT_POLICY
+
+    if not DEFAULT_POLICY.is_file():
+        pytest.skip("no shipped policy in this checkout")
+    client = make_client(tiny_graph_path, shipped_policy=True)
+    info = client.get("/v1/policy").json()
+    assert info["source"] == "default:default.onnx" and info["fallback_controller"] is None
+    plan = client.post(PLAN, json=body(0, 3)).json()
+    assert plan["controller"] == "learned" and plan["policy_sha256"] == info["sha256"]
+    assert plan["status"] == "optimal"

@@ -61,6 +61,7 @@ def test_check_prints_settings_as_json_without_the_token(
 
     monkeypatch.setenv("DUEROUTE_ADMIN_TOKEN", "secret-token-value")
     monkeypatch.setenv("XDG_STATE_HOME", str(tmp_path))
+    monkeypatch.setenv("DUEROUTE_SHIPPED_POLICY", "false")
     code = main(["serve", "--check", "--json", "--graph", str(tiny_graph_path), "--workers", "3"])
     out = capsys.readouterr().out
     assert code == 0 and "secret-token-value" not in out
