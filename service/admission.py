@@ -5,7 +5,8 @@ arrival + deadline_ms - response headroom. The search never runs past it, whenev
 so a plan occupies a worker slot until at most its search deadline. That gives a worst-case
 schedule that needs no guess about how long searches take:
 
-* a running plan frees its slot by its search deadline (earlier if it proves the optimum);
+* a running plan frees its slot by its search deadline (earlier if it proves the optimum),
+  plus the largest overrun seen in the last second (a thread starved of CPU ends late);
 * queued plans take slots in FIFO order (the thread pool's order) and each frees its slot by
   its own search deadline, or at once if it can no longer start in time.
 
@@ -19,6 +20,7 @@ never waits past its deadline in any case: a plan that starts late simply search
 
 from __future__ import annotations
 
+import asyncio
 import contextlib
 import heapq
 import itertools
@@ -26,6 +28,7 @@ import math
 import os
 import threading
 import time
+from collections import deque
 from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -90,6 +93,7 @@ class Admission:
         self._executor: ThreadPoolExecutor | None = None
         self.admitted_total = 0
         self.shed_total = 0
+        self._overrun_s = RecentMax(window_s=1.0)  # how late searches freed their worker
 
     def _pool(self) -> ThreadPoolExecutor:
         """The worker pool, (re)created on first use after construction or shutdown."""
@@ -114,13 +118,16 @@ class Admission:
             return self._estimate_locked(now_s)
 
     def _estimate_locked(self, now_s: float) -> float:
-        free = [max(now_s, t.search_deadline_s) for t in self._running.values()]
+        # A search frees its worker by its deadline plus the overrun seen lately (a starved
+        # thread finishes late); one past that is assumed to finish any moment.
+        overrun = self._overrun_s.value
+        free = [max(now_s, t.search_deadline_s + overrun) for t in self._running.values()]
         free += [now_s] * (self.workers - len(free))
         heapq.heapify(free)
         for t in self._queued.values():
             start = heapq.heappop(free)
             # Starts at ``start`` and frees the slot by its deadline (at once if too late).
-            heapq.heappush(free, max(start, t.search_deadline_s))
+            heapq.heappush(free, max(start, t.search_deadline_s + overrun))
         return free[0]
 
     def admit(
@@ -168,6 +175,9 @@ class Admission:
                 with self._lock:
                     self._running.pop(ticket.ticket_id, None)
                     ticket.finished_s = self.clock()
+                    self._overrun_s.record(
+                        ticket.finished_s, max(0.0, ticket.finished_s - ticket.search_deadline_s)
+                    )
 
         try:
             return self._pool().submit(run)
@@ -214,6 +224,7 @@ class Admission:
                 "busy": len(self._running),
                 "queued": len(self._queued),
                 "next_free_in_ms": max(0.0, (start - now) * 1000.0),
+                "recent_overrun_ms": self._overrun_s.value * 1000.0,
                 "admitted_total": self.admitted_total,
                 "shed_total": self.shed_total,
             }
@@ -227,3 +238,46 @@ class Admission:
             pool, self._executor = self._executor, None
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=False)
+
+
+class RecentMax:
+    """The largest value recorded in the last ``window_s`` seconds (0 when none)."""
+
+    def __init__(self, window_s: float = 1.0) -> None:
+        self.window_s = window_s
+        self._samples: deque[tuple[float, float]] = deque()  # (time, value), oldest first
+        self.value = 0.0
+
+    def record(self, now_s: float, value: float) -> None:
+        self._samples.append((now_s, value))
+        while self._samples and self._samples[0][0] < now_s - self.window_s:
+            self._samples.popleft()
+        self.value = max(v for _, v in self._samples)
+
+
+class LoopLag:
+    """How late the event loop runs a timer right now: the delay an answer would see.
+
+    A task sleeps ``interval_s`` over and over and records how much later than asked it woke.
+    :meth:`estimate_ms` is the largest lag in the last ``window_s`` seconds. The plans route
+    adds it to the response headroom (the search stops that much earlier) and fires its
+    watchdog that much earlier, so an answer keeps the deadline while the loop is busy (many
+    connections, the GIL shared with the search threads) instead of arriving late by the lag.
+    """
+
+    def __init__(self, interval_s: float = 0.005, window_s: float = 1.0) -> None:
+        self.interval_s = interval_s
+        self._lag_s = RecentMax(window_s)
+
+    def record(self, now_s: float, lag_s: float) -> None:
+        self._lag_s.record(now_s, lag_s)
+
+    def estimate_ms(self) -> float:
+        return self._lag_s.value * 1000.0
+
+    async def run(self) -> None:
+        while True:
+            t0 = time.perf_counter()
+            await asyncio.sleep(self.interval_s)
+            t1 = time.perf_counter()
+            self.record(t1, max(0.0, t1 - t0 - self.interval_s))

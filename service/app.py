@@ -19,6 +19,7 @@ import json
 import logging
 import sys
 import time
+import weakref
 from collections.abc import AsyncIterator, Awaitable, Callable, MutableMapping
 from contextlib import asynccontextmanager
 from pathlib import Path
@@ -86,10 +87,22 @@ class JsonLogFormatter(logging.Formatter):
         return json.dumps(out, default=str)
 
 
+class _StderrHandler(logging.StreamHandler):
+    """Writes to whatever ``sys.stderr`` is at the time (test runners swap it)."""
+
+    @property
+    def stream(self) -> Any:
+        return sys.stderr
+
+    @stream.setter
+    def stream(self, value: Any) -> None:
+        pass
+
+
 def configure_logging(level: str = "info", as_json: bool = True) -> None:
     """Send ``dueroute.*`` logs to stderr, as JSON lines unless ``as_json`` is false."""
     root = logging.getLogger("dueroute")
-    handler = logging.StreamHandler(sys.stderr)
+    handler = _StderrHandler()
     handler.setFormatter(
         JsonLogFormatter() if as_json else logging.Formatter("%(levelname)s %(name)s %(message)s")
     )
@@ -271,10 +284,41 @@ def warm_up(state: AppState) -> None:
     # view (gc.freeze), so no full collection of import-time objects stalls a request later.
     gc.collect()
     gc.freeze()
+    _watch_gc(state)
     state.engine = engine
     state.ready = True
     state.metrics.ready.set(1)
     log.info("ready", extra=state.warmup)
+
+
+#: Metrics of every live app; one process-wide collector callback feeds them all.
+_GC_METRICS: weakref.WeakSet[ServiceMetrics] = weakref.WeakSet()
+_GC_STARTED: dict[str, float] = {}
+
+
+def _on_gc(phase: str, info: dict[str, Any]) -> None:
+    """Time every garbage collection (a pause for all threads); log the long ones."""
+    if phase == "start":
+        _GC_STARTED["t"] = time.perf_counter()
+        return
+    t0 = _GC_STARTED.pop("t", None)
+    if t0 is None:
+        return
+    pause_s = time.perf_counter() - t0
+    generation = str(info.get("generation"))
+    for metrics in list(_GC_METRICS):
+        metrics.gc_pause.labels(generation=generation).observe(pause_s)
+    if pause_s > 0.005:
+        log.warning(
+            "long garbage-collector pause",
+            extra={"pause_ms": round(pause_s * 1000.0, 2), "generation": generation},
+        )
+
+
+def _watch_gc(state: AppState) -> None:
+    _GC_METRICS.add(state.metrics)
+    if _on_gc not in gc.callbacks:
+        gc.callbacks.append(_on_gc)
 
 
 def _warmup_searches(engine: PlanningEngine, state: AppState, count: int) -> int:
@@ -332,6 +376,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         if not state.tasks:
             state.tasks.append(asyncio.create_task(_warm(state)))
             state.tasks.append(asyncio.create_task(_sweep(state)))
+            state.tasks.append(asyncio.create_task(state.loop_lag.run()))
         try:
             yield
         finally:
@@ -434,3 +479,4 @@ async def _sweep(state: AppState) -> None:
         await asyncio.sleep(1.0)
         state.plans.expire()
         state.metrics.background.set(len(state.plans))
+        state.metrics.loop_lag.set(state.loop_lag.estimate_ms())

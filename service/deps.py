@@ -10,7 +10,7 @@ from typing import Annotated, Any
 
 from fastapi import Depends, HTTPException, Request
 
-from service.admission import Admission
+from service.admission import Admission, LoopLag
 from service.jobs import PlanningEngine, PlanStore
 from service.metrics import ServiceMetrics
 from service.policy_store import PolicyStore
@@ -26,6 +26,7 @@ class AppState:
     admission: Admission
     plans: PlanStore
     policies: PolicyStore
+    loop_lag: LoopLag = field(default_factory=LoopLag)
     engine: PlanningEngine | None = None  # set once the graph is loaded and warmed up
     ready: bool = False
     warmup_error: str | None = None

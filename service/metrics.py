@@ -52,6 +52,11 @@ class ServiceMetrics:
         self.sheds = Counter(
             "dueroute_sheds", "Requests refused by admission control (503)", registry=r
         )
+        self.watchdog = Counter(
+            "dueroute_watchdog_answers",
+            "wait=true answers given at the deadline because the search had not returned",
+            registry=r,
+        )
         self.latency = Histogram(
             "dueroute_plan_latency_seconds",
             "Arrival to answer built, for plans answered with wait=true",
@@ -74,6 +79,18 @@ class ServiceMetrics:
             "dueroute_plan_late_ms",
             "How far past arrival + deadline_ms an answer was built (0 when on time)",
             buckets=_LATE_BUCKETS_MS,
+            registry=r,
+        )
+        self.loop_lag = Gauge(
+            "dueroute_loop_lag_ms",
+            "Largest event-loop timer lag in the last second (added to the response headroom)",
+            registry=r,
+        )
+        self.gc_pause = Histogram(
+            "dueroute_gc_pause_seconds",
+            "Python garbage-collector pauses (every thread waits for them)",
+            ["generation"],
+            buckets=(0.0005, 0.001, 0.0025, 0.005, 0.01, 0.025, 0.05, 0.1),
             registry=r,
         )
         self.busy_workers = Gauge("dueroute_busy_workers", "Searches running now", registry=r)

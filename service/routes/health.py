@@ -27,7 +27,11 @@ async def healthz(state: StateDep) -> JSONResponse:
     summary="Ready once the graph is loaded and the search kernel is warmed up",
 )
 async def readyz(state: StateDep) -> JSONResponse:
-    detail = {"admission": state.admission.snapshot(), **state.warmup}
+    detail = {
+        "admission": state.admission.snapshot(),
+        "loop_lag_ms": round(state.loop_lag.estimate_ms(), 3),
+        **state.warmup,
+    }
     if state.ready:
         return JSONResponse({"status": "ready", "detail": detail})
     status = "failed" if state.warmup_error is not None else "warming_up"
@@ -47,4 +51,5 @@ async def metrics(state: StateDep) -> Response:
     m.busy_workers.set(state.admission.busy)
     m.queued.set(state.admission.queued)
     m.background.set(len(state.plans))
+    m.loop_lag.set(state.loop_lag.estimate_ms())
     return Response(m.render(), media_type=m.content_type)
