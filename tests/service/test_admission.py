@@ -78,3 +78,50 @@ def test_a_plan_that_cannot_start_frees_its_slot_at_once():
 def test_workers_must_be_positive():
     with pytest.raises(ValueError, match="workers must be >= 1"):
         Admission(workers=0, min_search_ms=1.0)
+
+
+def test_recent_max_forgets_old_values():
+    from service.admission import RecentMax
+
+    m = RecentMax(window_s=1.0)
+    m.record(10.0, 0.004)
+    m.record(10.5, 0.001)
+    assert m.value == 0.004
+    m.record(11.2, 0.002)  # the 0.004 at t=10.0 is older than a second now
+    assert m.value == 0.002
+
+
+def test_recent_overrun_extends_a_workers_busy_time():
+    """A search that freed its worker 30 ms after its deadline makes the next estimates assume
+    running searches do the same (for a second)."""
+    clock = Clock()
+    adm = Admission(workers=1, min_search_ms=1.0, clock=clock)
+    late = adm.admit(clock.t, clock.t - 0.03)  # its deadline passed 30 ms ago
+    adm.submit(late, lambda t: None).result(5)
+    gate = threading.Event()
+    running = adm.admit(clock.t, clock.t + 0.01)
+    fut = adm.submit(running, lambda t: gate.wait(5))
+    while adm.busy == 0:
+        pass
+    assert adm.estimate_start_s(clock.t) == pytest.approx(clock.t + 0.04)
+    gate.set()
+    fut.result(5)
+    adm.shutdown()
+
+
+def test_loop_lag_measures_a_blocked_loop():
+    import asyncio
+    import time
+
+    from service.admission import LoopLag
+
+    async def scenario() -> float:
+        lag = LoopLag(interval_s=0.001, window_s=5.0)
+        task = asyncio.create_task(lag.run())
+        await asyncio.sleep(0.01)
+        time.sleep(0.03)  # block the loop for 30 ms
+        await asyncio.sleep(0.01)
+        task.cancel()
+        return lag.estimate_ms()
+
+    assert asyncio.run(scenario()) >= 20.0
