@@ -52,6 +52,11 @@ class ServiceMetrics:
         self.sheds = Counter(
             "dueroute_sheds", "Requests refused by admission control (503)", registry=r
         )
+        self.late_answers = Counter(
+            "dueroute_late_answers",
+            "Answers built later than arrival + deadline_ms + DUEROUTE_DEADLINE_TOLERANCE_MS",
+            registry=r,
+        )
         self.watchdog = Counter(
             "dueroute_watchdog_answers",
             "wait=true answers given at the deadline because the search had not returned",

@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import logging
 import time
 from collections.abc import AsyncIterator
 from typing import Any
@@ -29,6 +30,7 @@ from service.jobs import PlanJob, StoreFull, dumps, new_plan_id
 from service.schemas import RESPONSES_4XX, ErrorBody, NodeRef, Plan, PlanAccepted, PlanRequest
 
 router = APIRouter(tags=["plans"])
+log = logging.getLogger("dueroute.service.plans")
 
 _SSE_KEEPALIVE_S = 15.0
 
@@ -203,7 +205,14 @@ def _observe(state: AppState, job: PlanJob, result: dict[str, Any], now_s: float
     total_s = now_s - job.arrival_s
     m.latency.observe(total_s)
     m.overhead.observe(max(0.0, total_s - result["timings"]["search_ms"] / 1000.0))
-    m.late.observe(max(0.0, (total_s - job.deadline_ms / 1000.0) * 1000.0))
+    late_ms = (total_s - job.deadline_ms / 1000.0) * 1000.0
+    m.late.observe(max(0.0, late_ms))
+    if late_ms > state.settings.deadline_tolerance_ms:  # the promise broken: count and say so
+        m.late_answers.inc()
+        log.warning(
+            "answer later than the deadline tolerance",
+            extra={"plan_id": job.plan_id, "late_ms": round(late_ms, 3)},
+        )
     if result.get("gap") is not None:
         m.gap.observe(result["gap"])
     m.queued.set(state.admission.queued)

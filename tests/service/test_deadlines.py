@@ -236,6 +236,14 @@ def test_live_background_plan_streams_and_logs_are_json(server: LiveServer):
         assert "event: final" in text
         metrics = client.get("/metrics").text
         assert "dueroute_sheds_total" in metrics
+        counts = {
+            line.split()[0]: float(line.split()[1])
+            for line in metrics.splitlines()
+            if line.startswith(("dueroute_late_answers_total", "dueroute_sheds_total"))
+        }
+        print(f"\n[server metrics after all load] {counts}")
     lines = server.log_lines()
     assert any(line.get("msg") == "ready" for line in lines)
-    assert any(line.get("msg") == "request" and line.get("path") == "/v1/plans" for line in lines)
+    plans = [x for x in lines if x.get("msg") == "request" and x.get("path") == "/v1/plans"]
+    assert plans and all("outcome" in x and "duration_ms" in x for x in plans)
+    assert any(x["outcome"] == "shed" for x in plans) and any("plan_id" in x for x in plans)
