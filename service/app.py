@@ -299,7 +299,8 @@ _GC_STARTED: dict[str, float] = {}
 def _on_gc(phase: str, info: dict[str, Any]) -> None:
     """Time every garbage collection (a pause for all threads); log the long ones."""
     if phase == "start":
-        _GC_STARTED["t"] = time.perf_counter()
+        if _GC_METRICS:  # only while an app lives in this process
+            _GC_STARTED["t"] = time.perf_counter()
         return
     t0 = _GC_STARTED.pop("t", None)
     if t0 is None:

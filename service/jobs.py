@@ -31,8 +31,6 @@ from service.admission import Ticket
 
 log = logging.getLogger("dueroute.service.jobs")
 
-FINAL_STATUSES = ("optimal", "contract_spent", "no_route", "cancelled")
-
 
 def new_plan_id() -> str:
     return secrets.token_urlsafe(12)
@@ -97,17 +95,6 @@ def route_feature(graph: Any, nodes: Any, edges: Any) -> dict[str, Any] | None:
             "node_ids": np.asarray(graph.osm_id[nodes_a]).tolist(),
             "node_indices": nodes_a.tolist(),
         },
-    }
-
-
-def route_summary(feature: dict[str, Any] | None) -> dict[str, Any] | None:
-    if feature is None:
-        return None
-    props = feature["properties"]
-    return {
-        "travel_time_s": props["travel_time_s"],
-        "length_m": props["length_m"],
-        "nodes": len(props["node_indices"]),
     }
 
 

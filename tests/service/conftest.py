@@ -234,6 +234,7 @@ def policy_meta(**overrides: str) -> dict[str, str]:
         training_config={"note": "service test"},
         graph_fingerprint="0" * 64,
         graph_name="test",
+        created_utc="2026-01-01T00:00:00+00:00",  # fixed, so equal seeds give equal bytes
     )
     meta.update(overrides)
     return meta
