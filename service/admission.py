@@ -241,10 +241,12 @@ class Admission:
 
 
 class RecentMax:
-    """The largest value recorded in the last ``window_s`` seconds (0 when none)."""
+    """A high quantile (default the largest) of the values recorded in the last ``window_s``
+    seconds (0 when none)."""
 
-    def __init__(self, window_s: float = 1.0) -> None:
+    def __init__(self, window_s: float = 1.0, quantile: float = 1.0) -> None:
         self.window_s = window_s
+        self.quantile = quantile
         self._samples: deque[tuple[float, float]] = deque()  # (time, value), oldest first
         self.value = 0.0
 
@@ -252,28 +254,40 @@ class RecentMax:
         self._samples.append((now_s, value))
         while self._samples and self._samples[0][0] < now_s - self.window_s:
             self._samples.popleft()
-        self.value = max(v for _, v in self._samples)
+        if self.quantile >= 1.0:
+            self.value = max(v for _, v in self._samples)
+        else:
+            ordered = sorted(v for _, v in self._samples)
+            self.value = ordered[min(len(ordered) - 1, int(self.quantile * len(ordered)))]
 
 
 class LoopLag:
     """How late the event loop runs a timer right now: the delay an answer would see.
 
     A task sleeps ``interval_s`` over and over and records how much later than asked it woke.
-    :meth:`estimate_ms` is the largest lag in the last ``window_s`` seconds. The plans route
+    :meth:`estimate_ms` is the 95th percentile of the lag in the last ``window_s`` seconds:
+    it follows a loop that is busy (overload), not a rare hiccup of a shared machine, which
+    would otherwise cut every search short for a whole window. The plans route
     adds it to the response headroom (the search stops that much earlier) and fires its
     watchdog that much earlier, so an answer keeps the deadline while the loop is busy (many
     connections, the GIL shared with the search threads) instead of arriving late by the lag.
     """
 
-    def __init__(self, interval_s: float = 0.005, window_s: float = 1.0) -> None:
+    def __init__(
+        self, interval_s: float = 0.005, window_s: float = 1.0, quantile: float = 0.95
+    ) -> None:
         self.interval_s = interval_s
-        self._lag_s = RecentMax(window_s)
+        self._lag_s = RecentMax(window_s, quantile)
 
     def record(self, now_s: float, lag_s: float) -> None:
         self._lag_s.record(now_s, lag_s)
 
     def estimate_ms(self) -> float:
         return self._lag_s.value * 1000.0
+
+    def reset(self) -> None:
+        """Forget the samples (after start-up work that will not recur)."""
+        self._lag_s = RecentMax(self._lag_s.window_s, self._lag_s.quantile)
 
     async def run(self) -> None:
         while True:

@@ -469,6 +469,9 @@ async def _warm(state: AppState) -> None:
     state.warmup_error = None
     try:
         await asyncio.to_thread(warm_up, state)
+        # The warm-up (JIT, a full collection) stalled the loop; that says nothing about
+        # serving, so the lag estimate starts afresh.
+        state.loop_lag.reset()
     except Exception as exc:  # keep serving /healthz; /readyz reports the reason
         state.warmup_error = f"{type(exc).__name__}: {exc}"
         log.error("warm-up failed", extra={"error": state.warmup_error})

@@ -116,7 +116,7 @@ def test_loop_lag_measures_a_blocked_loop():
     from service.admission import LoopLag
 
     async def scenario() -> float:
-        lag = LoopLag(interval_s=0.001, window_s=5.0)
+        lag = LoopLag(interval_s=0.001, window_s=5.0, quantile=1.0)
         task = asyncio.create_task(lag.run())
         await asyncio.sleep(0.01)
         time.sleep(0.03)  # block the loop for 30 ms
