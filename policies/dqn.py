@@ -47,11 +47,11 @@ class DQNConfig:
     hidden_units: int = field(
         default=64, metadata={"help": "units in each of the two hidden layers (units)"}
     )
-    learning_rate: float = field(default=5e-4, metadata={"help": "Adam step size (1)"})
+    learning_rate: float = field(default=2.5e-4, metadata={"help": "Adam step size (1)"})
     gamma: float = field(
         default=1.0, metadata={"help": "discount factor per decision step (1 = undiscounted)"}
     )
-    batch_size: int = field(default=64, metadata={"help": "transitions per gradient update"})
+    batch_size: int = field(default=128, metadata={"help": "transitions per gradient update"})
     buffer_size: int = field(
         default=50_000, metadata={"help": "replay buffer capacity (transitions)"}
     )
@@ -66,12 +66,12 @@ class DQNConfig:
         default=1, metadata={"help": "environment steps between gradient updates (steps)"}
     )
     target_update_every: int = field(
-        default=250, metadata={"help": "gradient updates between target-network copies (updates)"}
+        default=500, metadata={"help": "gradient updates between target-network copies (updates)"}
     )
     epsilon_start: float = field(default=1.0, metadata={"help": "initial exploration rate (1)"})
     epsilon_end: float = field(default=0.05, metadata={"help": "final exploration rate (1)"})
     exploration_fraction: float = field(
-        default=0.5,
+        default=0.3,
         metadata={"help": "share of the episodes over which epsilon decays linearly (1)"},
     )
     huber_delta: float = field(
@@ -88,7 +88,7 @@ class DQNConfig:
         },
     )
     eval_every_episodes: int = field(
-        default=1000,
+        default=500,
         metadata={
             "help": "episodes between greedy evaluations on fixed validation episodes; the "
             "best-evaluated network is returned (0 = off, keep the last network)"
@@ -575,7 +575,10 @@ def write_curve_csv(curve: list[dict[str, float]], path: str | Path) -> Path:
         writer.writeheader()
         for row in curve:
             writer.writerow(
-                {k: (int(v) if k in ("episode", "env_steps") else v) for k, v in row.items()}
+                {
+                    k: (int(v) if k in ("episode", "env_steps") else f"{v:.6g}")
+                    for k, v in row.items()
+                }
             )
     return path
 
