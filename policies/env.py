@@ -290,6 +290,11 @@ class WeightControlEnv(gym.Env):
         self._optimal_s = math.inf
         self._quality = 0.0
 
+    @property
+    def search(self) -> Search | None:
+        """The search of the current episode (``None`` before the first reset)."""
+        return self._search
+
     # -- helpers --
     def _weight_after(self, action: int) -> float:
         if self.config.action_kind == "pick":

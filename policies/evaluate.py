@@ -85,7 +85,8 @@ class Contract:
 
     @property
     def key(self) -> str:
-        return f"{self.kind}_{self.value:g}"
+        value = str(int(self.value)) if self.kind == "budget" else f"{self.value:g}"
+        return f"{self.kind}_{value}"
 
 
 @dataclass

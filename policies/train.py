@@ -20,7 +20,7 @@ import numpy as np
 
 from planner.graph import RoadGraph
 from policies.dqn import DQNConfig, QNetwork, TrainResult, save_config, train, write_curve_csv
-from policies.env import EnvConfig, OptimalCosts, WeightControlEnv, sample_queries
+from policies.env import EnvConfig, WeightControlEnv, sample_queries
 from policies.export import export_policy, policy_metadata
 
 
@@ -50,7 +50,7 @@ def greedy_quality(
     out = np.empty(len(query_indices))
     for k, i in enumerate(query_indices):
         obs, info = env.reset(seed=0, options={"query_index": i})
-        done = env._search is None or env._search.done
+        done = env.search is None or env.search.done
         total = 0.0
         while not done:
             obs, r, term, trunc, info = env.step(network.greedy(obs))
@@ -135,6 +135,3 @@ def load_training_config(policy_path: str | Path) -> dict[str, Any] | None:
     """The config JSON written beside a policy, or ``None`` if absent."""
     path, _ = side_files(policy_path)
     return json.loads(path.read_text()) if path.is_file() else None
-
-
-__all__ = ["OptimalCosts", "ValidationConfig", "greedy_quality", "side_files", "train_policy"]

@@ -95,8 +95,8 @@ def test_episode_matches_plan_with_the_same_weights(env, grid_graph):
 
     for i in range(10):
         env.reset(options={"query_index": i})
-        term = trunc = env._search.done
-        info = {"incumbent_cost_s": env._search.stats().incumbent_cost_s}
+        term = trunc = env.search.done
+        info = {"incumbent_cost_s": env.search.stats().incumbent_cost_s}
         while not (term or trunc):
             _, _, term, trunc, info = env.step(pick)
         o, d = (int(x) for x in env.queries[i])
@@ -179,8 +179,8 @@ def test_greedy_episode_equals_serving_with_the_exported_policy(grid_graph, tmp_
     )
     for i in range(20):
         obs, info = env.reset(options={"query_index": i})
-        done = env._search.done
-        final = env._search.stats().incumbent_cost_s
+        done = env.search.done
+        final = env.search.stats().incumbent_cost_s
         while not done:
             obs, _, term, trunc, info = env.step(int(np.argmax(policy.q_values(obs))))
             done, final = term or trunc, info["incumbent_cost_s"]
