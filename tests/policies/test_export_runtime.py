@@ -166,3 +166,28 @@ def test_check_policy_refuses_each_bad_kind(case: str, policy_file: Path, tmp_pa
 
 def test_missing_file_is_reported(tmp_path: Path):
     assert check_policy(tmp_path / "nope.onnx") == [f"file not found: {tmp_path / 'nope.onnx'}"]
+
+
+def test_shipped_default_policy_is_valid_for_this_build():
+    """policies/default.onnx passes every check (ONNX checker, schema, probes); it must be
+    retrained whenever the feature schema changes."""
+    from policies.runtime import DEFAULT_POLICY_PATH, default_policy
+
+    assert check_policy(DEFAULT_POLICY_PATH) == []
+    policy = default_policy()
+    assert policy.weights == WEIGHTS
+    config = json.loads(policy.metadata["training_config"])
+    assert config["env"]["budget_expansions"] == policy.contract_expansions
+    assert DEFAULT_POLICY_PATH.with_suffix(".md").is_file()
+
+
+def test_resolve_controller():
+    from planner.errors import InvalidRequest
+    from policies.runtime import default_policy, resolve_controller
+
+    learned = resolve_controller("learned")
+    assert isinstance(learned, LearnedController) and learned.policy is default_policy()
+    assert resolve_controller("fixed:2").reset(None) == 2.0
+    assert resolve_controller("random", seed=3).name == "random"
+    with pytest.raises(InvalidRequest):
+        resolve_controller("fastest")
