@@ -20,8 +20,12 @@ def env(grid_graph):
     )
 
 
-def test_passes_gymnasium_env_checker(env):
+@pytest.mark.parametrize("action_kind", ["pick", "step"])
+def test_passes_gymnasium_env_checker(grid_graph, action_kind):
     """gymnasium.utils.env_checker.check_env: spaces, dtypes, seeding and API contract."""
+    env = WeightControlEnv(
+        grid_graph, budget_expansions=150, steps=6, n_queries=40, action_kind=action_kind
+    )
     check_env(env, skip_render_check=True)
 
 
