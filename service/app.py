@@ -448,6 +448,7 @@ def _allowed_methods(app: FastAPI, path: str) -> set[str]:
 
 
 async def _shutdown(state: AppState) -> None:
+    _GC_METRICS.discard(state.metrics)  # a stopped app no longer times or logs collections
     loop = asyncio.get_running_loop()
     mine = [t for t in state.tasks if t.get_loop() is loop]
     for task in state.tasks:
