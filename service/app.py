@@ -274,6 +274,7 @@ def warm_up(state: AppState) -> None:
         "graph": str(graph.path),
         "nodes": graph.n_nodes,
         "edges": graph.n_edges,
+        "graph_fingerprint": graph.fingerprint,
         "load_graph_ms": round((t_graph - t0) * 1000.0, 1),
         "landmarks": landmarks.count if landmarks is not None else 0,
         "landmarks_ms": round((t_lm - t_graph) * 1000.0, 1),

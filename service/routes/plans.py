@@ -171,8 +171,11 @@ async def create_plan(body: PlanRequest, request: Request, state: StateDep) -> R
         if job.future.cancel():
             state.admission.release(ticket)
             engine.finish(job, "contract_spent", None)
+        # The worker may finish while this snapshot is taken: a waiting caller never gets
+        # a "running" plan, whichever side won.
         result = dict(job.current())
-        result["status"] = "contract_spent" if job.final is None else result["status"]
+        if result["status"] == "running":
+            result["status"] = "contract_spent"
         metrics.watchdog.inc()
     now = time.perf_counter()
     timings = dict(result["timings"])

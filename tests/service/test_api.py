@@ -248,6 +248,8 @@ def test_health_ready_metrics_and_openapi(make_client, tiny_graph_path):
     assert client.get("/healthz").json()["status"] == "alive"
     ready = client.get("/readyz").json()
     assert ready["status"] == "ready" and ready["detail"]["warmup_searches"] >= 1
+    # a load tester checks it is talking to the graph it computes reference costs on
+    assert ready["detail"]["graph_fingerprint"] == load_graph(tiny_graph_path).fingerprint
     client.post(PLAN, json=body(0, 3))
     client.post(PLAN, json=body(0, 99))
     text = client.get("/metrics").text
