@@ -20,7 +20,7 @@ import numpy as np
 
 from planner.graph import RoadGraph
 from policies.dqn import DQNConfig, QNetwork, TrainResult, save_config, train, write_curve_csv
-from policies.env import EnvConfig, WeightControlEnv, sample_queries
+from policies.env import EnvConfig, WeightControlEnv, quality, sample_queries
 from policies.export import export_policy, policy_metadata
 
 
@@ -46,17 +46,20 @@ def side_files(out: str | Path) -> tuple[Path, Path]:
 def greedy_quality(
     network: QNetwork, env: WeightControlEnv, query_indices: range | list[int]
 ) -> np.ndarray:
-    """Final quality of the greedy policy on each given query of ``env`` (float64[k])."""
+    """Final quality of the greedy policy on each given query of ``env`` (float64[k]).
+
+    The quality is taken from the search's final incumbent, not from the episode's reward
+    sum: a query whose first step (run at the initial weight, before the policy acts) already
+    ends the search has no step, and its return would read 0 although the route is optimal.
+    """
     out = np.empty(len(query_indices))
     for k, i in enumerate(query_indices):
         obs, info = env.reset(seed=0, options={"query_index": i})
         done = env.search is None or env.search.done
-        total = 0.0
         while not done:
-            obs, r, term, trunc, info = env.step(network.greedy(obs))
-            total += r
+            obs, _, term, trunc, info = env.step(network.greedy(obs))
             done = term or trunc
-        out[k] = info["quality"]
+        out[k] = quality(info["optimal_cost_s"], info["incumbent_cost_s"])
     return out
 
 
