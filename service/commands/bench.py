@@ -101,6 +101,10 @@ def register(sub: Any) -> argparse.ArgumentParser:
     )
     add_json_flag(s)
     s.set_defaults(func=cmd_search)
+
+    from service.commands.bench_deadline import register as register_deadline
+
+    register_deadline(bench_sub)
     return parser
 
 

@@ -185,3 +185,32 @@ def test_long_trips_run_between_the_two_towns(tmp_path: Path) -> None:
         a, b = (west, east) if i % 2 == 0 else (east, west)
         assert great_circle_m(lat[o], lon[o], lat[a], lon[a]) <= TOWN_CENTRE_RADIUS_M
         assert great_circle_m(lat[d], lon[d], lat[b], lon[b]) <= TOWN_CENTRE_RADIUS_M
+
+
+def test_bench_deadline_json_smoke(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """``bench deadline`` reports lateness per cell; a search that ran out of time is counted.
+
+    No timing assertion: only that the report is complete and its numbers are consistent.
+    """
+    path = grid_graph_file(tmp_path / "grid.npz", side=30)
+    code = main(
+        ["bench", "deadline", str(path), "--queries", "4", "--deadlines-ms", "0.05", "5", "--json"]
+    )
+    out, _ = capsys.readouterr()
+    assert code == 0
+    report = json.loads(out)
+    assert report["target_p99_ms"] == 0.5 and len(report["cells"]) == 6
+    for cell in report["cells"]:
+        assert cell["ran_out_of_time"] + cell["finished_early"] == cell["searches"] == 4
+        if cell["ran_out_of_time"]:
+            assert cell["p50_ms"] <= cell["p99_ms"] <= cell["max_ms"]
+            assert 0.0 <= cell["within_target"] <= 1.0
+    assert any(c["ran_out_of_time"] for c in report["cells"])  # 50 us is too short for any trip
+
+
+def test_bench_deadline_bad_arguments(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    path = grid_graph_file(tmp_path / "grid.npz")
+    assert main(["bench", "deadline", str(path), "--deadlines-ms", "0"]) == 2
+    assert "--deadlines-ms must be in (0, 60000]" in capsys.readouterr().err
+    assert main(["bench", "deadline", str(path), "--controllers", "fast"]) == 2
+    assert "fast" in capsys.readouterr().err
