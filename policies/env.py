@@ -41,7 +41,8 @@ class EnvConfig:
     """Settings of the training environment (saved with the training config of a policy)."""
 
     budget_expansions: int = field(
-        default=3_000, metadata={"help": "expansion budget per search: the contract (expansions)"}
+        default=15_000,
+        metadata={"help": "expansion budget per search: the contract (expansions)"},
     )
     steps: int = field(
         default=20, metadata={"help": "decision steps the contract is cut into (steps)"}
@@ -54,7 +55,7 @@ class EnvConfig:
         },
     )
     initial_weight: float = field(
-        default=5.0, metadata={"help": "weight of the first step, before any feature exists (1)"}
+        default=1.0, metadata={"help": "weight of the first step, before any feature exists (1)"}
     )
     n_queries: int = field(
         default=2000, metadata={"help": "size of the training query pool (queries)"}
