@@ -32,7 +32,7 @@ from typing import Any
 
 import numpy as np
 
-from demo_data.generate import (
+from dueroute.demo_data.generate import (
     GENERATOR_VERSION,
     SCENARIO_PATH,
     RegionMap,
@@ -42,14 +42,18 @@ from demo_data.generate import (
     load_scenario,
     write_osm,
 )
-from planner.errors import InvalidRequest
-from planner.graph import RoadGraph, build_graph, great_circle_m, save_graph
+from dueroute.planner.errors import InvalidRequest
+from dueroute.planner.graph import RoadGraph, build_graph, great_circle_m, save_graph
 
 #: Environment variable naming the cache directory.
 DATA_DIR_ENV = "DUEROUTE_DATA_DIR"
 
 #: Sizes built through OSM XML + osmnx; larger ones are compiled directly.
 OSM_SIZES = ("tiny", "demo")
+
+
+#: The graph argument that names the built-in demo region.
+DEMO_WORD = "demo"
 
 
 def data_dir() -> Path:
@@ -106,6 +110,19 @@ def demo_graph_path(
     return path
 
 
+def resolve_graph_path(arg: str) -> Path:
+    """Path of a compiled graph; ``demo`` builds the demo region on first use."""
+    if arg == DEMO_WORD:
+        return demo_graph_path("demo")
+    path = Path(arg)
+    if path.suffix != ".npz":
+        raise InvalidRequest(
+            f"{arg!r} is not a compiled graph: pass a .npz file (make one with "
+            "'dueroute graph import MAP.osm -o OUT.npz') or the word 'demo'"
+        )
+    return path
+
+
 @contextlib.contextmanager
 def _exclusive(lock_path: Path) -> Iterator[None]:
     """Hold an exclusive advisory lock on ``lock_path`` (no-op where ``fcntl`` is missing)."""
@@ -152,7 +169,7 @@ def build_demo_graph(
         timings["generate_s"] = time.perf_counter() - t0
         bar.update(1)
         if via_osm:
-            from planner.osm_import import import_map
+            from dueroute.planner.osm_import import import_map
 
             with tempfile.TemporaryDirectory(dir=work_dir, prefix="demo-build-") as tmp:
                 xml = Path(tmp) / f"{size}.osm"
@@ -253,8 +270,8 @@ def compile_region(
     :func:`planner.speeds.edge_speed`. On the ``tiny`` size it gives the same node and edge
     counts as the osmnx import (checked in the tests).
     """
-    from planner.osm_import import way_drop_reason
-    from planner.speeds import ROAD_CLASSES, edge_speed, road_class_index
+    from dueroute.planner.osm_import import way_drop_reason
+    from dueroute.planner.speeds import ROAD_CLASSES, edge_speed, road_class_index
 
     lat_all, lon_all = region.lat, region.lon
     ways = [w for w in region.ways if way_drop_reason(w.tags) is None]
@@ -380,7 +397,7 @@ def compile_region(
     remap2[keep_nodes] = np.arange(len(keep_nodes))
     meta = {
         "name": region.name,
-        "importer": "demo_data.build.compile_region",
+        "importer": "dueroute.demo_data.build.compile_region",
         "dropped": {"ways_not_drivable": dropped},
         "file_nodes": region.n_nodes,
         "file_ways": len(region.ways),

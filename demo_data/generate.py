@@ -40,8 +40,8 @@ from xml.sax.saxutils import quoteattr
 
 import numpy as np
 
-from planner.errors import InvalidRequest
-from planner.graph import EARTH_RADIUS_M
+from dueroute.planner.errors import InvalidRequest
+from dueroute.planner.graph import EARTH_RADIUS_M
 
 #: Bump whenever the generator or ``region.toml`` changes what is generated: it keys the
 #: build cache (``demo_data.build``), so stale cached graphs are rebuilt.

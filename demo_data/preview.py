@@ -11,7 +11,7 @@ from pathlib import Path
 
 import numpy as np
 
-from demo_data.generate import RegionMap, generate
+from dueroute.demo_data.generate import RegionMap, generate
 
 #: drawing order (first = underneath), colour and line width per ``highway`` value
 _STYLE = {

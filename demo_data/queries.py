@@ -35,8 +35,9 @@ from typing import Any
 
 import numpy as np
 
-from planner.errors import InvalidRequest
-from planner.graph import RoadGraph, great_circle_m
+from dueroute.planner.errors import InvalidRequest
+from dueroute.planner.graph import RoadGraph, great_circle_m
+from dueroute.planner.heuristics import largest_component_nodes
 
 KINDS = ("short", "medium", "long")
 
@@ -202,3 +203,59 @@ def _sample_kind(
         found.append(good)
         have += len(good)
     return np.concatenate(found) if found else np.zeros((0, 2), dtype=np.int64)
+
+
+#: Long trips on the demo region start and end this close to the two town centres.
+TOWN_CENTRE_RADIUS_M = 1000.0
+
+
+def long_trip_pairs(graph: Any, count: int, rng: np.random.Generator) -> tuple[list, str]:
+    """Long trips for the ALT comparison, and a note on how they were chosen.
+
+    On the demo region: nodes near the two town centres (from the graph's ``places``).
+    Elsewhere: for random origins, the node of the largest strong
+    component farthest away by great-circle distance.
+    """
+    towns = _demo_town_trips(graph, count, rng)
+    if towns is not None:
+        return towns
+    nodes = largest_component_nodes(graph)
+    if nodes.shape[0] < 2:
+        raise InvalidRequest(f"graph {graph.name} has no two connected nodes for long trips")
+    lat, lon = np.asarray(graph.lat)[nodes], np.asarray(graph.lon)[nodes]
+    pairs: list[tuple[int, int]] = []
+    for _ in range(count):
+        i = int(rng.integers(nodes.shape[0]))
+        far = int(np.argmax(great_circle_m(lat[i], lon[i], lat, lon)))
+        if far == i:
+            far = (i + 1) % nodes.shape[0]
+        pairs.append((int(nodes[i]), int(nodes[far])))
+    return pairs, "origin random, destination the farthest node by great-circle distance"
+
+
+def _demo_town_trips(graph: Any, count: int, rng: np.random.Generator) -> tuple[list, str] | None:
+    """Trips between the two demo towns (``meta["places"]`` of a demo graph), else ``None``.
+
+    Origins and destinations are nodes of the largest strong component within
+    :data:`TOWN_CENTRE_RADIUS_M` of the two largest towns' centres; directions alternate.
+    """
+    places = graph.meta.get("places") or []
+    towns = sorted(
+        (p for p in places if isinstance(p, dict) and p.get("kind") == "town"),
+        key=lambda p: -float(p.get("radius_m", 0.0)),
+    )[:2]
+    if len(towns) < 2:
+        return None
+    nodes = largest_component_nodes(graph)
+    lat, lon = np.asarray(graph.lat)[nodes], np.asarray(graph.lon)[nodes]
+    near = []
+    for town in towns:
+        d = great_circle_m(lat, lon, float(town["lat"]), float(town["lon"]))
+        pick = nodes[d <= TOWN_CENTRE_RADIUS_M]
+        near.append(pick if pick.shape[0] else nodes[[int(np.argmin(d))]])
+    pairs = []
+    for i in range(count):
+        a, b = (near[0], near[1]) if i % 2 == 0 else (near[1], near[0])
+        pairs.append((int(rng.choice(a)), int(rng.choice(b))))
+    names = f"{towns[0]['name']} and {towns[1]['name']}"
+    return pairs, f"between the centres of {names} (within {TOWN_CENTRE_RADIUS_M:.0f} m)"

@@ -5,7 +5,7 @@ instead of each computing them in memory::
 
     python /app/docker/build_landmarks.py GRAPH     # GRAPH: a .npz file or the word 'demo'
 
-Same call and defaults as the service's warm-up (``service.app.warm_up``), so the file it
+Same call and defaults as the service's warm-up (``dueroute.service.server.app.warm_up``), so the file it
 writes (``<graph>.landmarks.npz``) is the one the service accepts (same graph fingerprint,
 landmark count and method).
 """
@@ -20,10 +20,10 @@ def main(argv: list[str] | None = None) -> int:
     if len(args) != 1:
         print("usage: build_landmarks.py GRAPH (a .npz file or 'demo')", file=sys.stderr)
         return 2
-    from planner.errors import PlannerError
-    from planner.graph import load_graph
-    from planner.heuristics import landmarks_path, load_or_build_landmarks
-    from service.commands.common import resolve_graph_path
+    from dueroute.demo_data.build import resolve_graph_path
+    from dueroute.planner.errors import PlannerError
+    from dueroute.planner.graph import load_graph
+    from dueroute.planner.heuristics import landmarks_path, load_or_build_landmarks
 
     try:
         path = resolve_graph_path(args[0])

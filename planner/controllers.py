@@ -32,8 +32,8 @@ from typing import Protocol, runtime_checkable
 
 import numpy as np
 
-from planner.errors import InvalidRequest
-from planner.session import SearchStats
+from dueroute.planner.errors import InvalidRequest
+from dueroute.planner.session import SearchStats
 
 #: The weight set every discrete controller moves on.
 WEIGHTS: tuple[float, ...] = (1.0, 1.5, 2.0, 3.0, 4.0, 5.0)

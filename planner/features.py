@@ -46,7 +46,7 @@ from typing import TYPE_CHECKING
 import numpy as np
 
 if TYPE_CHECKING:  # the session imports this module; avoid a cycle at run time
-    from planner.session import SearchStats
+    from dueroute.planner.session import SearchStats
 
 #: Bumped whenever a feature is added, removed, reordered or computed differently.
 SCHEMA_VERSION = 1

@@ -44,7 +44,12 @@ import numpy as np
 from scipy.sparse import csr_matrix
 from scipy.sparse.csgraph import connected_components
 
-from planner.errors import CorruptGraphFile, GraphFileNotFound, InvalidRequest, NodeNotFound
+from dueroute.planner.errors import (
+    CorruptGraphFile,
+    GraphFileNotFound,
+    InvalidRequest,
+    NodeNotFound,
+)
 
 FORMAT_VERSION = 1
 

@@ -98,8 +98,8 @@ import numpy as np
 from numba import njit
 from scipy.sparse.csgraph import dijkstra
 
-from planner.errors import CorruptGraphFile, GraphFileNotFound, InvalidRequest
-from planner.graph import RoadGraph, _npz_member_offsets, great_circle_m
+from dueroute.planner.errors import CorruptGraphFile, GraphFileNotFound, InvalidRequest
+from dueroute.planner.graph import RoadGraph, _npz_member_offsets, great_circle_m
 
 LANDMARK_FORMAT_VERSION = 1
 

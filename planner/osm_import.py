@@ -47,9 +47,9 @@ from xml.sax import SAXException
 
 import numpy as np
 
-from planner.errors import GraphFileNotFound, NoDrivableRoads, NotAMapFile
-from planner.graph import RoadGraph, build_graph, great_circle_m
-from planner.speeds import ROAD_CLASSES, edge_speed, road_class_index
+from dueroute.planner.errors import GraphFileNotFound, NoDrivableRoads, NotAMapFile
+from dueroute.planner.graph import RoadGraph, build_graph, great_circle_m
+from dueroute.planner.speeds import ROAD_CLASSES, edge_speed, road_class_index
 
 #: ``highway`` values a car may drive on. ``road`` (type unknown) maps to class ``other``.
 #: ``service`` is deliberately absent (see the module docstring).

@@ -28,8 +28,8 @@ left in the step and at most :data:`MAX_CHUNK_S`, so the chunks shrink geometric
 step end and an error in the rate estimate costs at most a fraction of a shrinking remainder. The
 step stops when less than :data:`STOP_MARGIN_S` remains (about one chunk call's overhead).
 Lateness is therefore bounded by the mis-estimate of the last, tiny chunk plus one call's
-overhead; it is measured by ``tests/planner/test_session.py`` (printed, not asserted) and in the
-engineering note. Path extraction after an improvement and ``on_improvement`` callbacks run in
+overhead; it is measured by ``tests/planner/test_session.py`` (printed, not asserted) and by
+``dueroute bench deadline``. Path extraction after an improvement and ``on_improvement`` callbacks run in
 the same thread and count against the deadline.
 
 Bounds
@@ -61,12 +61,12 @@ from typing import TYPE_CHECKING, Any, Protocol
 
 import numpy as np
 
-from planner import _kernel as K
-from planner.errors import InvalidRequest, NodeNotFound
-from planner.graph import RoadGraph
+from dueroute.planner import _kernel as K
+from dueroute.planner.errors import InvalidRequest, NodeNotFound
+from dueroute.planner.graph import RoadGraph
 
 if TYPE_CHECKING:
-    from planner.controllers import Controller
+    from dueroute.planner.controllers import Controller
 
 #: Longest accepted deadline (one day) and largest budget, to catch unit mistakes.
 MAX_DEADLINE_MS = 86_400_000.0
@@ -939,8 +939,8 @@ def plan(
     started_at : float, optional
         ``time.perf_counter()`` at request arrival (the deadline counts from it).
     """
-    from planner.controllers import make_controller
-    from planner.features import compute_features
+    from dueroute.planner.controllers import make_controller
+    from dueroute.planner.features import compute_features
 
     t0 = time.perf_counter() if started_at is None else started_at
     ctrl = make_controller(controller, seed=seed) if isinstance(controller, str) else controller

@@ -21,13 +21,13 @@ from typing import Any
 import gymnasium as gym
 import numpy as np
 
-from planner.controllers import WEIGHTS
-from planner.features import FEATURE_HIGH, FEATURE_LOW, FEATURE_NAMES, compute_features
-from planner.graph import RoadGraph, great_circle_m
-from planner.heuristics import DEFAULT_COUNT as DEFAULT_LANDMARKS
-from planner.heuristics import largest_component_nodes
-from planner.session import Planner, Search
-from policies.export import ACTION_KINDS, action_meanings
+from dueroute.planner.controllers import WEIGHTS
+from dueroute.planner.features import FEATURE_HIGH, FEATURE_LOW, FEATURE_NAMES, compute_features
+from dueroute.planner.graph import RoadGraph, great_circle_m
+from dueroute.planner.heuristics import DEFAULT_COUNT as DEFAULT_LANDMARKS
+from dueroute.planner.heuristics import largest_component_nodes
+from dueroute.planner.session import Planner, Search
+from dueroute.policies.export import ACTION_KINDS, action_meanings
 
 ENV_ID = "dueroute/WeightControl-v0"
 
@@ -104,7 +104,7 @@ def sample_queries(graph: RoadGraph, n: int, seed: int) -> np.ndarray:
     queries : int64[n, 2]
     """
     try:
-        from demo_data.queries import sample_queries as project_sampler
+        from dueroute.demo_data.queries import sample_queries as project_sampler
     except ImportError:  # a stripped install without demo_data: same idea, distance bands
         return _sample_by_distance(graph, n, seed)
     return np.asarray(project_sampler(graph, n, seed), dtype=np.int64).reshape(-1, 2)
@@ -265,7 +265,7 @@ class WeightControlEnv(gym.Env):
         if planner is None:
             landmarks = None
             if cfg.landmarks > 0:
-                from planner.heuristics import load_or_build_landmarks
+                from dueroute.planner.heuristics import load_or_build_landmarks
 
                 landmarks = load_or_build_landmarks(graph, count=cfg.landmarks, progress=False)
             planner = Planner(graph, landmarks=landmarks)
@@ -389,7 +389,7 @@ class WeightControlEnv(gym.Env):
 def register() -> None:
     """Register :data:`ENV_ID` with gymnasium (idempotent)."""
     if ENV_ID not in gym.registry:
-        gym.register(id=ENV_ID, entry_point="policies.env:WeightControlEnv")
+        gym.register(id=ENV_ID, entry_point="dueroute.policies.env:WeightControlEnv")
 
 
 register()

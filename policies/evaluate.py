@@ -39,12 +39,12 @@ from typing import Any
 
 import numpy as np
 
-from planner.controllers import WEIGHTS
-from planner.features import FEATURE_NAMES
-from planner.graph import RoadGraph
-from planner.session import Planner, PlanResult, SearchStats, plan
-from policies.env import OptimalCosts, quality, sample_queries
-from policies.runtime import LEARNED, LearnedController, Policy, resolve_controller
+from dueroute.planner.controllers import WEIGHTS
+from dueroute.planner.features import FEATURE_NAMES
+from dueroute.planner.graph import RoadGraph
+from dueroute.planner.session import Planner, PlanResult, SearchStats, plan
+from dueroute.policies.env import OptimalCosts, quality, sample_queries
+from dueroute.policies.runtime import LEARNED, LearnedController, Policy, resolve_controller
 
 BASELINES: tuple[str, ...] = (
     *(f"fixed:{w:g}" for w in WEIGHTS),
@@ -639,7 +639,7 @@ def _plots(
             plt.close(fig)
 
     if curve_csv is not None and Path(curve_csv).is_file():
-        from policies.dqn import read_curve_csv
+        from dueroute.policies.dqn import read_curve_csv
 
         curve = read_curve_csv(curve_csv)
         if curve:

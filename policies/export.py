@@ -41,8 +41,8 @@ import numpy as np
 import onnx
 from onnx import TensorProto, helper, numpy_helper
 
-from planner.features import FEATURE_NAMES, SCHEMA_VERSION
-from policies.dqn import QNetwork
+from dueroute.planner.features import FEATURE_NAMES, SCHEMA_VERSION
+from dueroute.policies.dqn import QNetwork
 
 #: Identifies a dueroute policy file (bumped if the metadata contract changes).
 POLICY_FORMAT = "dueroute-policy-1"

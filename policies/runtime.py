@@ -22,9 +22,9 @@ from typing import Any
 
 import numpy as np
 
-from planner.errors import InvalidRequest
-from planner.features import FEATURE_HIGH, FEATURE_LOW, FEATURE_NAMES, SCHEMA_VERSION
-from policies.export import ACTION_KINDS, INPUT_NAME, POLICY_FORMAT, REQUIRED_METADATA
+from dueroute.planner.errors import InvalidRequest
+from dueroute.planner.features import FEATURE_HIGH, FEATURE_LOW, FEATURE_NAMES, SCHEMA_VERSION
+from dueroute.policies.export import ACTION_KINDS, INPUT_NAME, POLICY_FORMAT, REQUIRED_METADATA
 
 #: A policy file larger than this is refused (the shipped one is a few tens of kilobytes).
 MAX_POLICY_BYTES = 5_000_000
@@ -406,6 +406,6 @@ def resolve_controller(spec: str, policy: Policy | None = None, seed: int | None
     ``ana``)."""
     if spec == LEARNED:
         return LearnedController(policy if policy is not None else default_policy())
-    from planner.controllers import make_controller
+    from dueroute.planner.controllers import make_controller
 
     return make_controller(spec, seed=seed)

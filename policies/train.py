@@ -18,10 +18,17 @@ from typing import Any
 
 import numpy as np
 
-from planner.graph import RoadGraph
-from policies.dqn import DQNConfig, QNetwork, TrainResult, save_config, train, write_curve_csv
-from policies.env import EnvConfig, WeightControlEnv, quality, sample_queries
-from policies.export import export_policy, policy_metadata
+from dueroute.planner.graph import RoadGraph
+from dueroute.policies.dqn import (
+    DQNConfig,
+    QNetwork,
+    TrainResult,
+    save_config,
+    train,
+    write_curve_csv,
+)
+from dueroute.policies.env import EnvConfig, WeightControlEnv, quality, sample_queries
+from dueroute.policies.export import export_policy, policy_metadata
 
 
 @dataclass(frozen=True)

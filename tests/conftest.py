@@ -15,8 +15,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from planner.graph import RoadGraph, build_graph, great_circle_m
-from planner.speeds import ROAD_CLASSES, SPEED_SOURCE_DEFAULT
+from dueroute.planner.graph import RoadGraph, build_graph, great_circle_m
+from dueroute.planner.speeds import ROAD_CLASSES, SPEED_SOURCE_DEFAULT
 
 REPO_ROOT = Path(__file__).resolve().parents[1]
 OSM_DIR = REPO_ROOT.parent / "shared" / "data" / "osm"
@@ -83,7 +83,7 @@ def make_tiny_graph(spatial_order: bool = False) -> RoadGraph:
     Lengths are great-circle lengths along each edge's geometry, speeds the class default
     (``DEFAULT_SPEED_KPH``), so a great-circle heuristic is admissible on it.
     """
-    from planner.speeds import DEFAULT_SPEED_KPH
+    from dueroute.planner.speeds import DEFAULT_SPEED_KPH
 
     tail: list[int] = []
     head: list[int] = []

@@ -10,13 +10,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from demo_data import build as demo_build
-from demo_data.build import compile_region, demo_graph_path, place_nodes
-from demo_data.generate import generate, load_scenario, osm_bytes, write_osm
-from demo_data.queries import KINDS, kind_counts, sample_queries, sample_queries_with_kinds
-from planner.errors import InvalidRequest
-from planner.graph import great_circle_m, load_graph
-from planner.osm_import import import_map
+from dueroute.demo_data import build as demo_build
+from dueroute.demo_data.build import compile_region, demo_graph_path, place_nodes
+from dueroute.demo_data.generate import generate, load_scenario, osm_bytes, write_osm
+from dueroute.demo_data.queries import KINDS, kind_counts, sample_queries, sample_queries_with_kinds
+from dueroute.planner.errors import InvalidRequest
+from dueroute.planner.graph import great_circle_m, load_graph
+from dueroute.planner.osm_import import import_map
 
 
 @pytest.fixture(scope="module")
@@ -292,7 +292,7 @@ def test_cache_key_follows_generator_version(monkeypatch):
 
 
 def test_cli_generate_osm_and_npz(tmp_path, monkeypatch, capsys):
-    from service.cli import main
+    from dueroute.service.cli.main import main
 
     monkeypatch.setenv("DUEROUTE_DATA_DIR", str(tmp_path / "cache"))
     out = tmp_path / "t.osm"
@@ -315,7 +315,7 @@ def test_cli_generate_osm_and_npz(tmp_path, monkeypatch, capsys):
     ],
 )
 def test_cli_generate_bad_input(argv, message, tmp_path, capsys, monkeypatch):
-    from service.cli import main
+    from dueroute.service.cli.main import main
 
     monkeypatch.chdir(tmp_path)
     assert main(["graph", "generate", *argv]) == 2

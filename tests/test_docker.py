@@ -28,7 +28,7 @@ from typing import Any
 import pytest
 import yaml
 
-from service.cli import build_parser
+from dueroute.service.cli.main import build_parser
 
 ROOT = Path(__file__).resolve().parents[1]
 DOCKER = ROOT / "docker"
@@ -155,7 +155,15 @@ def _dockerignore_patterns() -> set[str]:
 def test_dockerignore_keeps_what_the_install_needs() -> None:
     """The package sources and the files pyproject.toml names must reach the build context."""
     ignored = _dockerignore_patterns()
-    for needed in ("pyproject.toml", "README.md", "planner", "policies", "service", "demo_data"):
+    for needed in (
+        "pyproject.toml",
+        "README.md",
+        "dueroute",
+        "planner",
+        "policies",
+        "service",
+        "demo_data",
+    ):
         assert needed not in ignored
         assert (ROOT / needed).exists()
     assert ".venv" in ignored and ".git" in ignored
@@ -200,11 +208,11 @@ def _run_build_steps(instructions: list[tuple[str, str]], graph: str, env: dict[
 def test_build_steps_run_on_the_host(instructions: list[tuple[str, str]], tmp_path: Path) -> None:
     """The image's build steps (graph, landmarks, kernel warm-up) run on the host, on the tiny
     region instead of the demo one; the landmarks land beside the graph."""
-    from planner.heuristics import landmarks_path
+    from dueroute.planner.heuristics import landmarks_path
 
     env = dict(os.environ, DUEROUTE_DATA_DIR=str(tmp_path), MPLBACKEND="Agg")
     proc = subprocess.run(
-        [sys.executable, "-c", "from demo_data.build import demo_graph_path as p; "
+        [sys.executable, "-c", "from dueroute.demo_data.build import demo_graph_path as p; "
          "print(p('tiny', progress=False))"],
         env=env, capture_output=True, text=True, timeout=600,
     )  # fmt: skip
@@ -407,7 +415,7 @@ def test_compose_services_and_replicas(compose: dict[str, Any]) -> None:
 def test_compose_graph_volume_is_shared_read_only(compose: dict[str, Any]) -> None:
     """The replicas find the demo graph ('demo' in DUEROUTE_DATA_DIR, as demo_data.build
     resolves it) on a read-only volume that graph-init filled."""
-    from demo_data.build import DATA_DIR_ENV
+    from dueroute.demo_data.build import DATA_DIR_ENV
 
     router = compose["services"]["router"]
     env = router["environment"]
@@ -428,8 +436,8 @@ def test_compose_graph_volume_is_shared_read_only(compose: dict[str, Any]) -> No
 def test_compose_environment_names_real_settings(compose: dict[str, Any]) -> None:
     """Every DUEROUTE_* variable the compose file sets is read by the code: a field of
     service.settings, or the demo data directory of demo_data.build."""
-    from demo_data.build import DATA_DIR_ENV
-    from service.settings import Settings
+    from dueroute.demo_data.build import DATA_DIR_ENV
+    from dueroute.service.server.settings import Settings
 
     fields = set(Settings.model_fields)
     for name in compose["services"]["router"]["environment"]:

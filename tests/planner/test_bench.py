@@ -10,8 +10,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from planner.graph import build_graph, great_circle_m, save_graph
-from service.cli import main
+from dueroute.planner.graph import build_graph, great_circle_m, save_graph
+from dueroute.service.cli.main import main
 
 RATIO_KEYS = (
     "kernel_vs_scipy_rate",
@@ -167,8 +167,8 @@ def test_long_trips_run_between_the_two_towns(tmp_path: Path) -> None:
     haversine formula, as osmnx computes edge lengths)."""
     import dataclasses
 
-    from planner.graph import load_graph
-    from service.commands.bench import TOWN_CENTRE_RADIUS_M, long_trip_pairs
+    from dueroute.demo_data.queries import TOWN_CENTRE_RADIUS_M, long_trip_pairs
+    from dueroute.planner.graph import load_graph
 
     graph = load_graph(grid_graph_file(tmp_path / "grid.npz", side=12))
     lat, lon = np.asarray(graph.lat), np.asarray(graph.lon)

@@ -6,14 +6,14 @@ import numpy as np
 import pytest
 from scipy.sparse.csgraph import dijkstra
 
-from planner.controllers import (
+from dueroute.planner.controllers import (
     WEIGHTS,
     Controller,
     DecreasingController,
     make_controller,
 )
-from planner.errors import InvalidRequest
-from planner.session import Planner, SearchStats, plan
+from dueroute.planner.errors import InvalidRequest
+from dueroute.planner.session import Planner, SearchStats, plan
 from tests.planner.test_kernel import grid_graph
 
 

@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy.sparse.csgraph import dijkstra
 
-from planner.features import (
+from dueroute.planner.features import (
     FEATURE_HIGH,
     FEATURE_LOW,
     FEATURE_NAMES,
@@ -16,8 +16,8 @@ from planner.features import (
     SCHEMA_VERSION,
     compute_features,
 )
-from planner.graph import RoadGraph, build_graph, great_circle_m
-from planner.session import Planner
+from dueroute.planner.graph import RoadGraph, build_graph, great_circle_m
+from dueroute.planner.session import Planner
 
 IDX = {name: i for i, name in enumerate(FEATURE_NAMES)}
 

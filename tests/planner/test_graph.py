@@ -15,9 +15,14 @@ from hypothesis import strategies as st
 from scipy.sparse import csr_matrix
 from scipy.sparse.csgraph import connected_components
 
-from planner.errors import CorruptGraphFile, GraphFileNotFound, InvalidRequest, NodeNotFound
-from planner.graph import REQUIRED_ARRAYS, RoadGraph, hilbert_order, load_graph, save_graph
-from service.cli import main as cli_main
+from dueroute.planner.errors import (
+    CorruptGraphFile,
+    GraphFileNotFound,
+    InvalidRequest,
+    NodeNotFound,
+)
+from dueroute.planner.graph import REQUIRED_ARRAYS, RoadGraph, hilbert_order, load_graph, save_graph
+from dueroute.service.cli.main import main as cli_main
 from tests.conftest import TINY_NODES, make_tiny_graph
 
 
@@ -127,7 +132,7 @@ def test_components_match_scipy_and_networkx(tiny_graph: RoadGraph, saved_tiny: 
 def test_components_match_on_random_graphs() -> None:
     """Random sparse digraphs (with parallel edges and self-loops): same partition as scipy
     connected_components(connection='strong') and networkx strongly_connected_components."""
-    from planner.graph import build_graph
+    from dueroute.planner.graph import build_graph
 
     rng = np.random.default_rng(7)
     for n, m in ((1, 0), (5, 3), (40, 60), (200, 320)):
@@ -179,7 +184,7 @@ def test_snap_equals_brute_force_nearest(tiny_graph: RoadGraph, lat: float, lon:
 
 def test_snap_on_random_cloud_equals_brute_force() -> None:
     """Dense random node cloud: snap() matches the brute-force haversine nearest node."""
-    from planner.graph import build_graph
+    from dueroute.planner.graph import build_graph
 
     rng = np.random.default_rng(3)
     n = 2000

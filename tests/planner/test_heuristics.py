@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import dataclasses
-import importlib
 import zipfile
 from pathlib import Path
 
@@ -13,9 +12,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.sparse.csgraph import dijkstra
 
-from planner.errors import CorruptGraphFile, GraphFileNotFound, InvalidRequest
-from planner.graph import build_graph, great_circle_m, save_graph
-from planner.heuristics import (
+from dueroute.planner.errors import CorruptGraphFile, GraphFileNotFound, InvalidRequest
+from dueroute.planner.graph import build_graph, great_circle_m, save_graph
+from dueroute.planner.heuristics import (
     METHODS,
     Landmarks,
     alt_bound_s,
@@ -312,7 +311,7 @@ def test_missing_file_is_reported(tmp_path: Path) -> None:
 
 def test_load_or_build_stores_beside_the_graph_and_rebuilds_when_stale(tmp_path: Path) -> None:
     graph_path = save_graph(random_graph(8), tmp_path / "town.npz")
-    from planner.graph import load_graph
+    from dueroute.planner.graph import load_graph
 
     graph = load_graph(graph_path)
     first = load_or_build_landmarks(graph, count=3, progress=False)
@@ -343,11 +342,9 @@ def test_load_or_build_stores_beside_the_graph_and_rebuilds_when_stale(tmp_path:
 
 def _import_fixture(osm_dir: Path, name: str):
     path = osm_dir / name
-    try:
-        osm_import = importlib.import_module("planner.osm_import")
-    except ImportError:
-        pytest.skip("planner.osm_import is not available yet")
-    return osm_import.import_map(path)
+    from dueroute.planner.osm_import import import_map
+
+    return import_map(path)
 
 
 @pytest.mark.parametrize("name", ["west-oakland.osm.bz2", "aguascalientes.osm.bz2"])
@@ -371,7 +368,7 @@ def test_kernel_with_landmarks_is_exact(method: str) -> None:
     """With ALT landmarks (+inf for missing distances) the weight-1 search returns exactly the
     scipy csgraph.dijkstra optimum, every reported lower bound stays <= that optimum
     (Goldberg & Harrelson 2005: ALT is admissible), and pairs with no path end ``no_route``."""
-    from planner.session import Planner, plan
+    from dueroute.planner.session import Planner, plan
 
     graph = random_graph(21, n=60, m=200, zero_cost=False)
     landmarks = build_landmarks(graph, count=4, method=method, progress=False)
@@ -398,8 +395,8 @@ def test_load_or_build_works_when_the_folder_is_read_only(
 ) -> None:
     """A graph in a folder we may not write to still gets landmarks (in memory), with the
     reason recorded; no temp file is left behind."""
-    import planner.heuristics as heuristics
-    from planner.graph import load_graph
+    import dueroute.planner.heuristics as heuristics
+    from dueroute.planner.graph import load_graph
 
     graph = load_graph(save_graph(random_graph(8), tmp_path / "town.npz"))
     real_open = open

@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 from scipy.sparse.csgraph import dijkstra
 
-from planner import _kernel as K
-from planner.graph import RoadGraph, build_graph, great_circle_m
-from planner.session import Planner
+from dueroute.planner import _kernel as K
+from dueroute.planner.graph import RoadGraph, build_graph, great_circle_m
+from dueroute.planner.session import Planner
 
 
 def random_graph(

@@ -16,10 +16,10 @@ import osmnx as ox
 import pytest
 from geographiclib.geodesic import Geodesic
 
-from planner.errors import GraphFileNotFound, NoDrivableRoads, NotAMapFile
-from planner.graph import RoadGraph, load_graph, save_graph
-from planner.osm_import import import_map, way_drop_reason
-from planner.speeds import (
+from dueroute.planner.errors import GraphFileNotFound, NoDrivableRoads, NotAMapFile
+from dueroute.planner.graph import RoadGraph, load_graph, save_graph
+from dueroute.planner.osm_import import import_map, way_drop_reason
+from dueroute.planner.speeds import (
     DEFAULT_SPEED_KPH,
     ROAD_CLASSES,
     SPEED_SOURCE_DEFAULT,
@@ -28,7 +28,7 @@ from planner.speeds import (
     parse_maxspeed,
     road_class_index,
 )
-from service.cli import main as cli_main
+from dueroute.service.cli.main import main as cli_main
 from tests.conftest import OSM_EXTRACTS
 
 MPH = 1.609344  # km per international mile (exact by definition, 1959 agreement)

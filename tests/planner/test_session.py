@@ -13,9 +13,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy.sparse.csgraph import dijkstra
 
-from planner.errors import InvalidRequest, NodeNotFound
-from planner.graph import build_graph, great_circle_m
-from planner.session import Improvement, Planner, PlanResult, plan
+from dueroute.planner.errors import InvalidRequest, NodeNotFound
+from dueroute.planner.graph import build_graph, great_circle_m
+from dueroute.planner.session import Improvement, Planner, PlanResult, plan
 from tests.planner.test_kernel import exact_landmarks, grid_graph, random_graph
 
 OSM_DIR = Path(__file__).resolve().parents[3] / "shared" / "data" / "osm"
@@ -60,8 +60,9 @@ def test_weight_one_equals_dijkstra_on_real_osm_fixture() -> None:
     path = OSM_DIR / "aguascalientes.osm.bz2"
     if not path.is_file():
         pytest.skip(f"real OSM fixture folder absent ({OSM_DIR})")
-    osm_import = pytest.importorskip("planner.osm_import")
-    g = osm_import.import_map(path)
+    from dueroute.planner.osm_import import import_map
+
+    g = import_map(path)
     planner = Planner(g)
     rng = np.random.default_rng(0)
     origins = rng.integers(0, g.n_nodes, 6)
@@ -376,7 +377,7 @@ def test_stats_and_result_fields() -> None:
     """SearchStats carries what the feature schema reads; PlanResult.to_dict is JSON-ready."""
     import json
 
-    from planner.features import N_FEATURES, compute_features
+    from dueroute.planner.features import N_FEATURES, compute_features
 
     g = grid_graph(30, seed=16)
     planner = Planner(g)
@@ -423,7 +424,7 @@ def test_per_query_setup_does_not_touch_graph_sized_memory() -> None:
 
 def test_landmarks_of_another_graph_are_refused() -> None:
     """Landmarks built for one graph give wrong (inadmissible) bounds on another: refused."""
-    from planner.heuristics import build_landmarks
+    from dueroute.planner.heuristics import build_landmarks
 
     g1 = grid_graph(6, seed=0)
     g2 = grid_graph(6, seed=1)

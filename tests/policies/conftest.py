@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from planner.graph import RoadGraph, build_graph, great_circle_m
-from planner.speeds import ROAD_CLASSES, SPEED_SOURCE_DEFAULT
+from dueroute.planner.graph import RoadGraph, build_graph, great_circle_m
+from dueroute.planner.speeds import ROAD_CLASSES, SPEED_SOURCE_DEFAULT
 
 
 def make_grid_graph(rows: int = 14, cols: int = 14, seed: int = 0) -> RoadGraph:

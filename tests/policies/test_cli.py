@@ -8,8 +8,8 @@ from pathlib import Path
 
 import pytest
 
-from planner.graph import save_graph
-from service.cli import main
+from dueroute.planner.graph import save_graph
+from dueroute.service.cli.main import main
 
 from .conftest import make_grid_graph
 

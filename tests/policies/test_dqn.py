@@ -6,7 +6,7 @@ import gymnasium as gym
 import numpy as np
 import pytest
 
-from policies.dqn import (
+from dueroute.policies.dqn import (
     DQNConfig,
     QNetwork,
     backward,

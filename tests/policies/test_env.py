@@ -8,9 +8,9 @@ import numpy as np
 import pytest
 from gymnasium.utils.env_checker import check_env
 
-from planner.controllers import WEIGHTS
-from planner.session import plan
-from policies.env import ENV_ID, OptimalCosts, WeightControlEnv, quality, sample_queries
+from dueroute.planner.controllers import WEIGHTS
+from dueroute.planner.session import plan
+from dueroute.policies.env import ENV_ID, OptimalCosts, WeightControlEnv, quality, sample_queries
 
 
 @pytest.fixture()
@@ -153,10 +153,10 @@ def test_greedy_episode_equals_serving_with_the_exported_policy(grid_graph, tmp_
     """Train/serve parity: the env driven by an exported policy's greedy actions ends with the
     same route as plan() with the onnxruntime-backed LearnedController (step actions). The
     network ignores the CPU-share input, which the env randomises and serving measures."""
-    from planner.features import FEATURE_NAMES
-    from policies.dqn import QNetwork, init_params
-    from policies.export import export_policy, policy_metadata
-    from policies.runtime import LearnedController, load_policy
+    from dueroute.planner.features import FEATURE_NAMES
+    from dueroute.policies.dqn import QNetwork, init_params
+    from dueroute.policies.export import export_policy, policy_metadata
+    from dueroute.policies.runtime import LearnedController, load_policy
 
     rng = np.random.default_rng(5)
     n = len(FEATURE_NAMES)

@@ -9,10 +9,10 @@ import numpy as np
 import onnx
 import pytest
 
-from planner.features import FEATURE_HIGH, FEATURE_LOW, FEATURE_NAMES, SCHEMA_VERSION
-from policies.dqn import QNetwork, init_params
-from policies.export import build_model, export_policy, policy_metadata
-from policies.runtime import (
+from dueroute.planner.features import FEATURE_HIGH, FEATURE_LOW, FEATURE_NAMES, SCHEMA_VERSION
+from dueroute.policies.dqn import QNetwork, init_params
+from dueroute.policies.export import build_model, export_policy, policy_metadata
+from dueroute.policies.runtime import (
     MAX_POLICY_BYTES,
     InvalidPolicy,
     LearnedController,
@@ -171,7 +171,7 @@ def test_missing_file_is_reported(tmp_path: Path):
 def test_shipped_default_policy_is_valid_for_this_build():
     """policies/default.onnx passes every check (ONNX checker, schema, probes); it must be
     retrained whenever the feature schema changes."""
-    from policies.runtime import DEFAULT_POLICY_PATH, default_policy
+    from dueroute.policies.runtime import DEFAULT_POLICY_PATH, default_policy
 
     assert check_policy(DEFAULT_POLICY_PATH) == []
     policy = default_policy()
@@ -182,8 +182,8 @@ def test_shipped_default_policy_is_valid_for_this_build():
 
 
 def test_resolve_controller():
-    from planner.errors import InvalidRequest
-    from policies.runtime import default_policy, resolve_controller
+    from dueroute.planner.errors import InvalidRequest
+    from dueroute.policies.runtime import default_policy, resolve_controller
 
     learned = resolve_controller("learned")
     assert isinstance(learned, LearnedController) and learned.policy is default_policy()

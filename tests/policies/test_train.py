@@ -6,10 +6,10 @@ import networkx as nx
 import numpy as np
 import pytest
 
-from planner.features import FEATURE_NAMES
-from policies.dqn import QNetwork, init_params
-from policies.env import WeightControlEnv
-from policies.train import greedy_quality
+from dueroute.planner.features import FEATURE_NAMES
+from dueroute.policies.dqn import QNetwork, init_params
+from dueroute.policies.env import WeightControlEnv
+from dueroute.policies.train import greedy_quality
 
 
 def test_queries_solved_in_the_first_step_score_their_final_quality(grid_graph):

@@ -10,7 +10,7 @@
     Builds an app with given settings, runs its lifespan in a ``TestClient`` and waits for
     ``/readyz``.
 ``live_server``
-    Starts ``python -m service.cli serve`` on 127.0.0.1 with a free port and stops it.
+    Starts ``python -m dueroute serve`` on 127.0.0.1 with a free port and stops it.
 """
 
 from __future__ import annotations
@@ -30,7 +30,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from planner.graph import RoadGraph, build_graph, great_circle_m, save_graph
+from dueroute.planner.graph import RoadGraph, build_graph, great_circle_m, save_graph
 from tests.conftest import make_tiny_graph
 
 REPO = Path(__file__).resolve().parents[2]
@@ -82,7 +82,7 @@ def tiny_graph_path(tmp_path_factory: pytest.TempPathFactory) -> Path:
 
 
 def settings_for(graph: Path, tmp_path: Path, **overrides: Any) -> Any:
-    from service.settings import Settings
+    from dueroute.service.server.settings import Settings
 
     values: dict[str, Any] = {
         "graph": str(graph),
@@ -114,7 +114,7 @@ def make_client(tmp_path: Path) -> Iterator[Callable[..., Any]]:
     """``make_client(graph_path, **settings)`` -> a ready TestClient (closed after the test)."""
     from fastapi.testclient import TestClient
 
-    from service.app import create_app
+    from dueroute.service.server.app import create_app
 
     stack = contextlib.ExitStack()
 
@@ -144,7 +144,7 @@ class LiveServer:
         cmd = [
             sys.executable,
             "-m",
-            "service.cli",
+            "dueroute",
             "serve",
             "--graph",
             str(graph),
@@ -212,8 +212,8 @@ class LiveServer:
 
 
 def policy_network(n_in: int | None = None, n_out: int = 6, seed: int = 0) -> Any:
-    from planner.features import N_FEATURES
-    from policies.dqn import QNetwork, init_params
+    from dueroute.planner.features import N_FEATURES
+    from dueroute.policies.dqn import QNetwork, init_params
 
     n_in = N_FEATURES if n_in is None else n_in
     rng = np.random.default_rng(seed)
@@ -223,7 +223,7 @@ def policy_network(n_in: int | None = None, n_out: int = 6, seed: int = 0) -> An
 
 
 def policy_meta(**overrides: str) -> dict[str, str]:
-    from policies.export import policy_metadata
+    from dueroute.policies.export import policy_metadata
 
     meta = policy_metadata(
         weights=(1.0, 1.5, 2.0, 3.0, 4.0, 5.0),
@@ -241,7 +241,7 @@ def policy_meta(**overrides: str) -> dict[str, str]:
 
 
 def policy_bytes(network: Any = None, meta: dict[str, str] | None = None, seed: int = 0) -> bytes:
-    from policies.export import build_model
+    from dueroute.policies.export import build_model
 
     net = network if network is not None else policy_network(seed=seed)
     return bytes(build_model(net, meta if meta is not None else policy_meta()).SerializeToString())

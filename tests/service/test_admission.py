@@ -11,7 +11,7 @@ import threading
 
 import pytest
 
-from service.admission import Admission, Shed
+from dueroute.service.server.admission import Admission, Shed
 
 
 class Clock:
@@ -81,7 +81,7 @@ def test_workers_must_be_positive():
 
 
 def test_recent_max_forgets_old_values():
-    from service.admission import RecentMax
+    from dueroute.service.server.admission import RecentMax
 
     m = RecentMax(window_s=1.0)
     m.record(10.0, 0.004)
@@ -113,7 +113,7 @@ def test_loop_lag_measures_a_blocked_loop():
     import asyncio
     import time
 
-    from service.admission import LoopLag
+    from dueroute.service.server.admission import LoopLag
 
     async def scenario() -> float:
         lag = LoopLag(interval_s=0.001, window_s=5.0, quantile=1.0)

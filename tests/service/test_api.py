@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 from scipy.sparse.csgraph import dijkstra
 
-from planner.graph import load_graph
+from dueroute.planner.graph import load_graph
 
 PLAN = "/v1/plans"
 
@@ -220,13 +220,13 @@ def test_background_plans_expire_and_the_oldest_finished_makes_room(make_client,
 
 
 def _job(plan_id: str, deadline_s: float):
-    from service.jobs import PlanJob
+    from dueroute.service.server.jobs import PlanJob
 
     return PlanJob(plan_id, 0, 1, 1000, "ana", False, 0.0, deadline_s, None)
 
 
 def test_plan_store_full_of_running_plans_refuses_with_retry_after():
-    from service.jobs import PlanStore, StoreFull
+    from dueroute.service.server.jobs import PlanStore, StoreFull
 
     store = PlanStore(max_plans=2, ttl_s=60.0)
     for i in range(2):
@@ -274,7 +274,7 @@ def test_two_apps_side_by_side_keep_separate_metrics(make_client, tiny_graph_pat
 def test_settings_fail_loudly(tmp_path):
     from pydantic import ValidationError
 
-    from service.settings import Settings
+    from dueroute.service.server.settings import Settings
 
     with pytest.raises(ValidationError, match="workers"):
         Settings(workers=0)
@@ -285,7 +285,7 @@ def test_settings_fail_loudly(tmp_path):
 
 
 def test_settings_from_environment(monkeypatch):
-    from service.settings import Settings, get_settings
+    from dueroute.service.server.settings import Settings, get_settings
 
     monkeypatch.setenv("DUEROUTE_WORKERS", "3")
     monkeypatch.setenv("DUEROUTE_DEADLINE_TOLERANCE_MS", "7.5")
@@ -304,8 +304,8 @@ def test_settings_from_environment(monkeypatch):
 
 def test_route_feature_matches_edge_coords_on_the_grid(grid_graph_path):
     """Vectorised geometry equals the per-edge ``RoadGraph.edge_coords`` concatenation."""
-    from planner.session import Planner, plan
-    from service.jobs import route_feature
+    from dueroute.planner.session import Planner, plan
+    from dueroute.service.server.jobs import route_feature
 
     graph = load_graph(grid_graph_path)
     result = plan(Planner(graph), 5, 40_000, budget_expansions=200_000, controller="fixed:2")
@@ -390,7 +390,7 @@ def test_not_ready_until_warmed_up_then_ready(tmp_path, tiny_graph_path, monkeyp
     """/readyz and POST /v1/plans say 503 (with Retry-After) until the warm-up has finished."""
     from fastapi.testclient import TestClient
 
-    import service.app as app_module
+    import dueroute.service.server.app as app_module
     from tests.service.conftest import settings_for, wait_ready
 
     gate = threading.Event()
@@ -418,7 +418,7 @@ def test_not_ready_until_warmed_up_then_ready(tmp_path, tiny_graph_path, monkeyp
 def test_a_corrupt_graph_fails_readiness_with_the_reason(tmp_path):
     from fastapi.testclient import TestClient
 
-    from service.app import create_app
+    from dueroute.service.server.app import create_app
     from tests.service.conftest import settings_for
 
     bad = tmp_path / "bad.npz"
@@ -436,7 +436,7 @@ def test_a_corrupt_graph_fails_readiness_with_the_reason(tmp_path):
 
 def test_the_shipped_policy_serves_learned(make_client, tiny_graph_path):
     """With no policy given, 'learned' runs the policy shipped in policies/default.onnx."""
-    from service.app import DEFAULT_POLICY
+    from dueroute.service.server.app import DEFAULT_POLICY
 
     if not DEFAULT_POLICY.is_file():
         pytest.skip("no shipped policy in this checkout")

@@ -13,7 +13,7 @@ answer built). The client's clock also counts its own event loop and the loopbac
 this machine is shared (2 cores, other jobs running), so the assertion allows
 ``CI_MARGIN_MS`` on top (common practice for timing checks on shared CI machines); the real
 numbers — late counts beyond the bare 5 ms, p50/p99 of the HTTP overhead (answer time minus
-search time) — are printed with ``-s`` for the engineering note.
+search time) — are printed with ``-s``.
 """
 
 from __future__ import annotations

@@ -1,7 +1,7 @@
-"""Tests of the load tester (``service/loadtest.py`` and ``dueroute loadtest``).
+"""Tests of the load tester (``service/loadtest/runner.py`` and ``dueroute loadtest``).
 
-The client is tested against a small in-test HTTP double of the plan API (contract:
-``/work/briefs/http_api.md``) that answers with routes computed by scipy, so that every number
+The client is tested against a small in-test HTTP double of the plan API (the contract is
+``dueroute.service.server.schemas`` and the OpenAPI document it publishes) that answers with routes computed by scipy, so that every number
 the load tester reports can be checked against an independent source.
 """
 
@@ -23,10 +23,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.sparse.csgraph import dijkstra
 
-from planner.errors import InvalidRequest
-from planner.graph import build_graph, save_graph
-from service import loadtest as lt
-from service.cli import main
+from dueroute.planner.errors import InvalidRequest
+from dueroute.planner.graph import build_graph, save_graph
+from dueroute.service.cli.main import main
+from dueroute.service.loadtest import runner as lt
 
 # --------------------------------------------------------------------------------------------
 # Fixtures: a tiny grid graph and an HTTP double of the plan API
@@ -415,14 +415,14 @@ def test_random_pairs_are_reachable() -> None:
 
 def test_random_pairs_use_the_project_query_sets(tmp_path: Path, monkeypatch: Any) -> None:
     """On the tiny demo region the pairs are demo_data.queries.sample_queries' pairs."""
-    from demo_data.build import demo_graph_path
-    from demo_data.queries import sample_queries
-    from planner.graph import load_graph
+    from dueroute.demo_data.build import demo_graph_path
+    from dueroute.demo_data.queries import sample_queries
+    from dueroute.planner.graph import load_graph
 
     monkeypatch.setenv("DUEROUTE_DATA_DIR", str(tmp_path))
     g = load_graph(demo_graph_path("tiny", progress=False))
     pairs, source = lt.random_reachable_pairs(g, 30, seed=2)
-    assert source.startswith("demo_data.queries.sample_queries")
+    assert source.startswith("dueroute.demo_data.queries.sample_queries")
     assert pairs == [tuple(map(int, p)) for p in sample_queries(g, 30, 2)]
 
 

@@ -17,7 +17,7 @@ import numpy as np
 import onnx
 import pytest
 
-from planner.features import FEATURE_NAMES, N_FEATURES, SCHEMA_VERSION
+from dueroute.planner.features import FEATURE_NAMES, N_FEATURES, SCHEMA_VERSION
 from tests.service.conftest import ADMIN_TOKEN, policy_bytes, policy_meta, policy_network
 
 AUTH = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
@@ -95,7 +95,7 @@ def test_over_the_body_limit_is_413_and_nothing_changes(admin):
 
 
 def test_store_refuses_an_oversized_file_before_parsing_it(tmp_path: Path):
-    from service.policy_store import PolicyRejected, PolicyStore
+    from dueroute.service.server.policy_store import PolicyRejected, PolicyStore
 
     store = PolicyStore(tmp_path / "p", max_bytes=2_000)
     store.startup(None, None)
@@ -155,8 +155,8 @@ def test_rollback_and_persistence_across_restarts(make_client, tiny_graph_path, 
 
 
 def test_bad_startup_policy_fails_loudly(tiny_graph_path, tmp_path):
-    from service.app import create_app
-    from service.policy_store import PolicyRejected
+    from dueroute.service.server.app import create_app
+    from dueroute.service.server.policy_store import PolicyRejected
     from tests.service.conftest import settings_for
 
     bad = tmp_path / "bad.onnx"
@@ -226,7 +226,7 @@ def test_a_plan_in_flight_keeps_the_policy_it_started_with(make_client, grid_gra
 
 def test_policy_store_keeps_the_snapshot_for_plans_in_flight(tmp_path: Path):
     """The store swaps one reference: a snapshot taken before a swap is unchanged after it."""
-    from service.policy_store import PolicyStore
+    from dueroute.service.server.policy_store import PolicyStore
 
     store = PolicyStore(tmp_path / "p", max_bytes=1_000_000)
     store.startup(None, None)
@@ -239,7 +239,7 @@ def test_policy_store_keeps_the_snapshot_for_plans_in_flight(tmp_path: Path):
 
 def test_shipped_default_is_used_but_an_upload_outlives_it(tmp_path: Path):
     """Start-up order: persisted upload > shipped default > none; the default is not pinned."""
-    from service.policy_store import PolicyStore
+    from dueroute.service.server.policy_store import PolicyStore
 
     default = tmp_path / "default.onnx"
     default.write_bytes(policy_bytes(seed=7))

@@ -9,8 +9,8 @@ from pathlib import Path
 import pytest
 from scipy.sparse.csgraph import dijkstra
 
-from planner.graph import save_graph
-from service.cli import main
+from dueroute.planner.graph import save_graph
+from dueroute.service.cli.main import main
 from tests.planner.test_kernel import grid_graph
 
 

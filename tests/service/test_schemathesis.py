@@ -19,8 +19,8 @@ import pytest
 import schemathesis
 from hypothesis import HealthCheck, settings
 
-from planner.graph import save_graph
-from service.app import create_app
+from dueroute.planner.graph import save_graph
+from dueroute.service.server.app import create_app
 from tests.conftest import make_tiny_graph
 from tests.service.conftest import ADMIN_TOKEN, settings_for, wait_ready
 

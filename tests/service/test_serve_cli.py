@@ -6,7 +6,7 @@ from pathlib import Path
 
 import pytest
 
-from service.cli import main
+from dueroute.service.cli.main import main
 
 
 @pytest.mark.parametrize(
@@ -46,7 +46,7 @@ def test_environment_settings_are_read(monkeypatch, capsys, tmp_path: Path):
 def test_admin_token_file(tmp_path: Path):
     import argparse
 
-    from service.commands.serve import build_settings
+    from dueroute.service.cli.serve import build_settings
 
     token = tmp_path / "token"
     token.write_text("a-long-enough-token\n")

@@ -40,7 +40,7 @@ from urllib.parse import urlsplit
 
 import numpy as np
 
-from planner.errors import InvalidRequest
+from dueroute.planner.errors import InvalidRequest
 
 #: Host names accepted as loopback without resolving them (resolution could be redirected).
 LOOPBACK_NAMES = frozenset({"localhost", "localhost."})
@@ -244,12 +244,12 @@ def random_reachable_pairs(graph: Any, n: int, seed: int = 0) -> tuple[list[tupl
     """
     if n < 1:
         raise InvalidRequest(f"--random needs at least 1 query, got {n}")
-    from demo_data.queries import DEFAULT_MIX, sample_queries
+    from dueroute.demo_data.queries import DEFAULT_MIX, sample_queries
 
     try:
         pairs = [(int(o), int(d)) for o, d in sample_queries(graph, n, seed)]
         mix = ", ".join(f"{100 * v:.0f}% {k}" for k, v in DEFAULT_MIX.items())
-        return pairs, f"demo_data.queries.sample_queries (seed {seed}; {mix})"
+        return pairs, f"dueroute.demo_data.queries.sample_queries (seed {seed}; {mix})"
     except InvalidRequest as exc:
         pairs = uniform_reachable_pairs(graph, n, seed)
         return pairs, f"uniform in the largest component (seed {seed}; the trip mix failed: {exc})"

@@ -1,4 +1,4 @@
-"""Request and response models of the HTTP API (contract: ``/work/briefs/http_api.md``).
+"""Request and response models of the HTTP API (published as OpenAPI at ``/openapi.json``).
 
 Field constraints here are what OpenAPI publishes and what a 422 explains; limits that depend
 on settings (the largest deadline) are checked in the route with a message of the same shape.

@@ -8,7 +8,7 @@ import time
 from pathlib import Path
 from typing import Any
 
-from planner.errors import InvalidRequest
+from dueroute.planner.errors import InvalidRequest
 
 #: Output formats and the file suffix each needs.
 FORMATS = {"npz": ".npz", "osm": ".osm"}
@@ -16,7 +16,7 @@ FORMATS = {"npz": ".npz", "osm": ".osm"}
 
 def register_generate(graph_subparsers: Any) -> argparse.ArgumentParser:
     """Add ``generate`` to the ``dueroute graph`` group."""
-    from demo_data.generate import SIZES
+    from dueroute.demo_data.generate import SIZES
 
     p = graph_subparsers.add_parser(
         "generate",
@@ -44,7 +44,7 @@ def register_generate(graph_subparsers: Any) -> argparse.ArgumentParser:
 
 
 def cmd_generate(args: argparse.Namespace) -> int:
-    from service.commands.common import emit
+    from dueroute.service.cli.common import emit
 
     out = Path(args.output)
     fmt = args.format
@@ -68,8 +68,8 @@ def generate_to(
     size: str, out: Path, *, fmt: str = "npz", seed: int | None = None, progress: bool = True
 ) -> dict[str, Any]:
     """Write one size of the demo region to ``out``; returns a summary dict."""
-    from demo_data.build import OSM_SIZES, demo_graph_path
-    from demo_data.generate import default_seed, generate, write_osm
+    from dueroute.demo_data.build import OSM_SIZES, demo_graph_path
+    from dueroute.demo_data.generate import default_seed, generate, write_osm
 
     seed = default_seed() if seed is None else seed
     t0 = time.perf_counter()
@@ -92,7 +92,7 @@ def generate_to(
             "bytes": nbytes,
             "seconds": round(time.perf_counter() - t0, 3),
         }
-    from planner.graph import load_graph
+    from dueroute.planner.graph import load_graph
 
     cached = demo_graph_path(size, seed=seed, progress=progress)
     tmp = out.with_name(out.name + ".tmp")

@@ -10,29 +10,24 @@ from typing import Any
 
 import numpy as np
 
-from planner.errors import InvalidRequest
-from service.commands.common import (
+from dueroute.planner.errors import InvalidRequest
+from dueroute.service.cli.common import (
     GRAPH_HELP,
     add_json_flag,
     emit,
     load_graph_arg,
     progress,
 )
+from dueroute.service.cli.generate import register_generate
 
 #: Output formats ``graph plot`` writes (matplotlib picks the writer from the suffix).
 PLOT_SUFFIXES = (".png", ".svg", ".pdf")
 
 
 def register(sub: Any) -> argparse.ArgumentParser:
-    """Add the ``graph`` command group; returns its parser.
-
-    The group's subparsers object is stored as ``parser.graph_subparsers`` so another module
-    can add a subcommand to the group (``demo_data.cli.register_generate`` adds ``generate``).
-    """
+    """Add the ``graph`` command group; returns its parser."""
     parser = sub.add_parser("graph", help="import, inspect and draw road graphs")
     graph_sub = parser.add_subparsers(dest="graph_command", required=True, metavar="ACTION")
-    parser.graph_subparsers = graph_sub
-    # `graph generate` (the fictional demo region) is added by demo_data.cli.register_generate.
 
     imp = graph_sub.add_parser(
         "import",
@@ -70,8 +65,6 @@ def register(sub: Any) -> argparse.ArgumentParser:
     plot.add_argument("--dpi", type=int, default=150, help="image resolution (20..1200)")
     add_json_flag(plot)
     plot.set_defaults(func=cmd_plot)
-    from demo_data.cli import register_generate
-
     register_generate(graph_sub)
     return parser
 
@@ -81,8 +74,8 @@ def register(sub: Any) -> argparse.ArgumentParser:
 
 
 def cmd_import(args: argparse.Namespace) -> int:
-    from planner.graph import save_graph
-    from planner.osm_import import import_map
+    from dueroute.planner.graph import save_graph
+    from dueroute.planner.osm_import import import_map
 
     out = Path(args.output)
     if out.suffix != ".npz":

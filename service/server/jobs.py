@@ -26,8 +26,8 @@ from typing import Any
 
 import numpy as np
 
-from planner.errors import NoRoute
-from service.admission import Ticket
+from dueroute.planner.errors import NoRoute
+from dueroute.service.server.admission import Ticket
 
 log = logging.getLogger("dueroute.service.jobs")
 
@@ -344,13 +344,13 @@ class PlanningEngine:
 
     def make_controller(self, spec: str, policy: Any) -> Any:
         """A fresh controller for one search (``learned`` without a policy: the fallback)."""
-        from planner.controllers import make_controller
-        from service.policy_store import FALLBACK_CONTROLLER
+        from dueroute.planner.controllers import make_controller
+        from dueroute.service.server.policy_store import FALLBACK_CONTROLLER
 
         if spec == "learned":
             if policy is None:
                 return make_controller(FALLBACK_CONTROLLER)
-            from policies.runtime import resolve_controller
+            from dueroute.policies.runtime import resolve_controller
 
             return resolve_controller("learned", policy=policy)
         return make_controller(spec)
@@ -363,7 +363,7 @@ class PlanningEngine:
         route itself for the current-best view. Never raises: a failure is logged and the job
         ends ``no_route`` with an ``error`` field, so no caller waits forever.
         """
-        from planner.features import compute_features
+        from dueroute.planner.features import compute_features
 
         job.started_s = ticket.started_s if ticket.started_s is not None else time.perf_counter()
         remaining_ms = (job.search_deadline_s - job.started_s) * 1000.0

@@ -98,14 +98,14 @@ def policy_metadata(policy: Any) -> dict[str, Any]:
 
 def check_bytes(data: bytes) -> list[str]:
     """Every problem ``dueroute policy check`` finds in ``data`` (empty list: usable)."""
-    from policies.runtime import check_policy
+    from dueroute.policies.runtime import check_policy
 
     return list(check_policy(data))
 
 
 def load_bytes(data: bytes) -> Any:
     """A ready :class:`policies.runtime.Policy` (raises :class:`PolicyRejected`)."""
-    from policies.runtime import InvalidPolicy, load_policy
+    from dueroute.policies.runtime import InvalidPolicy, load_policy
 
     try:
         return load_policy(data)

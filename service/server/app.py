@@ -22,7 +22,6 @@ import time
 import weakref
 from collections.abc import AsyncIterator, Awaitable, Callable, MutableMapping
 from contextlib import asynccontextmanager
-from pathlib import Path
 from typing import Any
 
 from fastapi import FastAPI, HTTPException, Request
@@ -30,12 +29,13 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
-from service.admission import Admission
-from service.deps import AppState
-from service.jobs import PlanningEngine, PlanStore
-from service.metrics import ServiceMetrics
-from service.policy_store import PolicyStore
-from service.settings import Settings, get_settings
+from dueroute.policies.runtime import DEFAULT_POLICY_PATH
+from dueroute.service.server.admission import Admission
+from dueroute.service.server.deps import AppState
+from dueroute.service.server.jobs import PlanningEngine, PlanStore
+from dueroute.service.server.metrics import ServiceMetrics
+from dueroute.service.server.policy_store import PolicyStore
+from dueroute.service.server.settings import Settings, get_settings
 
 log = logging.getLogger("dueroute.service")
 
@@ -45,7 +45,7 @@ Receive = Callable[[], Awaitable[Message]]
 Send = Callable[[Message], Awaitable[None]]
 
 #: Shipped default policy (may not exist yet: then ``learned`` uses the fallback controller).
-DEFAULT_POLICY = Path(__file__).resolve().parent.parent / "policies" / "default.onnx"
+DEFAULT_POLICY = DEFAULT_POLICY_PATH
 
 _JSON_EXAMPLE = (
     'send a JSON object such as {"origin": {"node": 0}, "destination": {"node": 1}, '
@@ -247,13 +247,13 @@ def warm_up(state: AppState) -> None:
 
     Runs on a thread at start-up; sets ``state.engine`` and ``state.ready`` when done.
     """
-    from planner.heuristics import load_or_build_landmarks
-    from planner.session import Planner
-    from service.commands.common import resolve_graph_path
+    from dueroute.demo_data.build import resolve_graph_path
+    from dueroute.planner.heuristics import load_or_build_landmarks
+    from dueroute.planner.session import Planner
 
     t0 = time.perf_counter()
     settings = state.settings
-    from planner.graph import load_graph
+    from dueroute.planner.graph import load_graph
 
     graph = load_graph(resolve_graph_path(settings.graph))
     t_graph = time.perf_counter()
@@ -327,7 +327,7 @@ def _warmup_searches(engine: PlanningEngine, state: AppState, count: int) -> int
     """Run ``count`` searches per controller kind so numba compiles before the first request."""
     import numpy as np
 
-    from planner.session import plan
+    from dueroute.planner.session import plan
 
     graph = engine.graph
     if graph.n_nodes < 2 or count <= 0:
@@ -430,7 +430,7 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             content={"detail": f"internal error ({type(exc).__name__}); see the service log"},
         )
 
-    from service.routes import health, plans, policy
+    from dueroute.service.server.routes import health, plans, policy
 
     app.include_router(plans.router)
     app.include_router(policy.router)

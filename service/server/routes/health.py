@@ -7,8 +7,8 @@ import time
 from fastapi import APIRouter, Response
 from fastapi.responses import JSONResponse
 
-from service.deps import StateDep
-from service.schemas import Health
+from dueroute.service.server.deps import StateDep
+from dueroute.service.server.schemas import Health
 
 router = APIRouter(tags=["operations"])
 

@@ -1,15 +1,15 @@
-"""``dueroute`` command line: a thin layer over planner, policies and service."""
+"""``dueroute`` command line: a thin layer over the planner, the policies and the service."""
 
 from __future__ import annotations
 
 import argparse
-import importlib
 import sys
 
-from planner.errors import PlannerError
+from dueroute.planner.errors import PlannerError
+from dueroute.service.cli import bench, graph, loadtest, policy, route, serve
 
-#: Subcommand modules under ``service.commands``, in the order ``--help`` lists them.
-COMMAND_MODULES = ["graph", "loadtest", "route", "serve", "bench", "policy"]
+#: Subcommand modules, in the order ``--help`` lists them; each defines ``register(sub)``.
+COMMAND_MODULES = (graph, loadtest, route, serve, bench, policy)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -18,8 +18,8 @@ def build_parser() -> argparse.ArgumentParser:
         description="Deadline-bound road routing: best route by the deadline, with a proven bound.",
     )
     sub = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
-    for name in COMMAND_MODULES:
-        importlib.import_module(f"service.commands.{name}").register(sub)
+    for module in COMMAND_MODULES:
+        module.register(sub)
     return parser
 
 

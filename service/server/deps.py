@@ -10,11 +10,11 @@ from typing import Annotated, Any
 
 from fastapi import Depends, HTTPException, Request
 
-from service.admission import Admission, LoopLag
-from service.jobs import PlanningEngine, PlanStore
-from service.metrics import ServiceMetrics
-from service.policy_store import PolicyStore
-from service.settings import Settings
+from dueroute.service.server.admission import Admission, LoopLag
+from dueroute.service.server.jobs import PlanningEngine, PlanStore
+from dueroute.service.server.metrics import ServiceMetrics
+from dueroute.service.server.policy_store import PolicyStore
+from dueroute.service.server.settings import Settings
 
 
 @dataclass(eq=False)
@@ -62,7 +62,7 @@ def require_admin(request: Request, state: StateDep) -> None:
         raise HTTPException(
             status_code=404,
             detail="policy administration is disabled: no admin token is configured "
-            "(set DUEROUTE_ADMIN_TOKEN or pass --admin-token to enable it)",
+            "(set DUEROUTE_ADMIN_TOKEN or start with --admin-token-file to enable it)",
         )
     header = request.headers.get("authorization", "")
     scheme, _, given = header.partition(" ")

@@ -9,9 +9,6 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
-from planner.errors import InvalidRequest
-
-DEMO_WORD = "demo"
 GRAPH_HELP = (
     "compiled graph (.npz), or the word 'demo' for the built-in demo region (built if missing)"
 )
@@ -41,23 +38,9 @@ def _json_default(obj: Any) -> Any:
     raise TypeError(f"cannot serialise {type(obj).__name__}")
 
 
-def resolve_graph_path(arg: str) -> Path:
-    """Path of a compiled graph; ``demo`` builds the demo region on first use."""
-    if arg == DEMO_WORD:
-        from demo_data.build import demo_graph_path
-
-        return demo_graph_path("demo")
-    path = Path(arg)
-    if path.suffix != ".npz":
-        raise InvalidRequest(
-            f"{arg!r} is not a compiled graph: pass a .npz file (make one with "
-            "'dueroute graph import MAP.osm -o OUT.npz') or the word 'demo'"
-        )
-    return path
-
-
 def load_graph_arg(arg: str) -> Any:
-    from planner.graph import load_graph
+    from dueroute.demo_data.build import resolve_graph_path
+    from dueroute.planner.graph import load_graph
 
     return load_graph(resolve_graph_path(arg))
 

@@ -10,8 +10,8 @@ import threading
 from pathlib import Path
 from typing import Any
 
-from planner.errors import InvalidRequest
-from service.commands.common import (
+from dueroute.planner.errors import InvalidRequest
+from dueroute.service.cli.common import (
     GRAPH_HELP,
     _json_default,
     add_json_flag,
@@ -134,14 +134,14 @@ def read_queries(path: str, n_nodes: int) -> list[tuple[int, int]]:
 def _controller_factory(spec: str, policy_path: str | None, seed: int | None) -> Any:
     """Validate ``spec`` now (one clear error) and return a factory of fresh controllers."""
     if spec.strip() == "learned":
-        from policies.runtime import load_policy, resolve_controller
+        from dueroute.policies.runtime import load_policy, resolve_controller
 
         policy = load_policy(policy_path) if policy_path is not None else None
         resolve_controller("learned", policy=policy, seed=seed)  # fail early, clearly
         return lambda: resolve_controller("learned", policy=policy, seed=seed)
     if policy_path is not None:
         raise InvalidRequest("--policy is only used with --controller learned")
-    from planner.controllers import make_controller
+    from dueroute.planner.controllers import make_controller
 
     make_controller(spec, seed=seed)
     return lambda: make_controller(spec, seed=seed)
@@ -150,7 +150,7 @@ def _controller_factory(spec: str, policy_path: str | None, seed: int | None) ->
 def _landmarks_for(graph: Any, disabled: bool) -> Any:
     if disabled or graph.path is None:
         return None
-    from planner.heuristics import landmarks_path, load_landmarks
+    from dueroute.planner.heuristics import landmarks_path, load_landmarks
 
     lp = landmarks_path(graph.path)
     if not lp.is_file():
@@ -159,7 +159,7 @@ def _landmarks_for(graph: Any, disabled: bool) -> Any:
 
 
 def cmd_route(args: argparse.Namespace) -> int:
-    from planner.session import Planner, plan, validate_contract
+    from dueroute.planner.session import Planner, plan, validate_contract
 
     single = args.origin is not None or args.destination is not None
     if single and args.queries is not None:

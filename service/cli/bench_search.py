@@ -39,8 +39,8 @@ from typing import Any
 
 import numpy as np
 
-from planner.errors import InvalidRequest
-from service.commands.common import GRAPH_HELP, add_json_flag, emit, progress
+from dueroute.planner.errors import InvalidRequest
+from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
 
 #: (key, what, comparison, target) — the issue's targets.
 TARGETS: tuple[tuple[str, str, str, float], ...] = (
@@ -52,16 +52,9 @@ TARGETS: tuple[tuple[str, str, str, float], ...] = (
 
 MAX_QUERIES = 100_000
 
-#: Long trips on the demo region start and end this close to the two town centres.
-TOWN_CENTRE_RADIUS_M = 1000.0
 
-
-def register(sub: Any) -> argparse.ArgumentParser:
-    """Add the ``bench`` command group (``bench search``); returns its parser."""
-    parser = sub.add_parser("bench", help="measure speed as ratios against reference libraries")
-    bench_sub = parser.add_subparsers(dest="bench_command", required=True, metavar="BENCH")
-    parser.bench_subparsers = bench_sub
-
+def register(bench_sub: Any) -> None:
+    """Add ``bench search`` to the ``bench`` group's subparsers."""
     s = bench_sub.add_parser(
         "search",
         help="kernel vs scipy dijkstra and networkx A*, ALT vs great-circle, setup cost, node order",
@@ -102,11 +95,6 @@ def register(sub: Any) -> argparse.ArgumentParser:
     add_json_flag(s)
     s.set_defaults(func=cmd_search)
 
-    from service.commands.bench_deadline import register as register_deadline
-
-    register_deadline(bench_sub)
-    return parser
-
 
 # --------------------------------------------------------------------------------------------
 # Measurements (each returns plain numbers; the command assembles the report)
@@ -120,7 +108,7 @@ def _check_count(value: int, name: str, lo: int, hi: int) -> int:
 
 def sample_pairs(graph: Any, count: int, rng: np.random.Generator) -> list[tuple[int, int]]:
     """Random (origin, destination) pairs, distinct, both in the largest strong component."""
-    from planner.heuristics import largest_component_nodes
+    from dueroute.planner.heuristics import largest_component_nodes
 
     nodes = largest_component_nodes(graph)
     if nodes.shape[0] < 2:
@@ -132,64 +120,6 @@ def sample_pairs(graph: Any, count: int, rng: np.random.Generator) -> list[tuple
         o, d = rng.choice(nodes, size=2, replace=False)
         pairs.append((int(o), int(d)))
     return pairs
-
-
-def long_trip_pairs(graph: Any, count: int, rng: np.random.Generator) -> tuple[list, str]:
-    """Long trips for the ALT comparison, and a note on how they were chosen.
-
-    On the demo region: nodes near the two town centres (from the graph's ``places``).
-    Elsewhere: for random origins, the node of the largest strong
-    component farthest away by great-circle distance.
-    """
-    from planner.graph import great_circle_m
-    from planner.heuristics import largest_component_nodes
-
-    towns = _demo_town_trips(graph, count, rng)
-    if towns is not None:
-        return towns
-    nodes = largest_component_nodes(graph)
-    if nodes.shape[0] < 2:
-        raise InvalidRequest(f"graph {graph.name} has no two connected nodes for long trips")
-    lat, lon = np.asarray(graph.lat)[nodes], np.asarray(graph.lon)[nodes]
-    pairs: list[tuple[int, int]] = []
-    for _ in range(count):
-        i = int(rng.integers(nodes.shape[0]))
-        far = int(np.argmax(great_circle_m(lat[i], lon[i], lat, lon)))
-        if far == i:
-            far = (i + 1) % nodes.shape[0]
-        pairs.append((int(nodes[i]), int(nodes[far])))
-    return pairs, "origin random, destination the farthest node by great-circle distance"
-
-
-def _demo_town_trips(graph: Any, count: int, rng: np.random.Generator) -> tuple[list, str] | None:
-    """Trips between the two demo towns (``meta["places"]`` of a demo graph), else ``None``.
-
-    Origins and destinations are nodes of the largest strong component within
-    :data:`TOWN_CENTRE_RADIUS_M` of the two largest towns' centres; directions alternate.
-    """
-    from planner.graph import great_circle_m
-    from planner.heuristics import largest_component_nodes
-
-    places = graph.meta.get("places") or []
-    towns = sorted(
-        (p for p in places if isinstance(p, dict) and p.get("kind") == "town"),
-        key=lambda p: -float(p.get("radius_m", 0.0)),
-    )[:2]
-    if len(towns) < 2:
-        return None
-    nodes = largest_component_nodes(graph)
-    lat, lon = np.asarray(graph.lat)[nodes], np.asarray(graph.lon)[nodes]
-    near = []
-    for town in towns:
-        d = great_circle_m(lat, lon, float(town["lat"]), float(town["lon"]))
-        pick = nodes[d <= TOWN_CENTRE_RADIUS_M]
-        near.append(pick if pick.shape[0] else nodes[[int(np.argmin(d))]])
-    pairs = []
-    for i in range(count):
-        a, b = (near[0], near[1]) if i % 2 == 0 else (near[1], near[0])
-        pairs.append((int(rng.choice(a)), int(rng.choice(b))))
-    names = f"{towns[0]['name']} and {towns[1]['name']}"
-    return pairs, f"between the centres of {names} (within {TOWN_CENTRE_RADIUS_M:.0f} m)"
 
 
 #: Clock for rates and ratios: CPU time of the benchmark thread. The kernel (GIL released,
@@ -298,8 +228,8 @@ def run_networkx(
     alternating with the kernel on each query; optimal costs are compared."""
     import networkx as nx
 
-    from planner.graph import EARTH_RADIUS_M
-    from planner.heuristics import GREAT_CIRCLE_SAFETY
+    from dueroute.planner.graph import EARTH_RADIUS_M
+    from dueroute.planner.heuristics import GREAT_CIRCLE_SAFETY
 
     csr = graph.csr().tocoo()
     g = nx.DiGraph()
@@ -348,7 +278,7 @@ def run_networkx(
 def run_setup(large: Any, count: int, rng: np.random.Generator) -> dict[str, Any]:
     """Fixed per-query cost on ``large`` (wall time): adjacent-node optimal queries (origin an
     in-neighbour of the destination, same strong component) and bare ``start()`` calls."""
-    from planner.session import Planner
+    from dueroute.planner.session import Planner
 
     planner = Planner(large)
     planner.warm_up()
@@ -390,7 +320,7 @@ def run_setup(large: Any, count: int, rng: np.random.Generator) -> dict[str, Any
 def reorder(graph: Any, spatial_order: bool) -> Any:
     """Recompile ``graph`` from its edge list, nodes first sorted by ``osm_id`` (the input
     order), then optionally renumbered along the Hilbert curve. Geometry is left out."""
-    from planner.graph import build_graph
+    from dueroute.planner.graph import build_graph
 
     by_id = np.argsort(np.asarray(graph.osm_id), kind="stable")
     rank = np.empty_like(by_id)
@@ -422,7 +352,7 @@ def _map_nodes(src: Any, dst: Any, nodes: np.ndarray) -> np.ndarray:
 
 def run_order(graph: Any, pairs: Sequence[tuple[int, int]]) -> dict[str, KernelRun]:
     """Same queries, alternating, on the graph compiled in input order and in Hilbert order."""
-    from planner.session import Planner
+    from dueroute.planner.session import Planner
 
     if np.unique(np.asarray(graph.osm_id)).shape[0] != graph.n_nodes:
         raise InvalidRequest("node order comparison needs unique osm_id values")
@@ -453,8 +383,8 @@ def _default_large() -> tuple[Path | None, str]:
     the large region is used).
     """
     try:
-        from demo_data.build import cache_key, data_dir
-        from demo_data.generate import default_seed, load_scenario
+        from dueroute.demo_data.build import cache_key, data_dir
+        from dueroute.demo_data.generate import default_seed, load_scenario
     except ImportError:
         return None, "the demo region builder (demo_data) is not available; pass --large GRAPH"
     path = data_dir() / f"{cache_key('large', default_seed(load_scenario()))}.npz"
@@ -477,9 +407,9 @@ def _ratio(num: float | None, den: float | None) -> float | None:
 
 
 def cmd_search(args: argparse.Namespace) -> int:
-    from planner.heuristics import load_or_build_landmarks
-    from planner.session import Planner
-    from service.commands.common import load_graph_arg
+    from dueroute.demo_data.queries import long_trip_pairs
+    from dueroute.planner.heuristics import load_or_build_landmarks
+    from dueroute.planner.session import Planner
 
     n_queries = _check_count(args.queries, "--queries", 1, MAX_QUERIES)
     n_long = _check_count(args.long_trips, "--long-trips", 1, MAX_QUERIES)
@@ -545,7 +475,7 @@ def cmd_search(args: argparse.Namespace) -> int:
     else:
         large_path: Path | None
         if args.large is not None:
-            from service.commands.common import resolve_graph_path
+            from dueroute.demo_data.build import resolve_graph_path
 
             large_path, why = resolve_graph_path(args.large), ""
         else:
@@ -556,7 +486,7 @@ def cmd_search(args: argparse.Namespace) -> int:
             report["large"] = {"skipped": why}
             notes.append(f"setup cost not measured: {why}")
         else:
-            from planner.graph import load_graph
+            from dueroute.planner.graph import load_graph
 
             large = load_graph(large_path)
             report["large"] = run_setup(large, min(max(n_queries, 20), 1000), rng)

@@ -19,8 +19,8 @@ from typing import Any
 
 import numpy as np
 
-from planner.errors import InvalidRequest
-from service.commands.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
+from dueroute.planner.errors import InvalidRequest
+from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
 
 TARGET_P99_MS = 0.5
 
@@ -75,10 +75,10 @@ def _busy_wait(deadline_ms: float) -> float:
 
 
 def cmd_deadline(args: argparse.Namespace) -> int:
-    from planner.controllers import make_controller
-    from planner.heuristics import load_or_build_landmarks
-    from planner.session import Planner, plan
-    from service.commands.bench import long_trip_pairs
+    from dueroute.demo_data.queries import long_trip_pairs
+    from dueroute.planner.controllers import make_controller
+    from dueroute.planner.heuristics import load_or_build_landmarks
+    from dueroute.planner.session import Planner, plan
 
     if not 1 <= args.queries <= 100_000:
         raise InvalidRequest(f"--queries must be in 1..100000, got {args.queries}")

@@ -6,8 +6,8 @@ import argparse
 from pathlib import Path
 from typing import Any
 
-from planner.errors import InvalidRequest
-from service.commands.common import GRAPH_HELP, add_json_flag, emit
+from dueroute.planner.errors import InvalidRequest
+from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit
 
 # flag name -> Settings field (every flag defaults to None: the environment / default applies)
 _FLAGS = {
@@ -91,7 +91,7 @@ def register(sub: Any) -> None:
 
 def _settings_epilog() -> str:
     """Every setting as its environment variable, default and one-line meaning."""
-    from service.settings import Settings
+    from dueroute.service.server.settings import Settings
 
     lines = ["settings (environment variables; the flags above override them):"]
     for name, field in Settings.model_fields.items():
@@ -106,7 +106,7 @@ def build_settings(args: argparse.Namespace) -> Any:
     """Settings from the environment with the given flags on top (raises on a bad value)."""
     from pydantic import ValidationError
 
-    from service.settings import Settings
+    from dueroute.service.server.settings import Settings
 
     overrides: dict[str, Any] = {
         field: getattr(args, flag)
@@ -133,9 +133,9 @@ def build_settings(args: argparse.Namespace) -> Any:
 def run(args: argparse.Namespace) -> int:
     import uvicorn
 
-    from service.app import configure_logging, create_app
-    from service.commands.common import resolve_graph_path
-    from service.policy_store import PolicyRejected
+    from dueroute.demo_data.build import resolve_graph_path
+    from dueroute.service.server.app import configure_logging, create_app
+    from dueroute.service.server.policy_store import PolicyRejected
 
     settings = build_settings(args)
     configure_logging(settings.log_level, settings.log_json)

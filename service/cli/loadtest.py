@@ -10,8 +10,8 @@ import threading
 import time
 from typing import Any
 
-from planner.errors import InvalidRequest
-from service.commands.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
+from dueroute.planner.errors import InvalidRequest
+from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
 
 
 def _interrupt(signum: int, frame: Any) -> None:
@@ -68,7 +68,7 @@ def register(sub: Any) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    from service import loadtest as lt
+    from dueroute.service.loadtest import runner as lt
 
     controllers = tuple(dict.fromkeys(k.strip() for k in args.controller.split(",") if k.strip()))
     if args.warmup < 0:

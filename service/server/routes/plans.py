@@ -23,11 +23,18 @@ from typing import Any
 from fastapi import APIRouter, Request, Response
 from fastapi.responses import JSONResponse, StreamingResponse
 
-from planner.errors import InvalidRequest, NodeNotFound
-from service.admission import Shed
-from service.deps import AppState, StateDep
-from service.jobs import PlanJob, StoreFull, dumps, new_plan_id
-from service.schemas import RESPONSES_4XX, ErrorBody, NodeRef, Plan, PlanAccepted, PlanRequest
+from dueroute.planner.errors import InvalidRequest, NodeNotFound
+from dueroute.service.server.admission import Shed
+from dueroute.service.server.deps import AppState, StateDep
+from dueroute.service.server.jobs import PlanJob, StoreFull, dumps, new_plan_id
+from dueroute.service.server.schemas import (
+    RESPONSES_4XX,
+    ErrorBody,
+    NodeRef,
+    Plan,
+    PlanAccepted,
+    PlanRequest,
+)
 
 router = APIRouter(tags=["plans"])
 log = logging.getLogger("dueroute.service.plans")

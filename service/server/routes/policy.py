@@ -7,9 +7,9 @@ import asyncio
 from fastapi import APIRouter, Query, Request
 from fastapi.responses import JSONResponse
 
-from service.deps import AdminDep, StateDep
-from service.policy_store import NothingToRollBack, PolicyRejected
-from service.schemas import ErrorBody, PolicyInfo
+from dueroute.service.server.deps import AdminDep, StateDep
+from dueroute.service.server.policy_store import NothingToRollBack, PolicyRejected
+from dueroute.service.server.schemas import ErrorBody, PolicyInfo
 
 router = APIRouter(tags=["policy"])
 

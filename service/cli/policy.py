@@ -14,17 +14,18 @@ import math
 from pathlib import Path
 from typing import Any
 
-from planner.errors import InvalidRequest
-from service.commands.common import GRAPH_HELP, add_json_flag, emit, resolve_graph_path
+from dueroute.demo_data.build import resolve_graph_path
+from dueroute.planner.errors import InvalidRequest
+from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit
 
 #: Extra spellings of generated flags (the issue's short names).
 FLAG_ALIASES = {"budget_expansions": ["--budget"]}
 
 
 def register(sub: Any) -> None:
-    from policies.dqn import DQNConfig
-    from policies.env import EnvConfig
-    from policies.train import ValidationConfig
+    from dueroute.policies.dqn import DQNConfig
+    from dueroute.policies.env import EnvConfig
+    from dueroute.policies.train import ValidationConfig
 
     tr = sub.add_parser(
         "train",
@@ -177,10 +178,10 @@ def config_from_args(args: argparse.Namespace, cls: type) -> Any:
 
 
 def cmd_train(args: argparse.Namespace) -> int:
-    from planner.graph import load_graph
-    from policies.dqn import DQNConfig
-    from policies.env import EnvConfig
-    from policies.train import ValidationConfig, train_policy
+    from dueroute.planner.graph import load_graph
+    from dueroute.policies.dqn import DQNConfig
+    from dueroute.policies.env import EnvConfig
+    from dueroute.policies.train import ValidationConfig, train_policy
 
     dqn = config_from_args(args, DQNConfig)
     env = config_from_args(args, EnvConfig)
@@ -225,12 +226,12 @@ def _format_train(s: dict[str, Any]) -> str:
 
 
 def cmd_evaluate(args: argparse.Namespace) -> int:
-    from planner.controllers import make_controller
-    from planner.graph import load_graph
-    from planner.session import Planner
-    from policies.evaluate import CONTROLLERS, EvalSettings, evaluate
-    from policies.runtime import DEFAULT_POLICY_PATH, LEARNED, load_policy
-    from policies.train import side_files
+    from dueroute.planner.controllers import make_controller
+    from dueroute.planner.graph import load_graph
+    from dueroute.planner.session import Planner
+    from dueroute.policies.evaluate import CONTROLLERS, EvalSettings, evaluate
+    from dueroute.policies.runtime import DEFAULT_POLICY_PATH, LEARNED, load_policy
+    from dueroute.policies.train import side_files
 
     if args.queries < 1:
         raise InvalidRequest(f"--queries must be >= 1, got {args.queries}")
@@ -252,7 +253,7 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     graph = load_graph(resolve_graph_path(args.graph))
     landmarks = None
     if n_landmarks > 0:
-        from planner.heuristics import load_or_build_landmarks
+        from dueroute.planner.heuristics import load_or_build_landmarks
 
         landmarks = load_or_build_landmarks(graph, count=n_landmarks, progress=False)
     settings = EvalSettings(
@@ -296,7 +297,7 @@ def _training_config(policy: Any) -> dict[str, Any]:
 
 
 def _format_evaluate(s: dict[str, Any]) -> str:
-    from policies.evaluate import markdown_report
+    from dueroute.policies.evaluate import markdown_report
 
     return markdown_report(s) + f"\nreport written to {s['out']} in {s['seconds']:.0f} s"
 
@@ -306,7 +307,7 @@ def _format_evaluate(s: dict[str, Any]) -> str:
 
 
 def cmd_check(args: argparse.Namespace) -> int:
-    from policies.runtime import check_policy, load_policy
+    from dueroute.policies.runtime import check_policy, load_policy
 
     problems = check_policy(args.file)
     result: dict[str, Any] = {"file": args.file, "ok": not problems, "problems": problems}

@@ -1,1 +1,0 @@
-"""CLI subcommands. Each module defines ``register(subparsers)``; ``service.cli`` lists them."""
