@@ -10,9 +10,9 @@ osmnx and the same tags-to-speed rules (:func:`planner.speeds.edge_speed`).
 Cache
 -----
 Files live in ``$DUEROUTE_DATA_DIR`` (default ``~/.cache/dueroute``), named
-``veyrand-<size>-s<seed>-g<GENERATOR_VERSION>-<scenario sha256[:12]>.npz``: changing the
-generator version, the scenario file, the size or the seed gives a new file, so a stale graph
-is never reused. Concurrent first uses are safe: builders take an exclusive ``flock`` on a
+``veyrand-<size>-s<seed>-g<GENERATOR_VERSION>-f<graph FORMAT_VERSION>-<scenario sha256[:12]>.npz``:
+changing the generator version, the graph file format, the scenario file, the size or the seed
+gives a new file, so a stale graph is never reused. Concurrent first uses are safe: builders take an exclusive ``flock`` on a
 lock file beside the target and re-check for the file once they hold it; the graph itself is
 written to a temporary name and renamed into place (``planner.graph.save_graph``), so readers
 never see a partial file.
@@ -43,7 +43,13 @@ from dueroute.demo_data.generate import (
     write_osm,
 )
 from dueroute.planner.errors import InvalidRequest
-from dueroute.planner.graph import RoadGraph, build_graph, great_circle_m, save_graph
+from dueroute.planner.graph import (
+    FORMAT_VERSION,
+    RoadGraph,
+    build_graph,
+    great_circle_m,
+    save_graph,
+)
 
 #: Environment variable naming the cache directory.
 DATA_DIR_ENV = "DUEROUTE_DATA_DIR"
@@ -67,7 +73,9 @@ def scenario_digest() -> str:
 
 
 def cache_key(size: str, seed: int) -> str:
-    return f"veyrand-{size}-s{seed}-g{GENERATOR_VERSION}-{scenario_digest()}"
+    """File stem of a cached build: changes with the generator, the scenario and the graph
+    file format, so a build by an older dueroute is never reused."""
+    return f"veyrand-{size}-s{seed}-g{GENERATOR_VERSION}-f{FORMAT_VERSION}-{scenario_digest()}"
 
 
 def demo_graph_path(

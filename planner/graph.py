@@ -25,8 +25,19 @@ name                dtype, shape        meaning
 ``geom_indptr``     int64[m + 1]        interior points of edge e: geom_indptr[e]:geom_indptr[e+1]
 ``geom_lat``        float64[k]          interior geometry latitudes (endpoints not repeated)
 ``geom_lon``        float64[k]          interior geometry longitudes
+``way_indptr``      int64[m + 1]        OSM ways along edge e: way_id[way_indptr[e]:...[e+1]]
+``way_id``          int64[w]            OSM way ids, in travel order along each edge
+``turn_indptr``     int64[r + 1]        road edges of turn restriction i:
+                                        turn_edges[turn_indptr[i]:turn_indptr[i + 1]]
+``turn_edges``      int32[q]            edge sequences ``from, via..., to`` (each edge's head
+                                        is the next edge's tail; at least two edges)
+``turn_kind``       int8[r]             0 = ``no_*`` (the sequence is banned), 1 = ``only_*``
+                                        (after ``from, via...`` the only way on is ``to``)
 ``meta``            str (0-d)           JSON: format version, name, source, counts, speeds, ...
 ==================  ==================  =====================================================
+
+Format version 2 added ``way_indptr``/``way_id`` and the ``turn_*`` arrays; a version 1 file
+loads with those empty (no way ids, no restrictions).
 """
 
 from __future__ import annotations
@@ -51,7 +62,10 @@ from dueroute.planner.errors import (
     NodeNotFound,
 )
 
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+
+#: Oldest file format :func:`load_graph` still reads (see the module docstring).
+MIN_FORMAT_VERSION = 1
 
 #: Mean earth radius in metres, the value osmnx uses for its great-circle lengths.
 EARTH_RADIUS_M = 6_371_009.0
@@ -81,6 +95,20 @@ _OTHER_ARRAYS = {
 }
 REQUIRED_ARRAYS = {**_OTHER_ARRAYS, **_NODE_ARRAYS, **_EDGE_ARRAYS}
 
+#: Arrays added by format version 2 (empty when a version 1 file is loaded).
+_V2_ARRAYS = {
+    "way_indptr": np.int64,
+    "way_id": np.int64,
+    "turn_indptr": np.int64,
+    "turn_edges": np.int32,
+    "turn_kind": np.int8,
+}
+ALL_ARRAYS = {**REQUIRED_ARRAYS, **_V2_ARRAYS}
+
+#: ``turn_kind`` values.
+TURN_NO = 0
+TURN_ONLY = 1
+
 
 @dataclass(frozen=True, eq=False)
 class RoadGraph:
@@ -100,8 +128,19 @@ class RoadGraph:
     geom_indptr: np.ndarray
     geom_lat: np.ndarray
     geom_lon: np.ndarray
+    way_indptr: np.ndarray = field(default_factory=lambda: np.zeros(1, dtype=np.int64))
+    way_id: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int64))
+    turn_indptr: np.ndarray = field(default_factory=lambda: np.zeros(1, dtype=np.int64))
+    turn_edges: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int32))
+    turn_kind: np.ndarray = field(default_factory=lambda: np.zeros(0, dtype=np.int8))
     meta: dict[str, Any] = field(default_factory=dict)
     path: Path | None = None
+
+    def __post_init__(self) -> None:
+        # A graph built without way ids still answers "which ways does edge e run along"
+        # (none): one pointer per edge plus one, all zero.
+        if self.way_indptr.shape == (1,) and self.head.shape[0] != 0:
+            object.__setattr__(self, "way_indptr", np.zeros(self.n_edges + 1, dtype=np.int64))
 
     @property
     def n_nodes(self) -> int:
@@ -110,6 +149,10 @@ class RoadGraph:
     @property
     def n_edges(self) -> int:
         return int(self.head.shape[0])
+
+    @property
+    def n_restrictions(self) -> int:
+        return int(self.turn_kind.shape[0])
 
     @property
     def name(self) -> str:
@@ -134,6 +177,16 @@ class RoadGraph:
     def tail(self) -> np.ndarray:
         """int32[m]: the node each edge leaves from (derived from ``indptr``)."""
         return np.repeat(np.arange(self.n_nodes, dtype=np.int32), np.diff(self.indptr))
+
+    def edge_ways(self, edge: int) -> np.ndarray:
+        """int64[k]: the OSM way ids edge ``edge`` runs along, in travel order (may be empty)."""
+        return np.asarray(self.way_id[int(self.way_indptr[edge]) : int(self.way_indptr[edge + 1])])
+
+    def restriction(self, i: int) -> tuple[str, np.ndarray]:
+        """Turn restriction ``i`` as ``("no" | "only", int64[k] road edges from, via..., to)``."""
+        lo, hi = int(self.turn_indptr[i]), int(self.turn_indptr[i + 1])
+        kind = "only" if int(self.turn_kind[i]) == TURN_ONLY else "no"
+        return kind, np.asarray(self.turn_edges[lo:hi], dtype=np.int64)
 
     def edges_of(self, node: int) -> slice:
         return slice(int(self.indptr[node]), int(self.indptr[node + 1]))
@@ -297,6 +350,11 @@ def build_graph(
     geom_indptr: np.ndarray | None = None,
     geom_lat: np.ndarray | None = None,
     geom_lon: np.ndarray | None = None,
+    way_indptr: np.ndarray | None = None,
+    way_id: np.ndarray | None = None,
+    turn_indptr: np.ndarray | None = None,
+    turn_edges: np.ndarray | None = None,
+    turn_kind: np.ndarray | None = None,
     meta: dict[str, Any] | None = None,
     spatial_order: bool = True,
 ) -> RoadGraph:
@@ -313,6 +371,11 @@ def build_graph(
     road_class, speed_source : int8[m]
     geom_indptr, geom_lat, geom_lon : optional
         Interior geometry per input edge, in the input edge order.
+    way_indptr, way_id : optional
+        OSM way ids along each input edge (``way_id[way_indptr[e]:way_indptr[e + 1]]``).
+    turn_indptr, turn_edges, turn_kind : optional
+        Turn restrictions as sequences of *input* edge indices (see the module docstring);
+        renumbered here with the edges.
     spatial_order : bool
         Renumber nodes along a Hilbert curve (see :func:`hilbert_order`).
     """
@@ -330,6 +393,15 @@ def build_graph(
         geom_lat = np.zeros(0)
         geom_lon = np.zeros(0)
     assert geom_lat is not None and geom_lon is not None
+    if way_indptr is None:
+        way_indptr = np.zeros(m + 1, dtype=np.int64)
+        way_id = np.zeros(0, dtype=np.int64)
+    assert way_id is not None
+    if turn_indptr is None:
+        turn_indptr = np.zeros(1, dtype=np.int64)
+        turn_edges = np.zeros(0, dtype=np.int64)
+        turn_kind = np.zeros(0, dtype=np.int8)
+    assert turn_edges is not None and turn_kind is not None
 
     # Node renumbering: new index of old node i is rank[i].
     perm = hilbert_order(lat, lon) if spatial_order else np.arange(n)
@@ -342,13 +414,13 @@ def build_graph(
     indptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(counts, out=indptr[1:])
 
-    glen = np.diff(geom_indptr)[order]
-    new_gptr = np.zeros(m + 1, dtype=np.int64)
-    np.cumsum(glen, out=new_gptr[1:])
-    # Interior points of the e-th edge in CSR order: geom_indptr[order[e]] + 0..glen[e]-1
-    # (vectorised: one np.arange per edge is too slow for million-edge graphs).
-    within = np.arange(int(new_gptr[-1]), dtype=np.int64) - np.repeat(new_gptr[:-1], glen)
-    gsel = np.repeat(np.asarray(geom_indptr, dtype=np.int64)[order], glen) + within
+    new_gptr, gsel = _permute_ragged(np.asarray(geom_indptr, dtype=np.int64), order)
+    new_wptr, wsel = _permute_ragged(np.asarray(way_indptr, dtype=np.int64), order)
+    edge_rank = np.empty(m, dtype=np.int64)  # new index of input edge e
+    edge_rank[order] = np.arange(m)
+    turn_edges_in = np.asarray(turn_edges, dtype=np.int64)
+    if turn_edges_in.size and (turn_edges_in.min() < 0 or turn_edges_in.max() >= m):
+        raise InvalidRequest("turn restrictions must name input edge indices in 0..m-1")
 
     length = np.asarray(length_m, dtype=np.float64)[order]
     speed = speed_kph[order]
@@ -377,8 +449,27 @@ def build_graph(
         geom_indptr=new_gptr,
         geom_lat=np.asarray(geom_lat, dtype=np.float64)[gsel],
         geom_lon=np.asarray(geom_lon, dtype=np.float64)[gsel],
+        way_indptr=new_wptr,
+        way_id=np.asarray(way_id, dtype=np.int64)[wsel],
+        turn_indptr=np.asarray(turn_indptr, dtype=np.int64),
+        turn_edges=edge_rank[turn_edges_in].astype(np.int32),
+        turn_kind=np.asarray(turn_kind, dtype=np.int8),
         meta=info,
     )
+
+
+def _permute_ragged(indptr: np.ndarray, order: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Reorder the rows of a ragged array (``indptr`` form) to ``order``.
+
+    Returns ``(new_indptr, select)``: row ``e`` of the result is row ``order[e]`` of the input,
+    and ``values[select]`` are the reordered values. Vectorised: one ``np.arange`` per row is
+    too slow for million-edge graphs.
+    """
+    lens = np.diff(indptr)[order]
+    new_ptr = np.zeros(order.shape[0] + 1, dtype=np.int64)
+    np.cumsum(lens, out=new_ptr[1:])
+    within = np.arange(int(new_ptr[-1]), dtype=np.int64) - np.repeat(new_ptr[:-1], lens)
+    return new_ptr, np.repeat(indptr[order], lens) + within
 
 
 # --------------------------------------------------------------------------------------------
@@ -393,9 +484,10 @@ def save_graph(graph: RoadGraph, path: str | Path) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     arrays: dict[str, Any] = {
         name: np.ascontiguousarray(getattr(graph, name), dtype=dt)
-        for name, dt in REQUIRED_ARRAYS.items()
+        for name, dt in ALL_ARRAYS.items()
     }
     meta = dict(graph.meta)
+    meta["format_version"] = FORMAT_VERSION
     meta["nodes"], meta["edges"] = graph.n_nodes, graph.n_edges
     tmp = path.with_name(path.name + ".tmp")
     with open(tmp, "wb") as fh:
@@ -443,11 +535,21 @@ def load_graph(path: str | Path, *, mmap: bool = True) -> RoadGraph:
         members = _npz_member_offsets(path)
         with np.load(path, allow_pickle=False) as npz:
             meta = json.loads(str(npz["meta"][()]))
-            missing = sorted(set(REQUIRED_ARRAYS) - set(npz.files))
+            if not isinstance(meta, dict):
+                raise CorruptGraphFile(f"{path}: meta is not a JSON object")
+            version = meta.get("format_version", MIN_FORMAT_VERSION)
+            if not (isinstance(version, int) and MIN_FORMAT_VERSION <= version <= FORMAT_VERSION):
+                raise CorruptGraphFile(
+                    f"{path}: graph file format version {version!r}; this dueroute reads "
+                    f"versions {MIN_FORMAT_VERSION}..{FORMAT_VERSION} (re-import the map with "
+                    "this version)"
+                )
+            wanted = ALL_ARRAYS if version >= 2 else REQUIRED_ARRAYS
+            missing = sorted(set(wanted) - set(npz.files))
             if missing:
                 raise CorruptGraphFile(f"{path}: not a dueroute graph, missing arrays {missing}")
             arrays: dict[str, np.ndarray] = {}
-            for name, dtype in REQUIRED_ARRAYS.items():
+            for name, dtype in wanted.items():
                 if mmap:
                     offset, dt, shape, fortran = members[name]
                     if dt.hasobject:
@@ -488,28 +590,78 @@ def load_graph(path: str | Path, *, mmap: bool = True) -> RoadGraph:
 
 
 def _validate(g: RoadGraph) -> None:
-    """Cheap structural checks so a truncated or hand-edited file fails loudly, not mid-search."""
+    """Structural checks so a truncated or hand-edited file fails loudly at load, not mid-search.
+
+    Every index array is checked against the range it indexes, every position and cost for
+    finiteness: a search trusts these arrays without bounds checks.
+    """
     n, m = g.n_nodes, g.n_edges
     where = g.path or "graph"
-    problems = []
-    if g.indptr.shape != (n + 1,):
-        problems.append(f"indptr has {g.indptr.shape[0]} entries, expected nodes + 1 = {n + 1}")
-    elif n and (g.indptr[0] != 0 or g.indptr[-1] != m or np.any(np.diff(g.indptr) < 0)):
-        problems.append("indptr is not a non-decreasing row pointer from 0 to the edge count")
+    problems: list[str] = []
+
+    def pointer(name: str, ptr: np.ndarray, rows: int, total: int, of: str) -> None:
+        if ptr.shape != (rows + 1,):
+            problems.append(f"{name} has {ptr.shape[0]} entries, expected {rows + 1}")
+        elif ptr[0] != 0 or ptr[-1] != total or (rows and bool(np.any(np.diff(ptr) < 0))):
+            problems.append(f"{name} is not a non-decreasing pointer from 0 to {total} ({of})")
+
+    pointer("indptr", g.indptr, n, m, "the edge count")
     for name in _NODE_ARRAYS:
         if getattr(g, name).shape != (n,):
             problems.append(f"{name} has shape {getattr(g, name).shape}, expected ({n},)")
     for name in _EDGE_ARRAYS:
         if getattr(g, name).shape != (m,):
             problems.append(f"{name} has shape {getattr(g, name).shape}, expected ({m},)")
-    if g.geom_indptr.shape != (m + 1,):
-        problems.append("geom_indptr does not have edges + 1 entries")
-    if g.geom_lat.shape != g.geom_lon.shape:
-        problems.append("geom_lat and geom_lon differ in length")
-    if not problems and m:
-        if int(g.head.min()) < 0 or int(g.head.max()) >= n:
-            problems.append("head holds node indices outside 0..nodes-1")
-        if not np.all(np.isfinite(g.travel_time_s)) or float(g.travel_time_s.min()) < 0:
+    if g.geom_lat.shape != g.geom_lon.shape or g.geom_lat.ndim != 1:
+        problems.append("geom_lat and geom_lon must be one-dimensional and of equal length")
+    else:
+        pointer("geom_indptr", g.geom_indptr, m, g.geom_lat.shape[0], "the geometry points")
+    pointer("way_indptr", g.way_indptr, m, g.way_id.shape[0], "the way ids")
+    r = g.turn_kind.shape[0]
+    pointer("turn_indptr", g.turn_indptr, r, g.turn_edges.shape[0], "the restriction edges")
+    if problems:  # the value checks below index with these shapes
+        raise CorruptGraphFile(f"{where}: " + "; ".join(problems))
+
+    def in_range(name: str, arr: np.ndarray, hi: int) -> None:
+        if arr.size and (int(arr.min()) < 0 or int(arr.max()) >= hi):
+            problems.append(f"{name} holds indices outside 0..{hi - 1}")
+
+    in_range("head", g.head, n)
+    in_range("component", g.component, max(n, 1))
+    in_range("turn_edges", g.turn_edges, max(m, 1))
+    finite = (
+        ("lat", g.lat, -90.0, 90.0),
+        ("lon", g.lon, -180.0, 180.0),
+        ("geom_lat", g.geom_lat, -90.0, 90.0),
+        ("geom_lon", g.geom_lon, -180.0, 180.0),
+    )
+    for name, arr, lo, hi in finite:
+        if arr.size and not bool(np.all((arr >= lo) & (arr <= hi))):  # NaN fails both
+            problems.append(f"{name} holds values that are not finite degrees in [{lo:g}, {hi:g}]")
+    if m:
+        if not bool(np.all(np.isfinite(g.travel_time_s))) or float(g.travel_time_s.min()) < 0:
             problems.append("travel_time_s holds negative or non-finite costs")
+        if not bool(np.all(np.isfinite(g.length_m))) or float(g.length_m.min()) < 0:
+            problems.append("length_m holds negative or non-finite lengths")
+        if not bool(np.all(g.speed_kph > 0)) or not bool(np.all(np.isfinite(g.speed_kph))):
+            problems.append("speed_kph holds speeds that are not finite and positive")
+    if r:
+        lens = np.diff(g.turn_indptr)
+        if int(lens.min()) < 2:
+            problems.append("a turn restriction has fewer than two edges")
+        elif not bool(np.all((g.turn_kind == TURN_NO) | (g.turn_kind == TURN_ONLY))):
+            problems.append(
+                f"turn_kind holds values other than {TURN_NO} (no) and {TURN_ONLY} (only)"
+            )
+        elif not problems:
+            # consecutive edges of one restriction must meet: head of one = tail of the next
+            seq = np.asarray(g.turn_edges, dtype=np.int64)
+            last = np.asarray(g.turn_indptr[1:], dtype=np.int64) - 1
+            pair = np.ones(seq.shape[0], dtype=bool)
+            pair[last] = False  # no pair from a restriction's last edge to the next's first
+            pair[-1] = False
+            i = np.flatnonzero(pair)
+            if i.size and not bool(np.all(g.head[seq[i]] == g.tail[seq[i + 1]])):
+                problems.append("a turn restriction's edges do not follow each other")
     if problems:
         raise CorruptGraphFile(f"{where}: " + "; ".join(problems))

@@ -21,7 +21,7 @@ from dueroute.planner.errors import (
     InvalidRequest,
     NodeNotFound,
 )
-from dueroute.planner.graph import REQUIRED_ARRAYS, RoadGraph, hilbert_order, load_graph, save_graph
+from dueroute.planner.graph import ALL_ARRAYS, RoadGraph, hilbert_order, load_graph, save_graph
 from dueroute.service.cli.main import main as cli_main
 from tests.conftest import TINY_NODES, make_tiny_graph
 
@@ -54,7 +54,7 @@ def saved_tiny(tmp_path: Path, tiny_graph: RoadGraph) -> Path:
 def test_save_load_round_trip_keeps_every_array(tiny_graph: RoadGraph, saved_tiny: Path) -> None:
     """Every array survives save -> load bit for bit; numpy.load (numpy's own reader) agrees."""
     loaded = load_graph(saved_tiny)
-    for name in REQUIRED_ARRAYS:
+    for name in ALL_ARRAYS:
         a, b = getattr(tiny_graph, name), getattr(loaded, name)
         assert a.dtype == b.dtype, name
         np.testing.assert_array_equal(a, b, err_msg=name)
@@ -63,7 +63,7 @@ def test_save_load_round_trip_keeps_every_array(tiny_graph: RoadGraph, saved_tin
     assert loaded.fingerprint == tiny_graph.fingerprint
     # The file is a plain .npz: numpy alone reads the same arrays.
     with np.load(saved_tiny, allow_pickle=False) as npz:
-        for name in REQUIRED_ARRAYS:
+        for name in ALL_ARRAYS:
             np.testing.assert_array_equal(npz[name], getattr(tiny_graph, name), err_msg=name)
         assert json.loads(str(npz["meta"][()]))["edges"] == tiny_graph.n_edges
 
@@ -283,6 +283,14 @@ def _corrupt_cases(good: Path, tmp: Path) -> dict[str, tuple[Path, str]]:
     with np.load(good) as npz:
         indptr = npz["indptr"].copy()
         head = npz["head"]
+        lat = npz["lat"].copy()
+        geom_indptr = npz["geom_indptr"].copy()
+    nan_lat = lat.copy()
+    nan_lat[3] = np.nan
+    bad_geom = geom_indptr.copy()
+    bad_geom[-1] += 7  # points past the end of geom_lat
+    meta = json.loads(str(np.load(good)["meta"][()]))
+    future = dict(meta, format_version=99)
     bad_indptr = indptr.copy()
     bad_indptr[-1] += 5
     truncated = tmp / "truncated.npz"
@@ -307,6 +315,27 @@ def _corrupt_cases(good: Path, tmp: Path) -> dict[str, tuple[Path, str]]:
             _rewrite(good, tmp / "head.npz", {"head": head + 1000}),
             "head",
         ),
+        "NaN latitude": (_rewrite(good, tmp / "nan.npz", {"lat": nan_lat}), "lat holds values"),
+        "geometry index past the end": (
+            _rewrite(good, tmp / "geom.npz", {"geom_indptr": bad_geom}),
+            "geom_indptr",
+        ),
+        "restriction edge out of range": (
+            _rewrite(
+                good,
+                tmp / "turns.npz",
+                {
+                    "turn_indptr": np.array([0, 2], dtype=np.int64),
+                    "turn_edges": np.array([0, 10_000], dtype=np.int32),
+                    "turn_kind": np.array([0], dtype=np.int8),
+                },
+            ),
+            "turn_edges holds indices outside",
+        ),
+        "newer format": (
+            _rewrite(good, tmp / "future.npz", {"meta": np.array(json.dumps(future))}),
+            "format version 99",
+        ),
         "not a zip": (not_zip, "not a readable compiled graph"),
         "compressed members": (deflated, "compressed"),
     }
@@ -323,6 +352,64 @@ def test_corrupt_files_raise_corrupt_graph_file(saved_tiny: Path, tmp_path: Path
                 np.load(path) as npz,
             ):
                 [npz[k] for k in npz.files]
+
+
+def test_version_1_file_loads_without_way_ids_or_restrictions(
+    saved_tiny: Path, tmp_path: Path
+) -> None:
+    """A file written before format version 2 (no way ids, no restrictions) still loads."""
+    meta = json.loads(str(np.load(saved_tiny)["meta"][()]))
+    old = {
+        name: None for name in ("way_indptr", "way_id", "turn_indptr", "turn_edges", "turn_kind")
+    }
+    old["meta"] = np.array(json.dumps(dict(meta, format_version=1)))
+    g = load_graph(_rewrite(saved_tiny, tmp_path / "v1.npz", old))
+    assert g.n_restrictions == 0
+    assert g.way_indptr.shape == (g.n_edges + 1,) and g.edge_ways(0).size == 0
+
+
+def test_way_ids_and_restrictions_follow_the_edge_renumbering() -> None:
+    """build_graph renumbers edges into CSR order; way ids and restriction sequences given in
+    input edge order must name the same (tail, head) pairs afterwards (checked by osm_id)."""
+    lat = np.array([45.0, 45.0, 45.01, 45.01])
+    lon = np.array([7.0, 7.01, 7.01, 7.0])
+    osm_id = np.array([10, 11, 12, 13])
+    # input edges, deliberately not in CSR order: 3->0, 1->2, 0->1, 2->3
+    tail = np.array([3, 1, 0, 2])
+    head = np.array([0, 2, 1, 3])
+    ways = [[903], [901, 902], [900], [902]]
+    way_indptr = np.cumsum([0] + [len(w) for w in ways])
+    from dueroute.planner.graph import build_graph
+
+    g = build_graph(
+        lat=lat,
+        lon=lon,
+        osm_id=osm_id,
+        tail=tail,
+        head=head,
+        length_m=np.full(4, 1000.0),
+        speed_kph=np.full(4, 50.0, dtype=np.float32),
+        road_class=np.zeros(4, dtype=np.int8),
+        speed_source=np.zeros(4, dtype=np.int8),
+        way_indptr=way_indptr,
+        way_id=np.concatenate(ways),
+        # no turn 0->1 then 1->2 (input edges 2, 1); only 1->2->3 (input edges 1, 3)
+        turn_indptr=np.array([0, 2, 4]),
+        turn_edges=np.array([2, 1, 1, 3]),
+        turn_kind=np.array([0, 1], dtype=np.int8),
+        spatial_order=True,
+    )
+    ids = np.asarray(g.osm_id)
+    by_pair = {
+        (int(ids[g.tail[e]]), int(ids[g.head[e]])): g.edge_ways(e).tolist()
+        for e in range(g.n_edges)
+    }
+    assert by_pair == {(13, 10): [903], (11, 12): [901, 902], (10, 11): [900], (12, 13): [902]}
+    kinds = []
+    for i in range(g.n_restrictions):
+        kind, edges = g.restriction(i)
+        kinds.append((kind, [(int(ids[g.tail[e]]), int(ids[g.head[e]])) for e in edges]))
+    assert kinds == [("no", [(10, 11), (11, 12)]), ("only", [(11, 12), (12, 13)])]
 
 
 def test_missing_graph_file(tmp_path: Path) -> None:
