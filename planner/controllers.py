@@ -10,7 +10,7 @@ Built-in controllers (:func:`make_controller` specs):
 ==============  ==================================================================================
 spec            behaviour
 ==============  ==================================================================================
-``fixed:W``     weight ``W`` at every step (any finite ``W >= 1``)
+``fixed:W``     weight ``W`` at every step (``W`` in ``MIN_WEIGHT..MAX_WEIGHT``, 1..5)
 ``random``      seeded random walk over :data:`WEIGHTS`: starts at a uniformly drawn weight, then
                 each step moves one place down, stays, or moves one place up (equal chances,
                 clipped at the ends) -- the random-adjustment baseline
@@ -33,14 +33,13 @@ from typing import Protocol, runtime_checkable
 import numpy as np
 
 from dueroute.planner.errors import InvalidRequest
-from dueroute.planner.session import SearchStats
-
-#: The weight set every discrete controller moves on.
-WEIGHTS: tuple[float, ...] = (1.0, 1.5, 2.0, 3.0, 4.0, 5.0)
+from dueroute.planner.limits import MAX_WEIGHT, MIN_WEIGHT, WEIGHTS, controller_spec_help
+from dueroute.planner.results import SearchStats
 
 #: Steps without a new route after which ``decreasing`` lowers the weight anyway.
 DECREASING_PATIENCE = 2
 
+#: The specs :func:`make_controller` builds (``learned`` is built by ``dueroute.policies``).
 SPECS = ("fixed:W", "random", "decreasing", "ana")
 
 
@@ -66,8 +65,10 @@ class FixedController:
     mode = "weighted"
 
     def __init__(self, weight: float) -> None:
-        if not (math.isfinite(weight) and weight >= 1.0):
-            raise InvalidRequest(f"fixed weight must be a finite number >= 1, got {weight!r}")
+        if not (math.isfinite(weight) and MIN_WEIGHT <= weight <= MAX_WEIGHT):
+            raise InvalidRequest(
+                f"fixed weight must be a number in {MIN_WEIGHT:g}..{MAX_WEIGHT:g}, got {weight!r}"
+            )
         self.weight = float(weight)
         self.name = f"fixed:{_fmt(self.weight)}"
 
@@ -165,7 +166,7 @@ def make_controller(spec: str, seed: int | None = None) -> Controller:
         except ValueError:
             raise InvalidRequest(
                 f"controller {spec!r}: weight {raw!r} is not a number; use e.g. 'fixed:1.5' "
-                "(any finite weight >= 1)"
+                f"(a weight in {MIN_WEIGHT:g}..{MAX_WEIGHT:g})"
             ) from None
         return FixedController(w)
     if s == "random":
@@ -174,10 +175,7 @@ def make_controller(spec: str, seed: int | None = None) -> Controller:
         return DecreasingController()
     if s == "ana":
         return AnaController()
-    raise InvalidRequest(
-        f"unknown controller {spec!r}; allowed: {', '.join(SPECS)} "
-        "(W a number >= 1, e.g. fixed:2), and 'learned' where the policies package provides it"
-    )
+    raise InvalidRequest(f"unknown controller {spec!r}; allowed: {controller_spec_help()}")
 
 
 __all__ = [

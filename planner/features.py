@@ -1,6 +1,6 @@
 """Versioned metalevel features: what a weight controller sees at each decision step.
 
-One function, :func:`compute_features`, turns a :class:`~planner.session.SearchStats` snapshot
+One function, :func:`compute_features`, turns a :class:`~dueroute.planner.results.SearchStats` snapshot
 into a fixed-length ``float32`` vector. Training (``policies.env``) and serving
 (``policies.runtime``) both call it, and a policy file records :data:`SCHEMA_VERSION` and
 :data:`FEATURE_NAMES`, so a policy trained on one schema is refused by a service running another.
@@ -41,12 +41,10 @@ index  name                          meaning (range)
 from __future__ import annotations
 
 import math
-from typing import TYPE_CHECKING
 
 import numpy as np
 
-if TYPE_CHECKING:  # the session imports this module; avoid a cycle at run time
-    from dueroute.planner.session import SearchStats
+from dueroute.planner.results import SearchStats
 
 #: Bumped whenever a feature is added, removed, reordered or computed differently.
 SCHEMA_VERSION = 1

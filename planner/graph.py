@@ -61,6 +61,7 @@ from dueroute.planner.errors import (
     InvalidRequest,
     NodeNotFound,
 )
+from dueroute.planner.limits import DEFAULT_SNAP_MAX_M
 
 FORMAT_VERSION = 2
 
@@ -70,8 +71,6 @@ MIN_FORMAT_VERSION = 1
 #: Mean earth radius in metres, the value osmnx uses for its great-circle lengths.
 EARTH_RADIUS_M = 6_371_009.0
 
-#: Default distance beyond which a point is "not on the road network".
-DEFAULT_SNAP_MAX_M = 500.0
 
 _NODE_ARRAYS = {
     "lat": np.float64,

@@ -100,16 +100,17 @@ from scipy.sparse.csgraph import dijkstra
 
 from dueroute.planner.errors import CorruptGraphFile, GraphFileNotFound, InvalidRequest
 from dueroute.planner.graph import RoadGraph, _npz_member_offsets, great_circle_m
+from dueroute.planner.limits import DEFAULT_LANDMARKS, MAX_LANDMARKS
 
 LANDMARK_FORMAT_VERSION = 1
 
 #: Landmark selection methods: Goldberg & Harrelson 2005 (farthest), Goldberg & Werneck 2005 (avoid).
 METHODS = ("avoid", "farthest")
 
-DEFAULT_COUNT = 16
+DEFAULT_COUNT = DEFAULT_LANDMARKS
 
 #: Upper limit on the landmark count (memory is 8 bytes x nodes x count).
-MAX_COUNT = 64
+MAX_COUNT = MAX_LANDMARKS
 
 #: Unit roundoff of float32 (round to nearest).
 _U32 = 2.0**-24

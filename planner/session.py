@@ -56,22 +56,31 @@ import threading
 import time
 import weakref
 from collections.abc import Callable
-from dataclasses import asdict, dataclass, field
-from typing import TYPE_CHECKING, Any, Protocol
+from typing import Any, Protocol
 
 import numpy as np
 
 from dueroute.planner import _kernel as K
+from dueroute.planner.controllers import Controller, make_controller
 from dueroute.planner.errors import InvalidRequest, NodeNotFound
+from dueroute.planner.features import compute_features
 from dueroute.planner.graph import RoadGraph
-
-if TYPE_CHECKING:
-    from dueroute.planner.controllers import Controller
-
-#: Longest accepted deadline (one day) and largest budget, to catch unit mistakes.
-MAX_DEADLINE_MS = 86_400_000.0
-MAX_BUDGET_EXPANSIONS = 10**12
-MAX_STEPS = 10_000
+from dueroute.planner.limits import (
+    DEFAULT_CONTROLLER,
+    DEFAULT_STEPS,
+    MAX_BUDGET_EXPANSIONS,
+    MAX_DEADLINE_MS,
+    MAX_STEPS,
+    MAX_WEIGHT,
+    MIN_WEIGHT,
+)
+from dueroute.planner.results import (
+    Improvement,
+    PlanResult,
+    SearchStats,
+    WeightStep,
+    gap_of,
+)
 
 #: Safety cap when neither a deadline nor a budget is given (see the module docstring).
 UNBOUNDED_BUDGET_PER_NODE = 20
@@ -85,141 +94,12 @@ RATE_EMA = 0.5
 #: Budget contracts check ``cancel`` at least every this many expansions.
 BUDGET_CHUNK_EXPANSIONS = 50_000
 
-STATUSES = ("optimal", "contract_spent", "no_route", "cancelled")
 MODES = ("weighted", "ana")
 _MODE_CODE = {"weighted": K.MODE_WEIGHTED, "ana": K.MODE_ANA}
 
 
 class _Event(Protocol):
     def is_set(self) -> bool: ...
-
-
-@dataclass(frozen=True)
-class Improvement:
-    """One new incumbent: when it was found and how good it was proven to be."""
-
-    elapsed_ms: float  #: since the request arrived (``started_at``)
-    expansions: int  #: total expansions when it was found
-    cost_s: float  #: route cost (sum of its edges' travel_time_s)
-    lower_bound_s: float  #: proven lower bound on the optimal cost at that moment
-    gap: float  #: (cost - bound) / cost
-    weight: float  #: weight in force when it was found
-
-
-@dataclass(frozen=True)
-class WeightStep:
-    """The weight chosen for one decision step."""
-
-    step: int
-    elapsed_ms: float  #: when the step started, since ``started_at``
-    expansions: int  #: total expansions when the step started
-    weight: float
-
-
-@dataclass(frozen=True)
-class SearchStats:
-    """Snapshot of a running search: everything the features and controllers need.
-
-    Travel times in seconds; ``None`` means "not defined yet" (no incumbent, deadline contract
-    has no expansions left). ``open_min_f_s`` is ``inf`` when the open list is empty.
-    """
-
-    incumbent_cost_s: float | None
-    lower_bound_s: float
-    open_size: int
-    open_mean_g_s: float
-    open_mean_h_s: float
-    open_min_f_s: float
-    h_start_s: float
-    expansions: int
-    expansions_left: int | None
-    contract_fraction_left: float
-    elapsed_ms: float
-    weight: float
-    mode: str
-    improvements: int
-    steps_done: int
-    steps_total: int
-    steps_since_improvement: int
-    expansions_since_improvement: int
-    cpu_share_last_step: float
-    nodes_touched: int
-    reopened: int
-    done: bool
-
-
-@dataclass
-class PlanResult:
-    """Answer of one search (see :data:`STATUSES` for ``status``).
-
-    ``route`` holds node indices (int64[k + 1]) and ``route_edges`` edge indices (int64[k], so
-    parallel edges are unambiguous); both are ``None`` when no route was found.
-    ``cost_s`` / ``gap`` are ``None`` when no route was found; ``lower_bound_s`` is ``None`` only
-    for ``no_route`` (a search stopped before its first route still proves a bound).
-    """
-
-    status: str
-    origin: int
-    destination: int
-    route: np.ndarray | None
-    route_edges: np.ndarray | None
-    cost_s: float | None
-    lower_bound_s: float | None
-    gap: float | None
-    improvements: list[Improvement]
-    weights: list[WeightStep]
-    expansions: int
-    elapsed_ms: float
-    controller: str
-    steps: int
-    mode: str = "weighted"
-    deadline_ms: float | None = None
-    budget_expansions: int | None = None
-    h_start_s: float = 0.0
-    nodes_touched: int = 0
-    extra: dict[str, Any] = field(default_factory=dict)
-
-    def to_dict(self) -> dict[str, Any]:
-        """JSON-ready dict (numpy arrays become lists; non-finite numbers become None)."""
-        out: dict[str, Any] = {
-            "status": self.status,
-            "origin": self.origin,
-            "destination": self.destination,
-            "cost_s": _json_num(self.cost_s),
-            "lower_bound_s": _json_num(self.lower_bound_s),
-            "gap": _json_num(self.gap),
-            "route": None if self.route is None else [int(x) for x in self.route],
-            "route_edges": None if self.route_edges is None else [int(x) for x in self.route_edges],
-            "expansions": self.expansions,
-            "elapsed_ms": self.elapsed_ms,
-            "controller": self.controller,
-            "mode": self.mode,
-            "steps": self.steps,
-            "deadline_ms": self.deadline_ms,
-            "budget_expansions": self.budget_expansions,
-            "h_start_s": _json_num(self.h_start_s),
-            "nodes_touched": self.nodes_touched,
-            "improvements": [
-                {k: _json_num(v) for k, v in asdict(i).items()} for i in self.improvements
-            ],
-            "weights": [asdict(w) for w in self.weights],
-        }
-        out.update(self.extra)
-        return out
-
-
-def _json_num(x: Any) -> Any:
-    if x is None:
-        return None
-    if isinstance(x, float) and not math.isfinite(x):
-        return None
-    return x
-
-
-def _gap(cost: float, bound: float) -> float:
-    if cost <= 0.0:
-        return 0.0
-    return max(0.0, (cost - bound) / cost)
 
 
 # ------------------------------------------------------------------------------------------
@@ -355,7 +235,7 @@ class Planner:
         destination: int,
         deadline_ms: float | None = None,
         budget_expansions: int | None = None,
-        steps: int = 20,
+        steps: int = DEFAULT_STEPS,
         started_at: float | None = None,
         cancel: _Event | None = None,
         mode: str = "weighted",
@@ -450,7 +330,7 @@ def validate_contract(
         d = float(deadline_ms)
         if not (math.isfinite(d) and 0.0 < d <= MAX_DEADLINE_MS):
             raise InvalidRequest(
-                f"deadline_ms must be > 0 and <= {MAX_DEADLINE_MS:.0f} (one day), got {deadline_ms!r}"
+                f"deadline_ms must be > 0 and <= {MAX_DEADLINE_MS:.0f}, got {deadline_ms!r}"
             )
         deadline_ms = d
     if budget_expansions is not None:
@@ -602,8 +482,10 @@ class Search:
         if self.done:
             return
         w = float(weight)
-        if not (math.isfinite(w) and w >= 1.0):
-            raise InvalidRequest(f"weight must be a finite number >= 1, got {weight!r}")
+        if not (math.isfinite(w) and MIN_WEIGHT <= w <= MAX_WEIGHT):
+            raise InvalidRequest(
+                f"weight must be a number in {MIN_WEIGHT:g}..{MAX_WEIGHT:g}, got {weight!r}"
+            )
         ws = self._ws
         assert ws is not None
         k = self.steps_done
@@ -657,7 +539,7 @@ class Search:
             route_edges=self._route_edges,
             cost_s=cost,
             lower_bound_s=bound,
-            gap=None if cost is None or bound is None else _gap(cost, bound),
+            gap=None if cost is None or bound is None else gap_of(cost, bound),
             improvements=list(self.improvements),
             weights=list(self.weights),
             expansions=self._expansions_now(),
@@ -766,7 +648,7 @@ class Search:
             expansions=expansions,
             cost_s=cost,
             lower_bound_s=bound,
-            gap=_gap(cost, bound),
+            gap=gap_of(cost, bound),
             weight=self.weight,
         )
         self.improvements.append(imp)
@@ -910,8 +792,8 @@ def plan(
     *,
     deadline_ms: float | None = None,
     budget_expansions: int | None = None,
-    controller: str | Controller = "decreasing",
-    steps: int = 20,
+    controller: str | Controller = DEFAULT_CONTROLLER,
+    steps: int = DEFAULT_STEPS,
     on_improvement: Callable[[Improvement], None] | None = None,
     cancel: _Event | None = None,
     seed: int | None = None,
@@ -939,9 +821,6 @@ def plan(
     started_at : float, optional
         ``time.perf_counter()`` at request arrival (the deadline counts from it).
     """
-    from dueroute.planner.controllers import make_controller
-    from dueroute.planner.features import compute_features
-
     t0 = time.perf_counter() if started_at is None else started_at
     ctrl = make_controller(controller, seed=seed) if isinstance(controller, str) else controller
     planner = planner_for(graph_or_planner)
@@ -972,8 +851,11 @@ def _check_weight(w: Any, name: str) -> float:
         x = float(w)
     except (TypeError, ValueError):
         raise InvalidRequest(f"controller {name!r} returned a non-number weight {w!r}") from None
-    if not (math.isfinite(x) and x >= 1.0):
-        raise InvalidRequest(f"controller {name!r} returned weight {w!r}; weights must be >= 1")
+    if not (math.isfinite(x) and MIN_WEIGHT <= x <= MAX_WEIGHT):
+        raise InvalidRequest(
+            f"controller {name!r} returned weight {w!r}; weights must be in "
+            f"{MIN_WEIGHT:g}..{MAX_WEIGHT:g}"
+        )
     return x
 
 

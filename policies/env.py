@@ -21,11 +21,10 @@ from typing import Any
 import gymnasium as gym
 import numpy as np
 
-from dueroute.planner.controllers import WEIGHTS
 from dueroute.planner.features import FEATURE_HIGH, FEATURE_LOW, FEATURE_NAMES, compute_features
 from dueroute.planner.graph import RoadGraph, great_circle_m
-from dueroute.planner.heuristics import DEFAULT_COUNT as DEFAULT_LANDMARKS
 from dueroute.planner.heuristics import largest_component_nodes
+from dueroute.planner.limits import DEFAULT_LANDMARKS, WEIGHTS
 from dueroute.planner.session import Planner, Search
 from dueroute.policies.export import ACTION_KINDS, action_meanings
 

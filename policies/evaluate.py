@@ -39,9 +39,9 @@ from typing import Any
 
 import numpy as np
 
-from dueroute.planner.controllers import WEIGHTS
 from dueroute.planner.features import FEATURE_NAMES
 from dueroute.planner.graph import RoadGraph
+from dueroute.planner.limits import WEIGHTS
 from dueroute.planner.session import Planner, PlanResult, SearchStats, plan
 from dueroute.policies.env import OptimalCosts, quality, sample_queries
 from dueroute.policies.runtime import LEARNED, LearnedController, Policy, resolve_controller

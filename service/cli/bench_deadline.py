@@ -20,7 +20,17 @@ from typing import Any
 import numpy as np
 
 from dueroute.planner.errors import InvalidRequest
-from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
+from dueroute.service.cli.common import (
+    GRAPH_HELP,
+    add_count_option,
+    add_json_flag,
+    add_landmarks_option,
+    add_list_option,
+    emit,
+    landmarks_for,
+    load_graph_arg,
+    progress,
+)
 
 TARGET_P99_MS = 0.5
 
@@ -34,24 +44,11 @@ def register(bench_sub: Any) -> None:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     d.add_argument("graph", metavar="GRAPH", help=GRAPH_HELP)
-    d.add_argument(
-        "--deadlines-ms",
-        type=float,
-        nargs="+",
-        default=[1.0, 2.0, 5.0, 10.0],
-        help="deadlines to test (default 1 2 5 10)",
-    )
-    d.add_argument(
-        "--controllers",
-        nargs="+",
-        default=["fixed:1", "decreasing", "ana"],
-        help="controllers to test (default fixed:1 decreasing ana)",
-    )
-    d.add_argument("--queries", type=int, default=100, help="searches per cell (default 100)")
+    add_list_option(d, "--deadlines-ms", float, [1.0, 2.0, 5.0, 10.0], "deadlines to test")
+    add_list_option(d, "--controllers", str, ["fixed:1", "decreasing", "ana"], "controllers")
+    add_count_option(d, 100, "searches per cell", old="--queries")
     d.add_argument("--seed", type=int, default=0, help="seed of the query sample (default 0)")
-    d.add_argument(
-        "--landmarks", action="store_true", help="use ALT landmarks (searches finish sooner)"
-    )
+    add_landmarks_option(d)
     add_json_flag(d)
     d.set_defaults(func=cmd_deadline)
 
@@ -77,19 +74,18 @@ def _busy_wait(deadline_ms: float) -> float:
 def cmd_deadline(args: argparse.Namespace) -> int:
     from dueroute.demo_data.queries import long_trip_pairs
     from dueroute.planner.controllers import make_controller
-    from dueroute.planner.heuristics import load_or_build_landmarks
     from dueroute.planner.session import Planner, plan
 
-    if not 1 <= args.queries <= 100_000:
-        raise InvalidRequest(f"--queries must be in 1..100000, got {args.queries}")
+    if not 1 <= args.count <= 100_000:
+        raise InvalidRequest(f"--count must be in 1..100000, got {args.count}")
     if any(not 0 < d <= 60_000 for d in args.deadlines_ms):
         raise InvalidRequest(f"--deadlines-ms must be in (0, 60000], got {args.deadlines_ms}")
     for spec in args.controllers:
         make_controller(spec)  # refuses an unknown spec with the list of allowed ones
     graph = load_graph_arg(args.graph)
-    landmarks = load_or_build_landmarks(graph, progress=True) if args.landmarks else None
+    landmarks = landmarks_for(graph, args.landmarks)
     planner = Planner(graph, landmarks=landmarks)
-    pairs, how = long_trip_pairs(graph, args.queries, np.random.default_rng(args.seed))
+    pairs, how = long_trip_pairs(graph, args.count, np.random.default_rng(args.seed))
     for o, t in pairs[:3]:  # compile and warm every code path before timing
         plan(planner, o, t, deadline_ms=1.0, controller="ana")
         plan(planner, o, t, deadline_ms=1.0, controller="decreasing")
@@ -131,7 +127,7 @@ def cmd_deadline(args: argparse.Namespace) -> int:
         "graph": str(graph.path),
         "nodes": graph.n_nodes,
         "queries": how,
-        "landmarks": bool(args.landmarks),
+        "landmarks": 0 if landmarks is None else landmarks.count,
         "target_p99_ms": TARGET_P99_MS,
         "worst_p99_ms": worst,
         "target_met": worst is not None and worst <= TARGET_P99_MS,

@@ -40,7 +40,15 @@ from typing import Any
 import numpy as np
 
 from dueroute.planner.errors import InvalidRequest
-from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
+from dueroute.service.cli.common import (
+    GRAPH_HELP,
+    add_alias,
+    add_count_option,
+    add_json_flag,
+    emit,
+    load_graph_arg,
+    progress,
+)
 
 #: (key, what, comparison, target) — the issue's targets.
 TARGETS: tuple[tuple[str, str, str, float], ...] = (
@@ -62,7 +70,7 @@ def register(bench_sub: Any) -> None:
         formatter_class=argparse.RawDescriptionHelpFormatter,
     )
     s.add_argument("graph", metavar="GRAPH", help=GRAPH_HELP)
-    s.add_argument("--queries", type=int, default=200, help="random optimal queries (default 200)")
+    add_count_option(s, 200, "random optimal queries", old="--queries")
     s.add_argument("--seed", type=int, default=0, help="seed of the query sample (default 0)")
     s.add_argument(
         "--long-trips",
@@ -77,11 +85,13 @@ def register(bench_sub: Any) -> None:
         help="ALT landmark count (default 16; built beside the graph when missing)",
     )
     s.add_argument(
-        "--networkx-queries",
+        "--networkx-count",
         type=int,
         default=5,
+        metavar="N",
         help="queries timed with networkx A* (slow; default 5, 0 skips)",
     )
+    add_alias(s, "--networkx-queries", "--networkx-count", dest="networkx_count", type=int)
     s.add_argument(
         "--large",
         metavar="GRAPH",
@@ -411,9 +421,9 @@ def cmd_search(args: argparse.Namespace) -> int:
     from dueroute.planner.heuristics import load_or_build_landmarks
     from dueroute.planner.session import Planner
 
-    n_queries = _check_count(args.queries, "--queries", 1, MAX_QUERIES)
+    n_queries = _check_count(args.count, "--count", 1, MAX_QUERIES)
     n_long = _check_count(args.long_trips, "--long-trips", 1, MAX_QUERIES)
-    n_nx = _check_count(args.networkx_queries, "--networkx-queries", 0, 1000)
+    n_nx = _check_count(args.networkx_count, "--networkx-count", 0, 1000)
     n_lm = _check_count(args.landmarks, "--landmarks", 1, 64)
     graph = load_graph_arg(args.graph)
     rng = np.random.default_rng(args.seed)

@@ -9,6 +9,7 @@ from pathlib import Path
 from typing import Any
 
 from dueroute.planner.errors import InvalidRequest
+from dueroute.service.cli.common import add_out_option, emit
 
 #: Output formats and the file suffix each needs.
 FORMATS = {"npz": ".npz", "osm": ".osm"}
@@ -28,7 +29,7 @@ def register_generate(graph_subparsers: Any) -> argparse.ArgumentParser:
         ),
     )
     p.add_argument("--size", choices=SIZES, default="demo", help="region size (default: demo)")
-    p.add_argument("-o", "--output", required=True, metavar="OUT", help="file to write")
+    add_out_option(p, required=True, metavar="OUT", help="file to write")
     p.add_argument(
         "--seed", type=int, default=None, help="generator seed (default: the scenario's)"
     )
@@ -44,9 +45,7 @@ def register_generate(graph_subparsers: Any) -> argparse.ArgumentParser:
 
 
 def cmd_generate(args: argparse.Namespace) -> int:
-    from dueroute.service.cli.common import emit
-
-    out = Path(args.output)
+    out = Path(args.out)
     fmt = args.format
     if fmt is None:
         fmt = "osm" if out.suffix == ".osm" else "npz"

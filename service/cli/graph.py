@@ -14,6 +14,7 @@ from dueroute.planner.errors import InvalidRequest
 from dueroute.service.cli.common import (
     GRAPH_HELP,
     add_json_flag,
+    add_out_option,
     emit,
     load_graph_arg,
     progress,
@@ -34,9 +35,7 @@ def register(sub: Any) -> argparse.ArgumentParser:
         help="compile an OSM XML (.osm, .osm.bz2, .xml) or GraphML map into a graph file",
     )
     imp.add_argument("source", metavar="SRC", help="map file: OSM XML or osmnx GraphML")
-    imp.add_argument(
-        "-o", "--output", required=True, metavar="OUT.npz", help="compiled graph to write"
-    )
+    add_out_option(imp, required=True, metavar="OUT.npz", help="compiled graph to write")
     imp.add_argument("--name", default=None, help="graph name (default: the map file's name)")
     imp.add_argument(
         "--no-spatial-order",
@@ -53,9 +52,7 @@ def register(sub: Any) -> argparse.ArgumentParser:
 
     plot = graph_sub.add_parser("plot", help="draw a compiled graph as a road map image")
     plot.add_argument("graph", metavar="GRAPH", help=GRAPH_HELP)
-    plot.add_argument(
-        "-o", "--output", required=True, metavar="OUT.png", help="image file (.png, .svg, .pdf)"
-    )
+    add_out_option(plot, required=True, metavar="OUT.png", help="image file (.png, .svg, .pdf)")
     plot.add_argument(
         "--bbox",
         default=None,
@@ -77,9 +74,9 @@ def cmd_import(args: argparse.Namespace) -> int:
     from dueroute.planner.graph import save_graph
     from dueroute.planner.osm_import import import_map
 
-    out = Path(args.output)
+    out = Path(args.out)
     if out.suffix != ".npz":
-        raise InvalidRequest(f"the output must be a .npz file, got {args.output!r}")
+        raise InvalidRequest(f"the output must be a .npz file, got {args.out!r}")
     started = time.perf_counter()
     with progress(total=2, desc="graph import", unit="step", disable=None) as bar:
         bar.set_postfix_str("reading map")
@@ -273,11 +270,9 @@ def road_segments(graph: Any) -> tuple[np.ndarray, np.ndarray]:
 
 
 def cmd_plot(args: argparse.Namespace) -> int:
-    out = Path(args.output)
+    out = Path(args.out)
     if out.suffix.lower() not in PLOT_SUFFIXES:
-        raise InvalidRequest(
-            f"the image must end in {', '.join(PLOT_SUFFIXES)}, got {args.output!r}"
-        )
+        raise InvalidRequest(f"the image must end in {', '.join(PLOT_SUFFIXES)}, got {args.out!r}")
     if not 20 <= args.dpi <= 1200:
         raise InvalidRequest(f"--dpi must be in 20..1200, got {args.dpi}")
     bbox = parse_bbox(args.bbox) if args.bbox is not None else None

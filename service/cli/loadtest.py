@@ -11,7 +11,18 @@ import time
 from typing import Any
 
 from dueroute.planner.errors import InvalidRequest
-from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
+from dueroute.planner.limits import DEFAULT_CONTROLLER
+from dueroute.planner.query_file import read_query_file
+from dueroute.service.cli.common import (
+    GRAPH_HELP,
+    add_alias,
+    add_json_flag,
+    add_list_option,
+    add_out_option,
+    emit,
+    load_graph_arg,
+    progress,
+)
 
 
 def _interrupt(signum: int, frame: Any) -> None:
@@ -29,24 +40,31 @@ def register(sub: Any) -> None:
         ),
     )
     p.add_argument("--url", default="http://127.0.0.1:8000", help="service base URL (loopback)")
-    p.add_argument("--graph", default=None, help=GRAPH_HELP + "; needed for --random/--reference")
+    p.add_argument("--graph", default=None, help=GRAPH_HELP + "; needed for --count/--reference")
     src = p.add_mutually_exclusive_group()
-    src.add_argument("--queries", default=None, help="CSV of 'origin,destination' node indices")
     src.add_argument(
-        "--random",
+        "--queries", default=None, metavar="FILE.csv", help="query file (origin,destination CSV)"
+    )
+    src.add_argument(
+        "--count",
         type=int,
         default=None,
         metavar="N",
         help="N random pairs connected both ways in --graph (default 200 when --graph is given)",
     )
-    p.add_argument("--concurrency", default="1,2,4,8", help="requests in flight, e.g. 1,2,4,8")
-    p.add_argument("--deadlines", default="5,10,20,50", help="deadline_ms values, e.g. 5,10,20")
+    add_alias(src, "--random", "--count", dest="count", type=int)
+    add_list_option(p, "--concurrency", int, [1, 2, 4, 8], "requests in flight, e.g. 1,2,4,8")
+    add_list_option(p, "--deadlines-ms", int, [5, 10, 20, 50], "deadline_ms values, e.g. 5,10,20")
+    add_alias(p, "--deadlines", "--deadlines-ms", dest="deadlines_ms", type=_int_list)
     p.add_argument("--duration", type=float, default=10.0, help="seconds per cell")
-    p.add_argument(
-        "--controller",
-        default="learned",
-        help="comma-separated controllers, e.g. learned,decreasing,fixed:1.5",
+    add_list_option(
+        p,
+        "--controllers",
+        str,
+        [DEFAULT_CONTROLLER],
+        "controllers, e.g. decreasing,ana,fixed:1.5,learned",
     )
+    add_alias(p, "--controller", "--controllers", dest="controllers", type=_str_list)
     p.add_argument(
         "--reference",
         action="store_true",
@@ -62,15 +80,23 @@ def register(sub: Any) -> None:
     p.add_argument("--ready-timeout", type=float, default=60.0, help="seconds to wait for /readyz")
     p.add_argument("--warmup", type=int, default=3, help="unrecorded requests per controller")
     p.add_argument("--seed", type=int, default=0, help="seed of the random queries and order")
-    p.add_argument("--out", required=True, help="directory for the summary and plots")
+    add_out_option(p, required=True, metavar="DIR", help="directory for the summary and plots")
     add_json_flag(p)
     p.set_defaults(func=run)
+
+
+def _int_list(text: str) -> list[int]:
+    return [int(v) for v in text.split(",") if v.strip()]
+
+
+def _str_list(text: str) -> list[str]:
+    return [v.strip() for v in text.split(",") if v.strip()]
 
 
 def run(args: argparse.Namespace) -> int:
     from dueroute.service.loadtest import runner as lt
 
-    controllers = tuple(dict.fromkeys(k.strip() for k in args.controller.split(",") if k.strip()))
+    controllers = tuple(dict.fromkeys(args.controllers))
     if args.warmup < 0:
         raise InvalidRequest(f"--warmup must be >= 0, got {args.warmup}")
     if args.ready_timeout <= 0 or args.ready_timeout > 600:
@@ -79,8 +105,8 @@ def run(args: argparse.Namespace) -> int:
         )
     config = lt.LoadTestConfig(
         url=args.url,
-        concurrency=lt.parse_int_list(args.concurrency, "--concurrency"),
-        deadlines_ms=lt.parse_int_list(args.deadlines, "--deadlines"),
+        concurrency=tuple(dict.fromkeys(args.concurrency)),
+        deadlines_ms=tuple(dict.fromkeys(args.deadlines_ms)),
         controllers=controllers,
         duration_s=args.duration,
         max_requests=args.max_requests,
@@ -93,15 +119,15 @@ def run(args: argparse.Namespace) -> int:
     if args.reference and graph is None:
         raise InvalidRequest("--reference needs --graph (the graph the service searches)")
     if args.queries is not None:
-        queries = lt.read_queries_csv(args.queries, graph.n_nodes if graph is not None else None)
+        queries = read_query_file(args.queries, graph.n_nodes if graph is not None else None)
         source = f"file {args.queries}"
     elif graph is not None:
         queries, source = lt.random_reachable_pairs(
-            graph, args.random if args.random is not None else 200, seed=args.seed
+            graph, args.count if args.count is not None else 200, seed=args.seed
         )
     else:
         raise InvalidRequest(
-            "no queries: pass --queries FILE.csv, or --graph GRAPH (with --random N) to draw them"
+            "no queries: pass --queries FILE.csv, or --graph GRAPH (with --count N) to draw them"
         )
     reference = lt.Reference(graph, queries) if args.reference else None
 

@@ -16,10 +16,24 @@ from typing import Any
 
 from dueroute.demo_data.build import resolve_graph_path
 from dueroute.planner.errors import InvalidRequest
-from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit
+from dueroute.service.cli.common import (
+    GRAPH_HELP,
+    add_alias,
+    add_count_option,
+    add_json_flag,
+    add_list_option,
+    add_out_option,
+    emit,
+)
 
-#: Extra spellings of generated flags (the issue's short names).
-FLAG_ALIASES = {"budget_expansions": ["--budget"]}
+#: Generated flags whose spelling is not ``--field-name``: the project's one spelling per idea
+#: (``--budget`` as in ``dueroute route``, ``--count`` for counts); ``--field-name`` stays as a
+#: deprecated alias.
+FLAG_NAMES = {
+    "budget_expansions": "--budget",
+    "n_queries": "--count",
+    "validation_queries": "--validation-count",
+}
 
 
 def register(sub: Any) -> None:
@@ -37,8 +51,12 @@ def register(sub: Any) -> None:
         ),
     )
     tr.add_argument("graph", metavar="GRAPH", help=GRAPH_HELP)
-    tr.add_argument(
-        "--out", default="policy.onnx", metavar="FILE.onnx", help="policy file to write"
+    add_out_option(
+        tr,
+        required=False,
+        default="policy.onnx",
+        metavar="FILE.onnx",
+        help="policy file to write (default policy.onnx)",
     )
     for cls, title in (
         (DQNConfig, "trainer (Double DQN)"),
@@ -67,44 +85,43 @@ def register(sub: Any) -> None:
         metavar="FILE.onnx",
         help="policy to evaluate (default: the shipped policies/default.onnx)",
     )
-    ev.add_argument("--out", required=True, metavar="DIR", help="report folder (created)")
-    ev.add_argument(
-        "--queries", type=int, default=500, metavar="N", help="held-out queries (default 500)"
-    )
+    add_out_option(ev, required=True, metavar="DIR", help="report folder (created)")
+    add_count_option(ev, 500, "held-out queries", old="--queries")
     ev.add_argument(
         "--seed", type=int, default=1000, help="seed of the held-out queries (default 1000)"
     )
-    ev.add_argument(
+    add_list_option(
+        ev,
         "--budgets",
-        type=int,
-        nargs="+",
-        default=None,
-        metavar="N",
-        help="expansion budgets (default: 0.5x, 1x, 2x the policy's trained contract)",
+        int,
+        None,
+        "expansion budgets, e.g. 7500,15000 (default: 0.5x, 1x, 2x the policy's trained contract)",
+        metavar="N,N",
     )
-    ev.add_argument(
+    add_list_option(
+        ev,
         "--deadlines-ms",
-        type=float,
-        nargs="*",
-        default=[],
-        metavar="MS",
-        help="wall-clock deadlines to compare at as well (ms)",
+        float,
+        [],
+        "wall-clock deadlines to compare at as well",
+        metavar="MS,MS",
     )
-    ev.add_argument(
+    add_list_option(
+        ev,
         "--controllers",
-        nargs="+",
-        default=None,
-        metavar="SPEC",
-        help="controllers to compare (default: fixed:1 .. fixed:5, random, decreasing, ana, "
-        "learned)",
+        str,
+        None,
+        "controllers to compare (default: fixed:1 .. fixed:5, random, decreasing, ana, learned)",
+        metavar="SPEC,SPEC",
     )
     ev.add_argument(
-        "--importance-queries",
+        "--importance-count",
         type=int,
         default=100,
         metavar="N",
-        help="queries for permutation feature importance (0 = skip)",
+        help="queries for permutation feature importance (0 = skip; default 100)",
     )
+    add_alias(ev, "--importance-queries", "--importance-count", dest="importance_count", type=int)
     ev.add_argument(
         "--landmarks",
         type=int,
@@ -140,7 +157,9 @@ def add_config_arguments(parser: Any, cls: type) -> None:
     for f in dataclasses.fields(cls):
         default = f.default
         help_text = f"{f.metadata.get('help', '')} (default: {default})"
-        flags = [_flag(f.name), *FLAG_ALIASES.get(f.name, [])]
+        flags = [FLAG_NAMES.get(f.name, _flag(f.name))]
+        if f.name in FLAG_NAMES:
+            add_alias(parser, _flag(f.name), flags[0], dest=f.name, type=type(default))
         if isinstance(default, bool):
             parser.add_argument(
                 *flags,
@@ -233,14 +252,14 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     from dueroute.policies.runtime import DEFAULT_POLICY_PATH, LEARNED, load_policy
     from dueroute.policies.train import side_files
 
-    if args.queries < 1:
-        raise InvalidRequest(f"--queries must be >= 1, got {args.queries}")
+    if args.count < 1:
+        raise InvalidRequest(f"--count must be >= 1, got {args.count}")
     if args.budgets is not None and any(b < 1 for b in args.budgets):
         raise InvalidRequest(f"--budgets must all be >= 1, got {args.budgets}")
     if any(not (math.isfinite(d) and d > 0) for d in args.deadlines_ms):
         raise InvalidRequest(f"--deadlines-ms must all be > 0, got {args.deadlines_ms}")
-    if args.importance_queries < 0:
-        raise InvalidRequest("--importance-queries must be >= 0")
+    if args.importance_count < 0:
+        raise InvalidRequest("--importance-count must be >= 0")
     controllers = tuple(args.controllers) if args.controllers else CONTROLLERS
     for spec in controllers:
         if spec != LEARNED:
@@ -257,12 +276,12 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
 
         landmarks = load_or_build_landmarks(graph, count=n_landmarks, progress=False)
     settings = EvalSettings(
-        n_queries=args.queries,
+        n_queries=args.count,
         seed=args.seed,
         budgets=args.budgets,
         deadlines_ms=list(args.deadlines_ms),
         controllers=controllers,
-        importance_queries=args.importance_queries,
+        importance_queries=args.importance_count,
     )
     train_seed = env_cfg.get("query_seed")
     if train_seed is not None and int(train_seed) == args.seed:

@@ -3,26 +3,30 @@
 from __future__ import annotations
 
 import argparse
-import csv
 import json
 import math
 import threading
-from pathlib import Path
 from typing import Any
 
+import numpy as np
+
 from dueroute.planner.errors import InvalidRequest
+from dueroute.planner.limits import DEFAULT_CONTROLLER, DEFAULT_STEPS, controller_spec_help
+from dueroute.planner.query_file import read_query_file
 from dueroute.service.cli.common import (
     GRAPH_HELP,
     _json_default,
+    add_alias,
     add_json_flag,
+    add_landmarks_option,
+    landmarks_for,
     load_graph_arg,
     progress,
 )
 
 #: Controllers the CLI accepts; ``learned`` goes through ``policies.runtime``.
 CONTROLLER_HELP = (
-    "weight controller: fixed:W (W >= 1), random, decreasing, ana, or learned "
-    "(the ONNX policy; see --policy) (default: decreasing)"
+    f"weight controller: {controller_spec_help()}; learned = the ONNX policy (see --policy)"
 )
 
 
@@ -50,17 +54,20 @@ def register(sub: Any) -> argparse.ArgumentParser:
     contract.add_argument(
         "--budget", type=int, default=None, metavar="N", help="node-expansion budget"
     )
-    p.add_argument("--controller", default="decreasing", metavar="NAME", help=CONTROLLER_HELP)
+    p.add_argument("--controller", default=DEFAULT_CONTROLLER, metavar="NAME", help=CONTROLLER_HELP)
     p.add_argument(
         "--policy", default=None, metavar="FILE.onnx", help="policy file for --controller learned"
     )
-    p.add_argument("--steps", type=int, default=20, metavar="S", help="decision steps (1..10000)")
-    p.add_argument("--seed", type=int, default=None, help="seed for the random controller")
     p.add_argument(
-        "--no-landmarks",
-        action="store_true",
-        help="ignore <graph>.landmarks.npz and use the great-circle bound alone",
+        "--steps",
+        type=int,
+        default=DEFAULT_STEPS,
+        metavar="S",
+        help=f"decision steps (1..10000; default {DEFAULT_STEPS})",
     )
+    p.add_argument("--seed", type=int, default=None, help="seed for the random controller")
+    add_landmarks_option(p)
+    add_alias(p, "--no-landmarks", "--landmarks 0", dest="landmarks", nargs=0, const=0)
     add_json_flag(p)
     p.set_defaults(func=cmd_route)
     return p
@@ -89,48 +96,6 @@ def parse_endpoint(graph: Any, text: str, what: str) -> int:
     return int(graph.check_node(node))
 
 
-def read_queries(path: str, n_nodes: int) -> list[tuple[int, int]]:
-    """Rows of a queries CSV; errors name the file and line."""
-    p = Path(path)
-    if not p.is_file():
-        raise InvalidRequest(f"queries file not found: {path}")
-    out: list[tuple[int, int]] = []
-    try:
-        with open(p, newline="", encoding="utf-8") as fh:
-            reader = csv.reader(fh)
-            header = next(reader, None)
-            if header is None or [h.strip() for h in header[:2]] != ["origin", "destination"]:
-                raise InvalidRequest(
-                    f"{path}: line 1 must be the header 'origin,destination', got "
-                    f"{','.join(header) if header else 'an empty file'!r}"
-                )
-            for row in reader:
-                line = reader.line_num
-                if not row or all(not c.strip() for c in row):
-                    continue
-                if len(row) < 2:
-                    raise InvalidRequest(f"{path}: line {line}: expected 2 columns, got {row!r}")
-                try:
-                    s, t = int(row[0].strip()), int(row[1].strip())
-                except ValueError:
-                    raise InvalidRequest(
-                        f"{path}: line {line}: origin and destination must be integer node "
-                        f"indices, got {row[0]!r},{row[1]!r}"
-                    ) from None
-                for v in (s, t):
-                    if not 0 <= v < n_nodes:
-                        raise InvalidRequest(
-                            f"{path}: line {line}: node {v} is not in the graph "
-                            f"(valid node indices are 0..{n_nodes - 1})"
-                        )
-                out.append((s, t))
-    except UnicodeDecodeError:
-        raise InvalidRequest(f"{path}: not a UTF-8 text CSV file") from None
-    if not out:
-        raise InvalidRequest(f"{path}: no queries after the header")
-    return out
-
-
 def _controller_factory(spec: str, policy_path: str | None, seed: int | None) -> Any:
     """Validate ``spec`` now (one clear error) and return a factory of fresh controllers."""
     if spec.strip() == "learned":
@@ -147,17 +112,6 @@ def _controller_factory(spec: str, policy_path: str | None, seed: int | None) ->
     return lambda: make_controller(spec, seed=seed)
 
 
-def _landmarks_for(graph: Any, disabled: bool) -> Any:
-    if disabled or graph.path is None:
-        return None
-    from dueroute.planner.heuristics import landmarks_path, load_landmarks
-
-    lp = landmarks_path(graph.path)
-    if not lp.is_file():
-        return None
-    return load_landmarks(lp, graph)
-
-
 def cmd_route(args: argparse.Namespace) -> int:
     from dueroute.planner.session import Planner, plan, validate_contract
 
@@ -172,7 +126,7 @@ def cmd_route(args: argparse.Namespace) -> int:
     make = _controller_factory(args.controller, args.policy, args.seed)
 
     graph = load_graph_arg(args.graph)
-    planner = Planner(graph, landmarks=_landmarks_for(graph, args.no_landmarks))
+    planner = Planner(graph, landmarks=landmarks_for(graph, args.landmarks))
     planner.warm_up()  # JIT compile or cache load stays out of the first deadline
     if single:
         queries = [
@@ -182,7 +136,7 @@ def cmd_route(args: argparse.Namespace) -> int:
             )
         ]
     else:
-        queries = read_queries(args.queries, graph.n_nodes)
+        queries = read_query_file(args.queries, graph.n_nodes)
 
     cancel = threading.Event()
     results = []
@@ -201,7 +155,9 @@ def cmd_route(args: argparse.Namespace) -> int:
                 seed=args.seed,
             )
             d = res.to_dict()
-            d["nodes"] = d["route"]
+            d["node_ids"] = (
+                None if res.route is None else np.asarray(graph.osm_id)[res.route].tolist()
+            )
             if args.json:
                 bar.clear()
                 print(json.dumps(d, default=_json_default), flush=True)
@@ -225,10 +181,10 @@ def _fmt_s(x: float | None) -> str:
 
 
 def _format(d: dict[str, Any]) -> str:
-    head = f"{d['origin']} -> {d['destination']}: {d['status']}"
+    head = f"{d['origin_node']} -> {d['destination_node']}: {d['status']}"
     if d["cost_s"] is None:
         return f"{head}; {d['expansions']:,} expansions in {d['elapsed_ms']:.2f} ms"
-    nodes = d["nodes"] or []
+    nodes = d["node_indices"] or []
     return (
         f"{head}; cost {_fmt_s(d['cost_s'])}, bound {_fmt_s(d['lower_bound_s'])}, "
         f"gap {100 * (d['gap'] or 0.0):.2f}%; {len(nodes)} nodes; "

@@ -173,65 +173,8 @@ class LoadTestConfig:
         ]
 
 
-def parse_int_list(text: str, what: str) -> tuple[int, ...]:
-    """``"1,2,4"`` -> ``(1, 2, 4)`` with a clear error naming the flag."""
-    out = []
-    for part in text.split(","):
-        part = part.strip()
-        if not part:
-            continue
-        try:
-            out.append(int(part))
-        except ValueError:
-            raise InvalidRequest(
-                f"{what} takes comma-separated integers such as 1,2,4, got {text!r}"
-            ) from None
-    if not out:
-        raise InvalidRequest(f"{what} needs at least one value, got {text!r}")
-    return tuple(dict.fromkeys(out))  # keep order, drop repeats
-
-
 # --------------------------------------------------------------------------------------------
 # Queries
-
-
-def read_queries_csv(path: str | Path, n_nodes: int | None = None) -> list[tuple[int, int]]:
-    """Read ``origin,destination`` node-index pairs (an optional header line is skipped).
-
-    Raises :class:`InvalidRequest` naming the file and line of the first bad row, and when a
-    node index is outside ``0..n_nodes-1`` (if ``n_nodes`` is known).
-    """
-    path = Path(path)
-    if not path.is_file():
-        raise InvalidRequest(f"query file not found: {path}")
-    pairs: list[tuple[int, int]] = []
-    with open(path, newline="", encoding="utf-8") as fh:
-        for lineno, row in enumerate(csv.reader(fh), start=1):
-            cells = [c.strip() for c in row]
-            if not cells or all(not c for c in cells) or cells[0].startswith("#"):
-                continue
-            if lineno == 1 and cells[:2] == ["origin", "destination"]:
-                continue
-            if len(cells) < 2:
-                raise InvalidRequest(
-                    f"{path}:{lineno}: expected 'origin,destination' node indices, got {row!r}"
-                )
-            try:
-                o, d = int(cells[0]), int(cells[1])
-            except ValueError:
-                raise InvalidRequest(
-                    f"{path}:{lineno}: node indices must be integers, got {cells[:2]!r}"
-                ) from None
-            for v in (o, d):
-                if v < 0 or (n_nodes is not None and v >= n_nodes):
-                    limit = f"0..{n_nodes - 1}" if n_nodes is not None else ">= 0"
-                    raise InvalidRequest(
-                        f"{path}:{lineno}: node {v} is not in the graph (valid: {limit})"
-                    )
-            pairs.append((o, d))
-    if not pairs:
-        raise InvalidRequest(f"{path} holds no 'origin,destination' rows")
-    return pairs
 
 
 def random_reachable_pairs(graph: Any, n: int, seed: int = 0) -> tuple[list[tuple[int, int]], str]:

@@ -485,4 +485,4 @@ async def _sweep(state: AppState) -> None:
         await asyncio.sleep(1.0)
         state.plans.expire()
         state.metrics.background.set(len(state.plans))
-        state.metrics.loop_lag.set(state.loop_lag.estimate_ms())
+        state.metrics.loop_lag.set(state.loop_lag.estimate_ms() / 1000.0)

@@ -420,7 +420,7 @@ class PlanningEngine:
             entry["route"] = {
                 "travel_time_s": entry["cost_s"],
                 "length_m": float(np.sum(self.graph.length_m[edges])),
-                "nodes": int(len(nodes)),
+                "node_count": int(len(nodes)),
             }
         job.best = (nodes, edges)  # one assignment: readers see both or neither
         job.best_cost_s = entry["cost_s"]

@@ -31,7 +31,7 @@ _LATENCY_BUCKETS_S = (
     60.0,
 )
 _GAP_BUCKETS = (0.0, 0.001, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.5, 1.0)
-_LATE_BUCKETS_MS = (0.0, 0.5, 1.0, 2.0, 5.0, 10.0, 25.0, 100.0)
+_LATE_BUCKETS_S = (0.0, 0.0005, 0.001, 0.002, 0.005, 0.01, 0.025, 0.1)
 
 
 class ServiceMetrics:
@@ -81,13 +81,13 @@ class ServiceMetrics:
             registry=r,
         )
         self.late = Histogram(
-            "dueroute_plan_late_ms",
+            "dueroute_plan_late_seconds",
             "How far past arrival + deadline_ms an answer was built (0 when on time)",
-            buckets=_LATE_BUCKETS_MS,
+            buckets=_LATE_BUCKETS_S,
             registry=r,
         )
         self.loop_lag = Gauge(
-            "dueroute_loop_lag_ms",
+            "dueroute_loop_lag_seconds",
             "Largest event-loop timer lag in the last second (added to the response headroom)",
             registry=r,
         )

@@ -28,10 +28,12 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
+from dueroute.planner import limits
+
 log = logging.getLogger("dueroute.service.policy")
 
 #: Controller that serves ``learned`` while no policy is active.
-FALLBACK_CONTROLLER = "decreasing"
+FALLBACK_CONTROLLER = limits.FALLBACK_CONTROLLER
 
 #: How many earlier policies rollback can return to.
 HISTORY_LIMIT = 20

@@ -17,10 +17,14 @@ from pydantic import (
     StrictInt,
 )
 
-#: Largest deadline the schema allows; the service may be configured lower.
-MAX_DEADLINE_MS = 60_000
+from dueroute.planner import limits
 
-#: ``fixed:W`` with W in [1, 5]; the pattern alone says it, so OpenAPI clients see the rule.
+#: Largest deadline the schema allows (``dueroute.planner.limits``); the service may be
+#: configured lower.
+MAX_DEADLINE_MS = int(limits.MAX_DEADLINE_MS)
+
+#: ``fixed:W`` with W in ``limits.MIN_WEIGHT..MAX_WEIGHT`` (1..5); the pattern alone says it,
+#: so OpenAPI clients see the rule (a test checks it against ``planner.controllers``).
 CONTROLLER_PATTERN = r"^(learned|decreasing|ana|random|fixed:([1-4](\.[0-9]+)?|5(\.0+)?))$"
 
 PlanStatus = Literal["running", "optimal", "contract_spent", "no_route", "cancelled"]
@@ -82,9 +86,9 @@ class PlanRequest(BaseModel):
         description="answer by arrival + deadline_ms (+ the documented tolerance)",
     )
     controller: str = Field(
-        default="learned",
+        default=limits.DEFAULT_CONTROLLER,
         pattern=CONTROLLER_PATTERN,
-        description="learned | decreasing | ana | random | fixed:W (W in 1..5)",
+        description="weight controller: " + limits.controller_spec_help(),
     )
     wait: StrictBool = Field(
         True, description="true: answer with the plan; false: 202 and run in the background"

@@ -70,13 +70,13 @@ def test_bench_search_json_smoke(tmp_path: Path, capsys: pytest.CaptureFixture[s
     code, out, _ = run_bench(
         capsys,
         str(graph),
-        "--queries",
+        "--count",
         "6",
         "--long-trips",
         "3",
         "--landmarks",
         "4",
-        "--networkx-queries",
+        "--networkx-count",
         "2",
         "--large",
         str(graph),
@@ -107,13 +107,13 @@ def test_bench_search_table_and_skips(tmp_path: Path, capsys: pytest.CaptureFixt
     code, out, _ = run_bench(
         capsys,
         str(graph),
-        "--queries",
+        "--count",
         "3",
         "--long-trips",
         "2",
         "--landmarks",
         "2",
-        "--networkx-queries",
+        "--networkx-count",
         "0",
         "--skip-large",
         "--skip-order",
@@ -129,7 +129,7 @@ def test_bench_says_when_networkx_is_missing(
     graph = grid_graph_file(tmp_path / "grid.npz", side=5)
     monkeypatch.setitem(sys.modules, "networkx", None)  # import networkx -> ImportError
     code, out, _ = run_bench(
-        capsys, str(graph), "--queries", "2", "--long-trips", "1", "--landmarks", "2",
+        capsys, str(graph), "--count", "2", "--long-trips", "1", "--landmarks", "2",
         "--skip-large", "--skip-order", "--json",
     )  # fmt: skip
     assert code == 0
@@ -142,7 +142,7 @@ def test_bench_says_when_networkx_is_missing(
 @pytest.mark.parametrize(
     ("argv", "message"),
     [
-        (["--queries", "0"], "--queries must be between 1 and"),
+        (["--count", "0"], "--count must be between 1 and"),
         (["--landmarks", "0"], "--landmarks must be between 1 and 64"),
     ],
 )
@@ -194,7 +194,7 @@ def test_bench_deadline_json_smoke(tmp_path: Path, capsys: pytest.CaptureFixture
     """
     path = grid_graph_file(tmp_path / "grid.npz", side=30)
     code = main(
-        ["bench", "deadline", str(path), "--queries", "4", "--deadlines-ms", "0.05", "5", "--json"]
+        ["bench", "deadline", str(path), "--count", "4", "--deadlines-ms", "0.05,5", "--json"]
     )
     out, _ = capsys.readouterr()
     assert code == 0

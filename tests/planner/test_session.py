@@ -347,8 +347,14 @@ def test_bad_input_raises_named_errors() -> None:
     with pytest.raises(InvalidRequest, match="unknown controller"):
         plan(planner, 0, 3, budget_expansions=10, controller="fastest")
     search = planner.start(0, 3, budget_expansions=10)
-    with pytest.raises(InvalidRequest, match="weight must be a finite number >= 1"):
+    with pytest.raises(InvalidRequest, match=r"weight must be a number in 1..5"):
         search.run_step(0.5)
+    with pytest.raises(InvalidRequest, match=r"weight must be a number in 1..5"):
+        search.run_step(7.0)
+    with pytest.raises(InvalidRequest, match=r"fixed weight must be a number in 1..5"):
+        plan(planner, 0, 3, budget_expansions=10, controller="fixed:6")
+    with pytest.raises(InvalidRequest, match="deadline_ms must be > 0 and <= 60000"):
+        plan(planner, 0, 3, deadline_ms=60_001)
 
 
 def test_threads_search_concurrently_on_one_planner() -> None:

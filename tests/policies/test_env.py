@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from gymnasium.utils.env_checker import check_env
 
-from dueroute.planner.controllers import WEIGHTS
+from dueroute.planner.limits import WEIGHTS
 from dueroute.planner.session import plan
 from dueroute.policies.env import ENV_ID, OptimalCosts, WeightControlEnv, quality, sample_queries
 

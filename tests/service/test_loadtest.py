@@ -374,26 +374,45 @@ def test_bad_grid_values_are_refused() -> None:
         _config(deadlines_ms=(70_000,))
     with pytest.raises(InvalidRequest, match="duration"):
         _config(duration_s=float("inf"))
-    with pytest.raises(InvalidRequest, match="comma-separated"):
-        lt.parse_int_list("1,two", "--concurrency")
+
+
+def test_cli_lists_are_comma_separated_and_checked(capsys: pytest.CaptureFixture[str]) -> None:
+    """One list syntax: ``--concurrency 1,2``; a bad item exits 2 naming the option; the old
+    spellings (``--deadlines``, ``--controller``, ``--random``) still parse, with a warning."""
+    from dueroute.service.cli.main import build_parser
+
+    parser = build_parser()
+    args = parser.parse_args(
+        ["loadtest", "--concurrency", "1,2", "--deadlines-ms", "5,10", "--out", "x"]
+    )
+    assert (args.concurrency, args.deadlines_ms, args.out) == ([1, 2], [5, 10], "x")
+    with pytest.raises(SystemExit) as exc:
+        parser.parse_args(["loadtest", "--concurrency", "1,two", "--out", "x"])
+    assert (
+        exc.value.code == 2
+        and "--concurrency: 'two' is not a valid value" in capsys.readouterr().err
+    )
+    old = parser.parse_args(
+        [
+            "loadtest",
+            "--deadlines",
+            "5,20",
+            "--controller",
+            "ana,fixed:2",
+            "--random",
+            "7",
+            "--out",
+            "x",
+        ]
+    )
+    assert (old.deadlines_ms, old.controllers, old.count) == ([5, 20], ["ana", "fixed:2"], 7)
+    err = capsys.readouterr().err
+    assert "--deadlines is deprecated; use --deadlines-ms" in err
+    assert "--controller is deprecated; use --controllers" in err
 
 
 # --------------------------------------------------------------------------------------------
 # Queries
-
-
-def test_queries_csv(tmp_path: Path) -> None:
-    good = tmp_path / "good.csv"
-    good.write_text("origin,destination\n0,3\n\n# comment\n4, 2\n")
-    assert lt.read_queries_csv(good, n_nodes=5) == [(0, 3), (4, 2)]
-    bad = tmp_path / "bad.csv"
-    bad.write_text("0,3\n1,x\n")
-    with pytest.raises(InvalidRequest, match=r"bad.csv:2: node indices must be integers"):
-        lt.read_queries_csv(bad)
-    out = tmp_path / "out.csv"
-    out.write_text("0,9\n")
-    with pytest.raises(InvalidRequest, match=r"node 9 is not in the graph \(valid: 0..4\)"):
-        lt.read_queries_csv(out, n_nodes=5)
 
 
 def test_random_pairs_are_reachable() -> None:
@@ -579,10 +598,10 @@ def test_cli_run_against_a_local_server(
             "loadtest",
             "--url", url,
             "--graph", str(gpath),
-            "--random", "20",
+            "--count", "20",
             "--concurrency", "1,2",
-            "--deadlines", "5,20",
-            "--controller", "decreasing,fixed:1.5",
+            "--deadlines-ms", "5,20",
+            "--controllers", "decreasing,fixed:1.5",
             "--duration", "60",
             "--max-requests", "6",
             "--warmup", "1",
@@ -644,7 +663,7 @@ def test_interrupted_cli_writes_what_it_measured(
     out = tmp_path / "out"
     exe = Path(sys.executable).with_name("dueroute")
     argv = [str(exe), "loadtest", "--url", url, "--queries", str(q), "--concurrency", "1",
-            "--deadlines", "5", "--duration", "120", "--warmup", "0", "--out", str(out)]  # fmt: skip
+            "--deadlines-ms", "5", "--duration", "120", "--warmup", "0", "--out", str(out)]  # fmt: skip
     proc = subprocess.Popen(
         argv,
         stdout=subprocess.PIPE,

@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+import numpy as np
 import pytest
 from scipy.sparse.csgraph import dijkstra
 
@@ -35,20 +36,22 @@ def test_route_single_query_json(graph_file, capsys) -> None:
     assert len(lines) == 1
     d = json.loads(lines[0])
     for key in (
-        "origin",
-        "destination",
+        "origin_node",
+        "destination_node",
         "status",
         "cost_s",
         "lower_bound_s",
         "gap",
-        "nodes",
+        "node_indices",
+        "node_ids",
         "expansions",
         "improvements",
     ):
         assert key in d
     assert d["status"] == "optimal"
     assert d["cost_s"] == pytest.approx(dijkstra(g.csr(), indices=0)[143], rel=1e-9)
-    assert d["nodes"][0] == 0 and d["nodes"][-1] == 143
+    assert d["node_indices"][0] == 0 and d["node_indices"][-1] == 143
+    assert d["node_ids"] == np.asarray(g.osm_id)[d["node_indices"]].tolist()
 
 
 def test_route_queries_csv_and_coordinates(graph_file, tmp_path, capsys) -> None:
@@ -58,7 +61,11 @@ def test_route_queries_csv_and_coordinates(graph_file, tmp_path, capsys) -> None
     q.write_text("origin,destination\n0,143\n5,5\n\n17,100\n")
     assert main(["route", str(path), "--queries", str(q), "--budget", "50", "--json"]) == 0
     rows = [json.loads(x) for x in capsys.readouterr().out.strip().splitlines()]
-    assert [(r["origin"], r["destination"]) for r in rows] == [(0, 143), (5, 5), (17, 100)]
+    assert [(r["origin_node"], r["destination_node"]) for r in rows] == [
+        (0, 143),
+        (5, 5),
+        (17, 100),
+    ]
     assert all(r["expansions"] <= 50 for r in rows)
     lat, lon = float(g.lat[7]), float(g.lon[7])
     assert (
@@ -71,10 +78,10 @@ def test_route_queries_csv_and_coordinates(graph_file, tmp_path, capsys) -> None
 @pytest.mark.parametrize(
     ("csv_text", "message"),
     [
-        ("from,to\n0,1\n", "line 1 must be the header 'origin,destination'"),
-        ("origin,destination\n0,1\n2,x\n", "line 3: origin and destination must be integer"),
-        ("origin,destination\n0,999\n", "line 2: node 999 is not in the graph"),
-        ("origin,destination\n", "no queries after the header"),
+        ("from,to\n0,1\n", "bad.csv:1: origin and destination must be integer"),
+        ("origin,destination\n0,1\n2,x\n", "bad.csv:3: origin and destination must be integer"),
+        ("origin,destination\n0,999\n", "bad.csv:2: node 999 is not in the graph"),
+        ("origin,destination\n", "holds no 'origin,destination' pairs"),
     ],
 )
 def test_route_bad_csv_names_the_line(graph_file, tmp_path, capsys, csv_text, message) -> None:

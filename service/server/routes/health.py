@@ -51,5 +51,5 @@ async def metrics(state: StateDep) -> Response:
     m.busy_workers.set(state.admission.busy)
     m.queued.set(state.admission.queued)
     m.background.set(len(state.plans))
-    m.loop_lag.set(state.loop_lag.estimate_ms())
+    m.loop_lag.set(state.loop_lag.estimate_ms() / 1000.0)
     return Response(m.render(), media_type=m.content_type)

@@ -216,7 +216,7 @@ def _observe(state: AppState, job: PlanJob, result: dict[str, Any], now_s: float
     m.latency.observe(total_s)
     m.overhead.observe(max(0.0, total_s - result["timings"]["search_ms"] / 1000.0))
     late_ms = (total_s - job.deadline_ms / 1000.0) * 1000.0
-    m.late.observe(max(0.0, late_ms))
+    m.late.observe(max(0.0, late_ms) / 1000.0)
     if late_ms > state.settings.deadline_tolerance_ms:  # the promise broken: count and say so
         m.late_answers.inc()
         log.warning(
