@@ -27,6 +27,18 @@ class Improvement:
     lower_bound_s: float  #: proven lower bound on the optimal cost at that moment
     gap: float  #: (cost - bound) / cost
     weight: float  #: weight in force when it was found
+    #: The route itself (int64 node and edge indices), given to ``on_improvement`` callbacks
+    #: only; the improvements a result lists do not keep it (see :data:`IMPROVEMENT_FIELDS`).
+    route_nodes: np.ndarray | None = field(default=None, repr=False, compare=False)
+    route_edges: np.ndarray | None = field(default=None, repr=False, compare=False)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The published fields (:data:`IMPROVEMENT_FIELDS`), non-finite numbers as None."""
+        return {k: _json_num(getattr(self, k)) for k in IMPROVEMENT_FIELDS}
+
+
+#: What an improvement reports (JSON, HTTP answers, event streams), in this order.
+IMPROVEMENT_FIELDS = ("elapsed_ms", "expansions", "cost_s", "lower_bound_s", "gap", "weight")
 
 
 @dataclass(frozen=True)
@@ -124,9 +136,7 @@ class PlanResult:
             "budget_expansions": self.budget_expansions,
             "h_start_s": _json_num(self.h_start_s),
             "nodes_touched": self.nodes_touched,
-            "improvements": [
-                {k: _json_num(v) for k, v in asdict(i).items()} for i in self.improvements
-            ],
+            "improvements": [i.to_dict() for i in self.improvements],
             "weights": [asdict(w) for w in self.weights],
         }
         out.update(self.extra)

@@ -56,6 +56,7 @@ import threading
 import time
 import weakref
 from collections.abc import Callable
+from dataclasses import replace
 from typing import Any, Protocol
 
 import numpy as np
@@ -655,7 +656,7 @@ class Search:
         self._last_improvement_step = self.steps_done
         self._last_improvement_expansions = expansions
         if self.on_improvement is not None:
-            self.on_improvement(imp)
+            self.on_improvement(replace(imp, route_nodes=nodes, route_edges=edges))
 
     def _update_bound(self, ws: _Workspace) -> None:
         inc = float(ws.fstate[K.F_INCUMBENT])
@@ -814,7 +815,8 @@ def plan(
     steps : int
         Decision steps (the controller is asked for a weight before each).
     on_improvement : callable, optional
-        Called with every :class:`Improvement`, in the search thread.
+        Called with every :class:`Improvement`, in the search thread; the one it gets carries
+        the route (``route_nodes``, ``route_edges``).
     cancel : threading.Event-like, optional
     seed : int, optional
         Seed for randomised controllers.

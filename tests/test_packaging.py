@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import site
 import subprocess
 import sys
@@ -30,8 +31,17 @@ pytestmark = pytest.mark.slow
 @pytest.fixture(scope="module")
 def wheel(tmp_path_factory: pytest.TempPathFactory) -> Path:
     out = tmp_path_factory.mktemp("wheel")
+    # build from a copy: setuptools writes build/ and *.egg-info beside the sources
+    src = out / "src"
+    shutil.copytree(
+        ROOT,
+        src,
+        ignore=shutil.ignore_patterns(
+            ".venv", ".git", "build", "dist", "*.egg-info", "__pycache__"
+        ),
+    )
     proc = subprocess.run(
-        [sys.executable, "-m", "pip", "wheel", "--no-deps", "--quiet", "-w", str(out), str(ROOT)],
+        [sys.executable, "-m", "pip", "wheel", "--no-deps", "--quiet", "-w", str(out), str(src)],
         capture_output=True,
         text=True,
         timeout=600,

@@ -26,7 +26,8 @@ from typing import Any
 
 import numpy as np
 
-from dueroute.planner.errors import NoRoute
+from dueroute.planner.results import Improvement
+from dueroute.planner.session import plan
 from dueroute.service.server.admission import Ticket
 
 log = logging.getLogger("dueroute.service.jobs")
@@ -98,30 +99,9 @@ def route_feature(graph: Any, nodes: Any, edges: Any) -> dict[str, Any] | None:
     }
 
 
-def _as_dict(obj: Any) -> dict[str, Any]:
-    if isinstance(obj, dict):
-        return obj
-    if hasattr(obj, "to_dict"):
-        return dict(obj.to_dict())
-    if hasattr(obj, "__dataclass_fields__"):
-        return {k: getattr(obj, k) for k in obj.__dataclass_fields__}
-    return dict(vars(obj))
-
-
-_IMPROVEMENT_KEYS = ("elapsed_ms", "expansions", "cost_s", "lower_bound_s", "gap", "weight")
-
-
-def improvement_dict(imp: Any) -> dict[str, Any]:
-    """The six published fields of one improvement, as JSON-safe numbers."""
-    d = _as_dict(imp)
-    out: dict[str, Any] = {}
-    for key in _IMPROVEMENT_KEYS:
-        v = d.get(key)
-        if v is None:
-            out[key] = None
-        else:
-            out[key] = int(v) if key == "expansions" else float(v)
-    return out
+def improvement_dict(imp: Improvement) -> dict[str, Any]:
+    """The published fields of one improvement (``IMPROVEMENT_FIELDS``), JSON-safe."""
+    return imp.to_dict()
 
 
 def _float_or_none(v: Any) -> float | None:
@@ -358,13 +338,11 @@ class PlanningEngine:
     def run(self, job: PlanJob, ticket: Ticket) -> dict[str, Any]:
         """Search until the job's search deadline, the optimum, or cancellation; set ``final``.
 
-        Runs on a worker thread. The loop is :func:`planner.session.plan`'s (weight from the
-        controller before every decision step), kept here so each improvement can record the
-        route itself for the current-best view. Never raises: a failure is logged and the job
-        ends ``no_route`` with an ``error`` field, so no caller waits forever.
+        Runs on a worker thread, through :func:`dueroute.planner.session.plan` (the one search
+        loop); each improvement records its route for the current-best view. Never raises: a
+        failure is logged and the job ends ``no_route`` with an ``error`` field, so no caller
+        waits forever.
         """
-        from dueroute.planner.features import compute_features
-
         job.started_s = ticket.started_s if ticket.started_s is not None else time.perf_counter()
         remaining_ms = (job.search_deadline_s - job.started_s) * 1000.0
         result = None
@@ -375,48 +353,32 @@ class PlanningEngine:
             elif remaining_ms <= 0.0:
                 status = "contract_spent"  # admitted, but the queue ate the whole budget
             else:
-                ctrl = self.make_controller(job.controller_spec or job.controller, job.policy)
                 # Deadline counted from arrival: the search ends at job.search_deadline_s.
-                search = self.planner.start(
+                result = plan(
+                    self.planner,
                     job.origin_node,
                     job.destination_node,
                     deadline_ms=(job.search_deadline_s - job.arrival_s) * 1000.0,
+                    controller=self.make_controller(
+                        job.controller_spec or job.controller, job.policy
+                    ),
                     steps=self.steps,
-                    started_at=job.arrival_s,
+                    on_improvement=lambda imp: self._record(job, imp),
                     cancel=ticket.cancel,
-                    mode=ctrl.mode,
+                    started_at=job.arrival_s,
                 )
-                search.controller_name = ctrl.name
-
-                def on_improvement(imp: Any) -> None:
-                    self._record(job, imp, search)
-
-                search.on_improvement = on_improvement
-                weight = float(ctrl.reset(None))
-                while not search.done:
-                    search.run_step(weight)
-                    if search.done:
-                        break
-                    stats = search.stats()
-                    weight = float(ctrl.decide(compute_features(stats), stats))
-                result = search.result()
                 status = str(result.status)
-                if result.lower_bound_s is None:  # no route yet: the bound is still proven
-                    job.best_bound_s = float(search.stats().lower_bound_s)
-        except NoRoute:
-            status = "no_route"
         except Exception as exc:  # never leave a caller waiting
             log.exception("search failed", extra={"plan_id": job.plan_id})
             status = "no_route"
             error = f"{type(exc).__name__}: {exc}"
         return self.finish(job, status, result, error)
 
-    def _record(self, job: PlanJob, imp: Any, search: Any) -> None:
+    def _record(self, job: PlanJob, imp: Improvement) -> None:
         """Called in the search thread on every improvement (counts against the deadline)."""
         entry = improvement_dict(imp)
-        now = search.result()
-        nodes, edges = now.route, now.route_edges
-        if edges is not None:
+        nodes, edges = imp.route_nodes, imp.route_edges
+        if edges is not None and nodes is not None:
             entry["route"] = {
                 "travel_time_s": entry["cost_s"],
                 "length_m": float(np.sum(self.graph.length_m[edges])),

@@ -64,7 +64,12 @@ def test_plan_is_optimal_and_geojson_follows_the_roads(make_client, tiny_graph_p
 
 def test_points_snap_and_learned_falls_back_without_a_policy(make_client, tiny_graph_path):
     client = make_client(tiny_graph_path)
-    r = client.post(PLAN, json=body({"lat": 45.0001, "lon": 7.0001}, {"lat": 45.01, "lon": 7.02}))
+    r = client.post(
+        PLAN,
+        json=body(
+            {"lat": 45.0001, "lon": 7.0001}, {"lat": 45.01, "lon": 7.02}, controller="learned"
+        ),
+    )
     assert r.status_code == 200, r.text
     plan = r.json()
     assert plan["origin_node"] == 0 and plan["destination_node"] == 3
@@ -443,6 +448,6 @@ def test_the_shipped_policy_serves_learned(make_client, tiny_graph_path):
     client = make_client(tiny_graph_path, shipped_policy=True)
     info = client.get("/v1/policy").json()
     assert info["source"] == "default:default.onnx" and info["fallback_controller"] is None
-    plan = client.post(PLAN, json=body(0, 3)).json()
+    plan = client.post(PLAN, json=body(0, 3, controller="learned")).json()
     assert plan["controller"] == "learned" and plan["policy_sha256"] == info["sha256"]
     assert plan["status"] == "optimal"

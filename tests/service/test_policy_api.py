@@ -66,7 +66,13 @@ def test_good_policy_swaps_and_is_used(admin):
     assert info["trained_on"]["graph_name"] == "test"
     assert admin.get("/v1/policy").json()["sha256"] == sha
     plan = admin.post(
-        "/v1/plans", json={"origin": {"node": 0}, "destination": {"node": 3}, "deadline_ms": 100}
+        "/v1/plans",
+        json={
+            "origin": {"node": 0},
+            "destination": {"node": 3},
+            "deadline_ms": 100,
+            "controller": "learned",
+        },
     ).json()
     assert plan["controller"] == "learned" and plan["policy_sha256"] == sha
     assert f'sha256="{sha}"' in admin.get("/metrics").text
@@ -180,7 +186,12 @@ def test_requests_during_swaps_all_succeed(make_client, grid_graph_path):
             o, d = (int(x) for x in rng.integers(0, 90_000, 2))
             r = client.post(
                 "/v1/plans",
-                json={"origin": {"node": o}, "destination": {"node": d}, "deadline_ms": 200},
+                json={
+                    "origin": {"node": o},
+                    "destination": {"node": d},
+                    "deadline_ms": 200,
+                    "controller": "learned",
+                },
             )
             results.append((r.status_code, r.json().get("policy_sha256")))
 
@@ -211,6 +222,7 @@ def test_a_plan_in_flight_keeps_the_policy_it_started_with(make_client, grid_gra
             "origin": {"node": 0},
             "destination": {"node": 89_999},
             "deadline_ms": 400,
+            "controller": "learned",
             "wait": False,
         },
     )
