@@ -14,6 +14,8 @@ from pathlib import Path
 from pydantic import Field, SecretStr, field_validator, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+from dueroute.planner import limits
+
 
 def _default_policy_dir() -> Path:
     """``$XDG_STATE_HOME/dueroute/policies`` (``~/.local/state/...``): state, not cache."""
@@ -86,7 +88,10 @@ class Settings(BaseSettings):
         "a core first when every core is busy (Linux; 0 disables)",
     )
     max_deadline_ms: int = Field(
-        default=60_000, ge=1, le=60_000, description="largest deadline_ms a request may ask"
+        default=int(limits.MAX_DEADLINE_MS),
+        ge=1,
+        le=int(limits.MAX_DEADLINE_MS),
+        description="largest deadline_ms a request may ask",
     )
     max_body_bytes: int = Field(
         default=16_384, ge=256, description="largest request body (413 above)"
@@ -97,14 +102,18 @@ class Settings(BaseSettings):
         description="largest policy upload in bytes (413 above)",
     )
     snap_max_m: float = Field(
-        default=500.0, gt=0, description="a point farther than this from every road node is refused"
+        default=limits.DEFAULT_SNAP_MAX_M,
+        gt=0,
+        description="a point farther than this from every road node is refused",
     )
     landmarks: bool = Field(
         default=True,
         description="use ALT landmarks (built beside the graph on first use); false: the "
         "great-circle bound alone",
     )
-    steps: int = Field(default=20, ge=1, le=1000, description="decision steps per search")
+    steps: int = Field(
+        default=limits.DEFAULT_STEPS, ge=1, le=1000, description="decision steps per search"
+    )
     background_max: int = Field(
         default=64,
         ge=1,
