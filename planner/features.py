@@ -43,8 +43,9 @@ from __future__ import annotations
 import math
 
 import numpy as np
+from numba import njit
 
-from dueroute.planner.results import SearchStats
+from dueroute.planner.results import STATS_INDEX, SearchStats
 
 #: Bumped whenever a feature is added, removed, reordered or computed differently.
 SCHEMA_VERSION = 1
@@ -93,11 +94,70 @@ FEATURE_HIGH = np.array([hi for _, hi in FEATURE_RANGES], dtype=np.float32)
 #: Travel times are divided by ``max(h(start), H_FLOOR_S)`` so origin == destination is safe.
 H_FLOOR_S = 1.0
 
+# positions of the stats the features read (constants, so numba folds them)
+_S_INCUMBENT = STATS_INDEX["incumbent_cost_s"]
+_S_BOUND = STATS_INDEX["lower_bound_s"]
+_S_OPEN_SIZE = STATS_INDEX["open_size"]
+_S_MEAN_G = STATS_INDEX["open_mean_g_s"]
+_S_MEAN_H = STATS_INDEX["open_mean_h_s"]
+_S_MIN_F = STATS_INDEX["open_min_f_s"]
+_S_H_START = STATS_INDEX["h_start_s"]
+_S_FRAC_LEFT = STATS_INDEX["contract_fraction_left"]
+_S_WEIGHT = STATS_INDEX["weight"]
+_S_IMPROVEMENTS = STATS_INDEX["improvements"]
+_S_STEPS_DONE = STATS_INDEX["steps_done"]
+_S_STEPS_SINCE = STATS_INDEX["steps_since_improvement"]
+_S_CPU_SHARE = STATS_INDEX["cpu_share_last_step"]
+_LOW = FEATURE_LOW.astype(np.float64)
+_HIGH = FEATURE_HIGH.astype(np.float64)
 
-def _finite(x: float | None, default: float = 0.0) -> float:
-    if x is None or not math.isfinite(x):
-        return default
-    return float(x)
+
+@njit(cache=True, nogil=True)
+def _fin(x, default):
+    return x if math.isfinite(x) else default
+
+
+@njit(cache=True, nogil=True)
+def features_into(v, out):
+    """The feature vector of a stats vector (``dueroute.planner.results.STATS_FIELDS`` order)
+    written into ``out`` (float32[N_FEATURES]); the one implementation training and serving
+    share (:func:`compute_features` calls it)."""
+    inc = v[_S_INCUMBENT]
+    h_start = v[_S_H_START]
+    h0 = max(_fin(h_start, 0.0), H_FLOOR_S)
+    has_incumbent = math.isfinite(inc) and inc > 0.0
+    bound = _fin(v[_S_BOUND], 0.0)
+    open_size = max(v[_S_OPEN_SIZE], 0.0)
+    steps_done = max(v[_S_STEPS_DONE], 0.0)
+    if has_incumbent:
+        quality_estimate = min(max(bound / inc, 0.0), 1.0)
+        incumbent_rel = inc / h0
+        stale = v[_S_STEPS_SINCE] / steps_done if steps_done > 0 else 0.0
+    else:
+        quality_estimate = 0.0
+        incumbent_rel = 0.0
+        stale = 1.0
+    out[0] = 1.0 if has_incumbent else 0.0
+    out[1] = quality_estimate
+    out[2] = _fin(v[_S_FRAC_LEFT], 1.0)
+    out[3] = (_fin(v[_S_WEIGHT], 1.0) - 1.0) / 4.0
+    out[4] = math.log10(1.0 + max(_fin(h_start, 0.0), 0.0)) / 4.0
+    out[5] = math.log10(1.0 + open_size) / 6.0
+    out[6] = _fin(v[_S_MEAN_G], 0.0) / h0 if open_size > 0 else 0.0
+    out[7] = _fin(v[_S_MEAN_H], 0.0) / h0 if open_size > 0 else 0.0
+    out[8] = _fin(v[_S_MIN_F], 0.0) / h0 if open_size > 0 else bound / h0
+    out[9] = bound / h0
+    out[10] = incumbent_rel
+    out[11] = math.log1p(max(v[_S_IMPROVEMENTS], 0.0)) / 3.0
+    out[12] = stale
+    out[13] = _fin(v[_S_CPU_SHARE], 1.0)
+    for i in range(out.shape[0]):
+        x = out[i]
+        if x < _LOW[i]:
+            x = _LOW[i]
+        if x > _HIGH[i]:
+            x = _HIGH[i]
+        out[i] = x
 
 
 def compute_features(stats: SearchStats) -> np.ndarray:
@@ -113,38 +173,6 @@ def compute_features(stats: SearchStats) -> np.ndarray:
     features : float32[N_FEATURES]
         Clipped to :data:`FEATURE_LOW` .. :data:`FEATURE_HIGH`; never NaN or infinite.
     """
-    h0 = max(_finite(stats.h_start_s), H_FLOOR_S)
-    incumbent = stats.incumbent_cost_s
-    has_incumbent = incumbent is not None and math.isfinite(incumbent) and incumbent > 0
-    bound = _finite(stats.lower_bound_s)
-    # An empty open list reports no statistics: the frontier is gone, so g/h/f carry no signal.
-    open_size = max(int(stats.open_size), 0)
-    steps_done = max(int(stats.steps_done), 0)
-    if has_incumbent:
-        assert incumbent is not None
-        quality_estimate = min(max(bound / incumbent, 0.0), 1.0)
-        incumbent_rel = incumbent / h0
-        stale = int(stats.steps_since_improvement) / steps_done if steps_done else 0.0
-    else:
-        quality_estimate = 0.0
-        incumbent_rel = 0.0
-        stale = 1.0
-    values = (
-        1.0 if has_incumbent else 0.0,
-        quality_estimate,
-        _finite(stats.contract_fraction_left, 1.0),
-        (_finite(stats.weight, 1.0) - 1.0) / 4.0,
-        math.log10(1.0 + max(_finite(stats.h_start_s), 0.0)) / 4.0,
-        math.log10(1.0 + open_size) / 6.0,
-        _finite(stats.open_mean_g_s) / h0 if open_size else 0.0,
-        _finite(stats.open_mean_h_s) / h0 if open_size else 0.0,
-        _finite(stats.open_min_f_s) / h0 if open_size else bound / h0,
-        bound / h0,
-        incumbent_rel,
-        math.log1p(max(int(stats.improvements), 0)) / 3.0,
-        stale,
-        _finite(stats.cpu_share_last_step, 1.0),
-    )
-    out = np.asarray(values, dtype=np.float32)
-    np.clip(out, FEATURE_LOW, FEATURE_HIGH, out=out)
+    out = np.empty(N_FEATURES, dtype=np.float32)
+    features_into(stats.vector, out)
     return out

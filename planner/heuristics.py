@@ -2,16 +2,22 @@
 
 Kernel contract (agreed with ``planner/_kernel.py``, checked against it)
 -----------------------------------------------------------------------
-The kernel receives, from a :class:`Landmarks`, the arrays ``lm_from`` and ``lm_to``
-(``float32[n, L]``, node-major and C-contiguous: row ``v`` holds ``L`` values, ``L`` may be 0) and
-the scalar ``slack_s``, and computes for a node ``v`` and destination ``t``, in float64::
+The kernel receives, from a :class:`Landmarks`, the array ``lm`` (``uint16[n, L, 2]``,
+node-major and C-contiguous: row ``v`` holds ``L`` pairs ``(d(v -> landmark_i),
+d(landmark_i -> v))`` in units of ``unit_s`` seconds, :data:`INF_CODE` for "no path"; 4L bytes,
+one 64-byte cache line for 16 landmarks; ``L`` may be 0), the scalars ``unit_s`` and
+``slack_s``, and computes for a node ``v`` and destination ``t``, in float64::
 
     h(v) = max(chord_m(v, t) * (1 - 1e-9) / max_speed_mps,
                max_i max(lm_from[t, i] - lm_from[v, i], lm_to[v, i] - lm_to[t, i]) - slack_s,
                0)
 
-with ``lm_from[v, i] = d(landmark_i -> v)`` and ``lm_to[v, i] = d(v -> landmark_i)`` in seconds on
-free-flow costs. The kernel's first term uses the chord (straight line through the earth),
+with ``lm_from[v, i] = unit_s * lm[v, i, 1] ~ d(landmark_i -> v)`` and ``lm_to[v, i] =
+unit_s * lm[v, i, 0] ~ d(v -> landmark_i)`` in seconds on free-flow costs, ``i`` over the
+query's *active* landmarks
+(a subset; any subset gives a valid bound). The kernel also receives the landmarks'
+shortest-path trees (``tree_to``, ``tree_from``, int32[L, n], edge indices), from which it
+builds the *instant route* of every query (origin -> landmark -> destination). The kernel's first term uses the chord (straight line through the earth),
 which never exceeds the great-circle distance; :func:`great_circle_bound_s` here is the
 great-circle version of the same bound (>= the kernel's, still admissible), kept as the
 reference the tests check. ``(1 - 1e-9)`` absorbs last-bit differences between two distance
@@ -36,25 +42,25 @@ inf          inf          NaN, skipped the landmark says nothing about this pair
 gets it. Consistency ``h(v) <= c(v, w) + h(w)`` holds wherever ``h(v)`` is finite:
 ``D(w) <= D(v) + c(v, w)``, and a node the landmark reaches has successors it reaches.
 
-Float32 rounding and the slack (the math)
------------------------------------------
-Finite distances ``A, B`` in ``[0, Dmax]`` are computed in float64 and stored rounded to nearest in
-float32, ``a = A (1 + e1)``, ``b = B (1 + e2)``, ``|e| <= u = 2**-24``. Then
-``|(a - b) - (A - B)| <= u (A + B) <= 2 u Dmax``. Subtracting in float32 adds at most
-``u |a - b| <= u (1 + u) Dmax``; subtracting ``slack_s`` in float32 adds at most
-``u (Dmax + slack)``. Total rounding error ``E <= (4 u + 2 u^2) Dmax`` for any precision the
-kernel uses. We store ``slack_s = 8 u Dmax`` (rounded up to a float32), so
-``stored term - slack_s <= A - B - (8u - 4u - 2u^2) Dmax < A - B``: admissible, with a margin
-of about ``4 u Dmax`` that also covers float64 summation error in the path costs (relative
-``k * 2**-53`` for a ``k``-edge path, far below ``4 u`` for any road graph).
+Quantization and the slack (the math)
+-------------------------------------
+A search is bound by memory: each node it touches costs a cache line for its workspace record
+and one for its landmark row, so the rows are stored as 16-bit integers, one 64-byte line for
+16 landmarks (float32 rows took two lines and made every expansion a third slower). With
+``Dmax`` the largest finite distance, ``unit_s = Dmax / 65534`` and each finite distance ``A``
+is stored as ``a = round(A / unit_s)``, so ``|a * unit_s - A| <= unit_s / 2`` (plus float64
+rounding, relative 2**-53, negligible); ``65535`` (:data:`INF_CODE`) stands for "no path".
+A difference of two stored values is then off by at most ``unit_s`` from the exact difference,
+and so is a difference between a stored value and an exact one (a target row derived from
+exact partial edge costs). Subtracting ``slack_s = unit_s * (1 + 1e-6)`` keeps every ALT term
+admissible: ``stored term - slack_s < A - B``. For the demo region (``Dmax`` about 95 min) that
+is 0.09 s, against trips of minutes.
 
 Consistency survives up to the rounding: for an edge ``v -> w``,
-``h(v) <= c(v, w) + h(w) + 2 E`` (and ``2 E <= slack_s``), i.e. the stored heuristic is
-consistent within :attr:`Landmarks.consistency_tolerance_s`, a few milliseconds on a region
-whose longest trip takes hours. Subtracting a constant keeps the exact ALT potentials
+``h(v) <= c(v, w) + h(w) + 2 unit_s``, i.e. the stored heuristic is consistent within
+:attr:`Landmarks.consistency_tolerance_s`. Subtracting a constant keeps the exact ALT potentials
 consistent, and a max of consistent heuristics is consistent; only this rounding term is
-left (so "consistent" holds up to ``slack_s``, not exactly), and the kernel's reopening of
-closed nodes keeps the search exact regardless.
+left, and the kernel's reopening of closed nodes keeps the search exact regardless.
 
 Costs that only go up
 ---------------------
@@ -71,15 +77,24 @@ Landmark file
 ``<graph>.landmarks.npz`` beside the compiled graph (``demo.npz`` -> ``demo.landmarks.npz``),
 an uncompressed ``.npz`` so :func:`load_landmarks` maps the arrays from the file:
 
-==========  ===============  ===========================================================
-name        dtype, shape     meaning
-==========  ===============  ===========================================================
-``nodes``   int32[L]         landmark node indices (all in the largest strong component)
-``lm_from`` float32[n, L]    d(landmark_i -> v), ``+inf`` when there is no path
-``lm_to``   float32[n, L]    d(v -> landmark_i), ``+inf`` when there is no path
-``meta``    str (0-d)        JSON: kind, format version, graph fingerprint, method, seed,
-                             count, slack_s, max_distance_s, build_s
-==========  ===============  ===========================================================
+=============  ===============  ========================================================
+name           dtype, shape     meaning
+=============  ===============  ========================================================
+``nodes``      int32[L]         landmark node indices (all in the largest strong component)
+``lm``         uint16[n, L, 2]  ``lm[v, i, 0] ~ d(v -> landmark_i) / unit_s``, ``lm[v, i, 1]
+                                ~ d(landmark_i -> v) / unit_s``, 65535 when there is no path
+``tree_to``    int32[L, n]      edge leaving v on a shortest path v -> landmark_i (-1 at
+                                the landmark and where there is no path)
+``tree_from``  int32[L, n]      edge entering v on a shortest path landmark_i -> v (-1 as
+                                above)
+``meta``       str (0-d)        JSON: kind, format version, graph fingerprint, method, seed,
+                                count, unit_s, slack_s, max_distance_s, build_s
+=============  ===============  ========================================================
+
+Every array's data starts on a 64-byte boundary of the file (the zip entries are padded), so a
+memory-mapped row never straddles two cache lines. Format version 2 (16-bit interleaved rows,
+trees) replaced version 1 (float32 ``lm_from``/``lm_to``, no trees); a version 1 file is
+rebuilt on first use.
 """
 
 from __future__ import annotations
@@ -98,11 +113,21 @@ import numpy as np
 from numba import njit
 from scipy.sparse.csgraph import dijkstra
 
-from dueroute.planner.errors import CorruptGraphFile, GraphFileNotFound, InvalidRequest
-from dueroute.planner.graph import RoadGraph, _npz_member_offsets, great_circle_m
+from dueroute.planner.errors import (
+    CorruptGraphFile,
+    GraphFileError,
+    GraphFileNotFound,
+    InvalidRequest,
+)
+from dueroute.planner.graph import (
+    RoadGraph,
+    _npz_member_offsets,
+    great_circle_m,
+    write_npz_aligned,
+)
 from dueroute.planner.limits import DEFAULT_LANDMARKS, MAX_LANDMARKS
 
-LANDMARK_FORMAT_VERSION = 1
+LANDMARK_FORMAT_VERSION = 2
 
 #: Landmark selection methods: Goldberg & Harrelson 2005 (farthest), Goldberg & Werneck 2005 (avoid).
 METHODS = ("avoid", "farthest")
@@ -112,11 +137,11 @@ DEFAULT_COUNT = DEFAULT_LANDMARKS
 #: Upper limit on the landmark count (memory is 8 bytes x nodes x count).
 MAX_COUNT = MAX_LANDMARKS
 
-#: Unit roundoff of float32 (round to nearest).
-_U32 = 2.0**-24
+#: Code of "no path" in a landmark row; finite distances use 0..INF_CODE - 1.
+INF_CODE = 65535
 
-#: Slack as a multiple of the largest stored distance (see the module docstring).
-SLACK_FACTOR = 8.0 * _U32
+#: Slack as a multiple of the unit (see the module docstring).
+SLACK_PER_UNIT = 1.0 + 1e-6
 
 #: Multiplies the great-circle bound (the kernel uses the same factor), see great_circle_bound_s.
 GREAT_CIRCLE_SAFETY = 1.0 - 1e-9
@@ -146,17 +171,33 @@ def great_circle_bound_s(graph: RoadGraph, v: Any, t: int) -> Any:
     return dist_m * GREAT_CIRCLE_SAFETY / graph.max_speed_mps
 
 
-def slack_for(max_distance_s: float) -> float:
-    """Slack in seconds that keeps float32-stored ALT bounds admissible (module docstring).
+def unit_for(max_distance_s: float) -> float:
+    """Seconds per stored unit for distances up to ``max_distance_s`` (module docstring)."""
+    return max(float(max_distance_s), 1e-3) / (INF_CODE - 1)
 
-    The value is rounded up to the next float32, so a kernel holding it in float32 loses
-    nothing.
-    """
-    slack = SLACK_FACTOR * float(max_distance_s)
-    as32 = np.float32(slack)
-    if float(as32) < slack:
-        as32 = np.nextafter(as32, np.float32(np.inf))
-    return float(as32)
+
+def slack_for(max_distance_s: float) -> float:
+    """Slack in seconds that keeps the 16-bit ALT bounds admissible (module docstring)."""
+    return unit_for(max_distance_s) * SLACK_PER_UNIT
+
+
+def quantize(dist: np.ndarray, unit_s: float) -> np.ndarray:
+    """float64 distances (inf = no path) -> uint16 codes (:data:`INF_CODE` = no path)."""
+    q = np.full(dist.shape, INF_CODE, dtype=np.uint16)
+    finite = np.isfinite(dist)
+    q[finite] = np.minimum(np.rint(dist[finite] / unit_s), INF_CODE - 1).astype(np.uint16)
+    return q
+
+
+def dequantize(q: np.ndarray, unit_s: float) -> np.ndarray:
+    """uint16 codes -> float64 seconds (inf for :data:`INF_CODE`)."""
+    out = q.astype(np.float64) * unit_s
+    out[q == INF_CODE] = np.inf
+    return out
+
+
+class StaleLandmarks(GraphFileError):
+    """A landmark file written by another format version (derived data: rebuilt on use)."""
 
 
 @dataclass(frozen=True, eq=False)
@@ -167,12 +208,17 @@ class Landmarks:
     ----------
     nodes : int32[L]
         Landmark node indices, distinct, all in the graph's largest strong component.
-    lm_from : float32[n, L]
-        ``d(nodes[i] -> v)`` in seconds, row ``v``; ``+inf`` where no path exists.
-    lm_to : float32[n, L]
-        ``d(v -> nodes[i])`` in seconds, row ``v``; ``+inf`` where no path exists.
+    lm : uint16[n, L, 2]
+        ``lm[v, i, 0] ~ d(v -> nodes[i]) / unit_s``, ``lm[v, i, 1] ~ d(nodes[i] -> v) /
+        unit_s``; :data:`INF_CODE` where no path exists (seconds: :attr:`lm_to`,
+        :attr:`lm_from`).
+    tree_to, tree_from : int32[L, n]
+        Shortest-path trees to and from each landmark, as edge indices (-1 at the root and
+        where there is no path).
+    unit_s : float
+        Seconds per stored unit.
     slack_s : float
-        Subtracted from the landmark bound so float32 rounding never makes it inadmissible.
+        Subtracted from the landmark bound so the rounding never makes it inadmissible.
     max_distance_s : float
         Largest finite distance stored (``slack_s = slack_for(max_distance_s)``).
     method : str
@@ -182,8 +228,10 @@ class Landmarks:
     """
 
     nodes: np.ndarray
-    lm_from: np.ndarray
-    lm_to: np.ndarray
+    lm: np.ndarray
+    tree_to: np.ndarray
+    tree_from: np.ndarray
+    unit_s: float
     slack_s: float
     max_distance_s: float
     method: str
@@ -197,15 +245,27 @@ class Landmarks:
 
     @property
     def n_nodes(self) -> int:
-        return int(self.lm_from.shape[0])
+        return int(self.lm.shape[0])
+
+    @property
+    def lm_to(self) -> np.ndarray:
+        """float64[n, L] seconds (decoded): ``d(v -> landmark_i)`` as stored, inf = no path."""
+        return dequantize(np.asarray(self.lm[:, :, 0]), self.unit_s)
+
+    @property
+    def lm_from(self) -> np.ndarray:
+        """float64[n, L] seconds (decoded): ``d(landmark_i -> v)`` as stored, inf = no path."""
+        return dequantize(np.asarray(self.lm[:, :, 1]), self.unit_s)
 
     @property
     def consistency_tolerance_s(self) -> float:
-        """``h(v) <= c(v, w) + h(w) + tolerance`` for every edge (float32 rounding only)."""
-        return self.slack_s
+        """``h(v) <= c(v, w) + h(w) + tolerance`` for every edge (the rounding only)."""
+        return 2.0 * self.unit_s
 
     def check_graph(self, graph: RoadGraph) -> None:
-        """Raise :class:`InvalidRequest` unless these landmarks were built for ``graph``."""
+        """Raise :class:`InvalidRequest` unless these landmarks were built for ``graph``, and
+        :class:`CorruptGraphFile` when a tree names an edge the graph does not have (the
+        kernel walks the trees without bounds checks)."""
         if self.graph_fingerprint != graph.fingerprint or self.n_nodes != graph.n_nodes:
             where = f" in {self.path}" if self.path is not None else ""
             raise InvalidRequest(
@@ -214,6 +274,13 @@ class Landmarks:
                 f"{graph.name} (fingerprint {graph.fingerprint[:12]}..., {graph.n_nodes} nodes); "
                 "rebuild them for this graph"
             )
+        for name in ("tree_to", "tree_from"):
+            tree = getattr(self, name)
+            if tree.size and (int(tree.min()) < -1 or int(tree.max()) >= graph.n_edges):
+                raise CorruptGraphFile(
+                    f"the landmarks{'' if self.path is None else ' in ' + str(self.path)}: "
+                    f"{name} holds edge indices outside -1..{graph.n_edges - 1}; rebuild them"
+                )
 
 
 def alt_bound_s(landmarks: Landmarks, v: Any, t: int) -> Any:
@@ -234,11 +301,13 @@ def alt_bound_s(landmarks: Landmarks, v: Any, t: int) -> Any:
     if landmarks.count == 0:
         out = np.zeros(v_arr.shape[0])
     else:
-        f_t = landmarks.lm_from[t].astype(np.float64)
-        to_t = landmarks.lm_to[t].astype(np.float64)
+        rows = np.asarray(landmarks.lm)
+        unit = landmarks.unit_s
+        f_t = dequantize(rows[t, :, 1], unit)
+        to_t = dequantize(rows[t, :, 0], unit)
         with np.errstate(invalid="ignore"):  # inf - inf: no information, skipped like the kernel
-            fwd = f_t[None, :] - landmarks.lm_from[v_arr].astype(np.float64)
-            bwd = landmarks.lm_to[v_arr].astype(np.float64) - to_t[None, :]
+            fwd = f_t[None, :] - dequantize(rows[v_arr, :, 1], unit)
+            bwd = dequantize(rows[v_arr, :, 0], unit) - to_t[None, :]
         both = np.fmax(fwd, bwd)  # fmax ignores a NaN operand
         both[np.isnan(both)] = -np.inf
         out = np.maximum(np.max(both, axis=1) - landmarks.slack_s, 0.0)
@@ -320,6 +389,8 @@ def build_landmarks(
     nodes: list[int] = []
     dist_from = np.empty((count, n))  # row i: d(landmark_i -> v), float64, inf = no path
     dist_to = np.empty((count, n))  # row i: d(v -> landmark_i)
+    pred_from = np.empty((count, n), dtype=np.int64)  # predecessor of v on landmark_i -> v
+    pred_to = np.empty((count, n), dtype=np.int64)  # successor of v on v -> landmark_i
     # round-trip distance from the nearest chosen landmark, per SCC node (farthest selection)
     nearest_round_trip = np.full(scc.shape[0], np.inf)
 
@@ -350,21 +421,30 @@ def build_landmarks(
                 assert scc_forward is not None
                 candidate = _avoid_pick(scc, scc_forward, dist_from[:i], dist_to[:i], nodes, rng)
             nodes.append(candidate)
-            dist_from[i] = dijkstra(forward, indices=candidate)
-            dist_to[i] = dijkstra(backward, indices=candidate)
+            dist_from[i], pred_from[i] = dijkstra(
+                forward, indices=candidate, return_predecessors=True
+            )
+            dist_to[i], pred_to[i] = dijkstra(backward, indices=candidate, return_predecessors=True)
             nearest_round_trip = np.minimum(nearest_round_trip, dist_from[i][scc] + dist_to[i][scc])
             bar.update(1)
     finally:
         bar.close()
 
     max_distance_s = max(_finite_max(dist_from), _finite_max(dist_to))
-    lm_from = _store(dist_from)
-    lm_to = _store(dist_to)
+    unit_s = unit_for(max_distance_s)
+    lm = np.empty((n, count, 2), dtype=np.uint16)
+    lm[:, :, 0] = quantize(dist_to.T, unit_s)
+    lm[:, :, 1] = quantize(dist_from.T, unit_s)
+    edge_of = _cheapest_edge_lookup(graph)
+    tree_from = edge_of(pred_from, np.arange(n)[None, :])  # edge pred -> v
+    tree_to = edge_of(np.arange(n)[None, :], pred_to)  # edge v -> successor
     build_s = time.perf_counter() - started
     return Landmarks(
         nodes=np.asarray(nodes, dtype=np.int32),
-        lm_from=lm_from,
-        lm_to=lm_to,
+        lm=lm,
+        tree_to=tree_to,
+        tree_from=tree_from,
+        unit_s=unit_s,
         slack_s=slack_for(max_distance_s),
         max_distance_s=max_distance_s,
         method=method,
@@ -373,18 +453,38 @@ def build_landmarks(
     )
 
 
+def _cheapest_edge_lookup(graph: RoadGraph) -> Any:
+    """``edge_of(tails, heads) -> int32`` array: the cheapest edge from each tail to each head
+    (-1 where a tail is negative, i.e. scipy's "no predecessor"). The shortest-path trees come
+    from ``graph.csr()``, which keeps the cheapest of parallel edges, so this picks that one."""
+    n = graph.n_nodes
+    tail = np.asarray(graph.tail, dtype=np.int64)
+    head = np.asarray(graph.head, dtype=np.int64)
+    keys = tail * n + head
+    order = np.lexsort((np.asarray(graph.travel_time_s), keys))
+    sorted_keys = keys[order]
+    first = np.ones(order.shape[0], dtype=bool)
+    first[1:] = sorted_keys[1:] != sorted_keys[:-1]
+    uniq_keys, uniq_edges = sorted_keys[first], order[first]
+
+    def edge_of(tails: np.ndarray, heads: np.ndarray) -> np.ndarray:
+        t, h = np.broadcast_arrays(tails, heads)
+        valid = (t >= 0) & (h >= 0)
+        q = np.where(valid, t * n + h, 0)
+        pos = np.minimum(np.searchsorted(uniq_keys, q), max(uniq_keys.shape[0] - 1, 0))
+        found = valid & (uniq_keys.shape[0] > 0)
+        if uniq_keys.shape[0]:
+            found &= uniq_keys[pos] == q
+        out = np.where(found, uniq_edges[pos] if uniq_keys.shape[0] else -1, -1)
+        return np.ascontiguousarray(out, dtype=np.int32)
+
+    return edge_of
+
+
 def _finite_max(dist: np.ndarray) -> float:
     if dist.size == 0:
         return 0.0
     return float(np.max(np.where(np.isfinite(dist), dist, 0.0)))
-
-
-def _store(dist: np.ndarray) -> np.ndarray:
-    """float64[L, n] -> float32[n, L], node-major, rounded to nearest (inf stays inf).
-
-    No finite distance can overflow to inf: float32 reaches 3.4e38 s.
-    """
-    return np.ascontiguousarray(dist.T.astype(np.float32))
 
 
 def _avoid_pick(
@@ -503,6 +603,7 @@ def save_landmarks(landmarks: Landmarks, path: str | Path) -> Path:
         method=landmarks.method,
         count=landmarks.count,
         nodes=landmarks.n_nodes,
+        unit_s=landmarks.unit_s,
         slack_s=landmarks.slack_s,
         max_distance_s=landmarks.max_distance_s,
     )
@@ -510,21 +611,28 @@ def save_landmarks(landmarks: Landmarks, path: str | Path) -> Path:
     # the rename makes whichever finishes last the complete file readers see
     tmp = path.with_name(f"{path.name}.{os.getpid()}.tmp")
     try:
-        with open(tmp, "wb") as fh:
-            np.savez(
-                fh,
-                meta=np.array(json.dumps(meta, sort_keys=True)),
-                nodes=np.ascontiguousarray(landmarks.nodes, dtype=np.int32),
-                lm_from=np.ascontiguousarray(landmarks.lm_from, dtype=np.float32),
-                lm_to=np.ascontiguousarray(landmarks.lm_to, dtype=np.float32),
-            )
+        write_npz_aligned(
+            tmp,
+            {
+                "meta": np.array(json.dumps(meta, sort_keys=True)),
+                "nodes": np.ascontiguousarray(landmarks.nodes, dtype=np.int32),
+                "lm": np.ascontiguousarray(landmarks.lm, dtype=np.uint16),
+                "tree_to": np.ascontiguousarray(landmarks.tree_to, dtype=np.int32),
+                "tree_from": np.ascontiguousarray(landmarks.tree_from, dtype=np.int32),
+            },
+        )
         tmp.replace(path)
     finally:
         tmp.unlink(missing_ok=True)
     return path
 
 
-_LANDMARK_ARRAYS = {"nodes": np.int32, "lm_from": np.float32, "lm_to": np.float32}
+_LANDMARK_ARRAYS = {
+    "nodes": np.int32,
+    "lm": np.uint16,
+    "tree_to": np.int32,
+    "tree_from": np.int32,
+}
 
 
 def load_landmarks(
@@ -547,6 +655,11 @@ def load_landmarks(
             meta = json.loads(str(npz["meta"][()]))
             if not isinstance(meta, dict) or meta.get("kind") != "dueroute-landmarks":
                 raise CorruptGraphFile(f"{path}: not a dueroute landmark file")
+            if meta.get("format_version") != LANDMARK_FORMAT_VERSION:
+                raise StaleLandmarks(
+                    f"{path}: landmark file format {meta.get('format_version')!r}, this "
+                    f"dueroute writes {LANDMARK_FORMAT_VERSION}; it is rebuilt on first use"
+                )
             missing = sorted(set(_LANDMARK_ARRAYS) - set(npz.files))
             if missing:
                 raise CorruptGraphFile(f"{path}: landmark file is missing arrays {missing}")
@@ -564,11 +677,12 @@ def load_landmarks(
                     arrays[name] = np.memmap(path, dtype=dt, mode="r", offset=offset, shape=shape)
                 else:
                     arrays[name] = np.ascontiguousarray(npz[name])
+            unit_s = float(meta["unit_s"])
             slack_s = float(meta["slack_s"])
             max_distance_s = float(meta["max_distance_s"])
             method = str(meta["method"])
             graph_fingerprint = str(meta["graph_fingerprint"])
-    except (CorruptGraphFile, GraphFileNotFound):
+    except (CorruptGraphFile, GraphFileNotFound, StaleLandmarks):
         raise
     except (
         zipfile.BadZipFile,
@@ -582,8 +696,10 @@ def load_landmarks(
         raise CorruptGraphFile(f"{path}: not a readable landmark file ({exc})") from exc
     landmarks = Landmarks(
         nodes=arrays["nodes"],
-        lm_from=arrays["lm_from"],
-        lm_to=arrays["lm_to"],
+        lm=arrays["lm"],
+        tree_to=arrays["tree_to"],
+        tree_from=arrays["tree_from"],
+        unit_s=unit_s,
         slack_s=slack_s,
         max_distance_s=max_distance_s,
         method=method,
@@ -600,30 +716,25 @@ def load_landmarks(
 def _validate(lm: Landmarks, path: Path) -> None:
     """Structural checks, plus the slack the admissibility proof relies on."""
     problems = []
-    n, k = lm.lm_from.shape[0] if lm.lm_from.ndim == 2 else -1, lm.nodes.shape[0]
+    k = lm.nodes.shape[0]
+    n = lm.lm.shape[0] if lm.lm.ndim == 3 else -1
     if lm.nodes.ndim != 1:
         problems.append("nodes is not one-dimensional")
-    if lm.lm_from.shape != (n, k) or lm.lm_to.shape != (n, k):
-        problems.append(
-            f"lm_from {lm.lm_from.shape} and lm_to {lm.lm_to.shape} must both be "
-            f"(nodes, {k} landmarks)"
-        )
+    if lm.lm.shape != (n, k, 2):
+        problems.append(f"lm has shape {lm.lm.shape}, expected (nodes, {k} landmarks, 2)")
     elif k and (int(lm.nodes.min()) < 0 or int(lm.nodes.max()) >= n):
         problems.append("nodes holds indices outside the graph")
+    for name in ("tree_to", "tree_from"):
+        if getattr(lm, name).shape != (k, max(n, 0)):
+            problems.append(f"{name} has shape {getattr(lm, name).shape}, expected ({k}, nodes)")
     if lm.method not in METHODS:
         problems.append(f"unknown method {lm.method!r}")
     if not (math.isfinite(lm.max_distance_s) and lm.max_distance_s >= 0):
         problems.append("max_distance_s is not a finite non-negative number")
-    elif not lm.slack_s >= slack_for(lm.max_distance_s):
-        problems.append("slack_s is too small for the stored distances")
-    if not problems and k and n:
-        for name in ("lm_from", "lm_to"):
-            arr = getattr(lm, name)
-            # NaN fails both comparisons; +inf (no path) is allowed, -inf is not
-            if not bool(np.all(arr >= 0)):
-                problems.append(f"{name} holds negative or NaN distances")
-            elif _finite_max(arr) > lm.max_distance_s * (1 + 2 * _U32):
-                problems.append(f"{name} holds distances above the recorded maximum")
+    elif not (math.isfinite(lm.unit_s) and lm.unit_s >= unit_for(lm.max_distance_s) * 0.999999):
+        problems.append("unit_s is too small for the stored distances")
+    elif not lm.slack_s >= lm.unit_s * SLACK_PER_UNIT * 0.999999:
+        problems.append("slack_s is too small for the stored unit")
     if problems:
         raise CorruptGraphFile(f"{path}: " + "; ".join(problems))
 
@@ -651,13 +762,15 @@ def load_or_build_landmarks(
         target = landmarks_path(graph.path)
     if target is not None and target.is_file() and not rebuild:
         try:
-            found = load_landmarks(target)
+            found: Landmarks | None = load_landmarks(target)
+        except StaleLandmarks:
+            found = None  # another format version: rebuild below
         except CorruptGraphFile as exc:
             raise CorruptGraphFile(
                 f"{exc}; it is derived data: delete it and it is rebuilt from the graph"
             ) from exc
         wanted = min(int(count), int(largest_component_nodes(graph).shape[0]))
-        if (
+        if found is not None and (
             found.graph_fingerprint == graph.fingerprint
             and found.n_nodes == graph.n_nodes
             and found.count == wanted

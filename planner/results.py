@@ -9,12 +9,25 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-#: Final states of a search (``PlanResult.status``).
-STATUSES = ("optimal", "contract_spent", "no_route", "cancelled")
+#: Final states of a search (``PlanResult.status``): what the route is worth.
+#:
+#: ``optimal``   the route is proven optimal (bound = cost)
+#: ``improved``  the search found a route better than the instant one; the bound says how far
+#:               from optimal it may be (``stopped_by`` says why the search stopped: the
+#:               deadline, the budget, or the proven gap reaching the gap target)
+#: ``instant``   the instant route only (the search had no time to improve it)
+#: ``no_route``  the destination cannot be reached
+#: ``not_found`` the contract ran out before any route was found; this happens only without
+#:               an instant route (no landmarks, or a pair outside the landmarks' component)
+#: ``cancelled`` the caller stopped the search (the best route so far is still given)
+STATUSES = ("optimal", "improved", "instant", "no_route", "not_found", "cancelled")
+
+#: Why a search stopped (``PlanResult.stopped_by``).
+STOP_REASONS = ("proof", "gap_target", "deadline", "budget", "cancel", "unreachable")
 
 
 @dataclass(frozen=True)
@@ -27,6 +40,7 @@ class Improvement:
     lower_bound_s: float  #: proven lower bound on the optimal cost at that moment
     gap: float  #: (cost - bound) / cost
     weight: float  #: weight in force when it was found
+    source: str = "search"  #: ``instant`` for the instant route, else ``search``
     #: The route itself (int64 node and edge indices), given to ``on_improvement`` callbacks
     #: only; the improvements a result lists do not keep it (see :data:`IMPROVEMENT_FIELDS`).
     route_nodes: np.ndarray | None = field(default=None, repr=False, compare=False)
@@ -38,7 +52,15 @@ class Improvement:
 
 
 #: What an improvement reports (JSON, HTTP answers, event streams), in this order.
-IMPROVEMENT_FIELDS = ("elapsed_ms", "expansions", "cost_s", "lower_bound_s", "gap", "weight")
+IMPROVEMENT_FIELDS = (
+    "elapsed_ms",
+    "expansions",
+    "cost_s",
+    "lower_bound_s",
+    "gap",
+    "weight",
+    "source",
+)
 
 
 @dataclass(frozen=True)
@@ -51,36 +73,189 @@ class WeightStep:
     weight: float
 
 
-@dataclass(frozen=True)
+#: The numbers of a :class:`SearchStats` snapshot, in the order of its vector (``None`` values
+#: are stored as ``inf`` for ``incumbent_cost_s`` and -1 for ``expansions_left``).
+STATS_FIELDS: tuple[str, ...] = (
+    "incumbent_cost_s",
+    "lower_bound_s",
+    "open_size",
+    "open_mean_g_s",
+    "open_mean_h_s",
+    "open_min_f_s",
+    "h_start_s",
+    "expansions",
+    "expansions_left",
+    "contract_fraction_left",
+    "elapsed_ms",
+    "weight",
+    "improvements",
+    "steps_done",
+    "steps_total",
+    "steps_since_improvement",
+    "expansions_since_improvement",
+    "cpu_share_last_step",
+    "nodes_touched",
+    "reopened",
+    "done",
+    "expansion_rate_per_s",
+    "instant_only",
+)
+STATS_INDEX = {name: i for i, name in enumerate(STATS_FIELDS)}
+STATS_LEN = len(STATS_FIELDS)
+_INT_FIELDS = frozenset(
+    [
+        "open_size",
+        "expansions",
+        "improvements",
+        "steps_done",
+        "steps_total",
+        "steps_since_improvement",
+        "expansions_since_improvement",
+        "nodes_touched",
+        "reopened",
+    ]
+)
+_BOOL_FIELDS = frozenset(["done", "instant_only"])
+
+
 class SearchStats:
     """Snapshot of a running search: everything the features and controllers need.
 
-    Travel times in seconds; ``None`` means "not defined yet" (no incumbent, deadline contract
+    Travel times in seconds; ``None`` means "not defined yet" (no incumbent, a deadline contract
     has no expansions left). ``open_min_f_s`` is ``inf`` when the open list is empty.
+
+    Immutable and cheap: the numbers live in one float64 vector (:data:`STATS_FIELDS` order,
+    :attr:`vector`), which is what the feature function reads; attributes decode it on access.
+    Build one with keyword arguments (every field of :data:`STATS_FIELDS` plus ``mode``), or
+    take it from ``Search.stats()``.
     """
 
-    incumbent_cost_s: float | None
-    lower_bound_s: float
-    open_size: int
-    open_mean_g_s: float
-    open_mean_h_s: float
-    open_min_f_s: float
-    h_start_s: float
-    expansions: int
-    expansions_left: int | None
-    contract_fraction_left: float
-    elapsed_ms: float
-    weight: float
+    __slots__ = ("_v", "mode")
+    _v: np.ndarray
     mode: str
-    improvements: int
-    steps_done: int
-    steps_total: int
-    steps_since_improvement: int
-    expansions_since_improvement: int
-    cpu_share_last_step: float
-    nodes_touched: int
-    reopened: int
-    done: bool
+
+    if TYPE_CHECKING:  # the fields are properties made below from STATS_FIELDS
+        incumbent_cost_s: float | None
+        lower_bound_s: float
+        open_size: int
+        open_mean_g_s: float
+        open_mean_h_s: float
+        open_min_f_s: float
+        h_start_s: float
+        expansions: int
+        expansions_left: int | None
+        contract_fraction_left: float
+        elapsed_ms: float
+        weight: float
+        improvements: int
+        steps_done: int
+        steps_total: int
+        steps_since_improvement: int
+        expansions_since_improvement: int
+        cpu_share_last_step: float
+        nodes_touched: int
+        reopened: int
+        done: bool
+        expansion_rate_per_s: float
+        instant_only: bool
+
+    def __init__(self, *, mode: str = "weighted", **fields: Any) -> None:
+        missing = set(STATS_FIELDS) - set(fields) - {"expansion_rate_per_s", "instant_only"}
+        extra = set(fields) - set(STATS_FIELDS)
+        if missing or extra:
+            raise TypeError(
+                f"SearchStats fields: missing {sorted(missing)}, unknown {sorted(extra)}"
+            )
+        v = np.zeros(STATS_LEN, dtype=np.float64)
+        for name, value in fields.items():
+            v[STATS_INDEX[name]] = _encode(name, value)
+        v.flags.writeable = False
+        object.__setattr__(self, "_v", v)
+        object.__setattr__(self, "mode", mode)
+
+    @classmethod
+    def from_vector(cls, vector: np.ndarray, mode: str) -> SearchStats:
+        """Wrap a vector in :data:`STATS_FIELDS` order (it is copied, so it cannot change)."""
+        obj = object.__new__(cls)
+        v = np.array(vector, dtype=np.float64)
+        v.flags.writeable = False
+        object.__setattr__(obj, "_v", v)
+        object.__setattr__(obj, "mode", mode)
+        return obj
+
+    @property
+    def vector(self) -> np.ndarray:
+        """float64[STATS_LEN], read-only."""
+        return self._v
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        raise AttributeError("SearchStats is immutable; use replace()")
+
+    def replace(self, **changes: Any) -> SearchStats:
+        """A copy with some fields changed (like ``dataclasses.replace``)."""
+        v = self._v.copy()
+        mode = changes.pop("mode", self.mode)
+        for name, value in changes.items():
+            if name not in STATS_INDEX:
+                raise TypeError(f"SearchStats has no field {name!r}")
+            v[STATS_INDEX[name]] = _encode(name, value)
+        return SearchStats.from_vector(v, mode)
+
+    def as_dict(self) -> dict[str, Any]:
+        out = {name: getattr(self, name) for name in STATS_FIELDS}
+        out["mode"] = self.mode
+        return out
+
+    def __eq__(self, other: object) -> bool:
+        if not isinstance(other, SearchStats):
+            return NotImplemented
+        return self.mode == other.mode and bool(np.array_equal(self._v, other._v))
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __repr__(self) -> str:
+        shown = ", ".join(f"{k}={v!r}" for k, v in self.as_dict().items())
+        return f"SearchStats({shown})"
+
+
+def _decoder(name: str, i: int) -> property:
+    """A read-only property decoding field ``name`` (vector position ``i``)."""
+    if name == "incumbent_cost_s":
+
+        def get(self: SearchStats) -> Any:
+            x = float(self._v[i])
+            return None if math.isinf(x) else x
+    elif name == "expansions_left":
+
+        def get(self: SearchStats) -> Any:
+            x = float(self._v[i])
+            return None if x < 0 else int(x)
+    elif name in _INT_FIELDS:
+
+        def get(self: SearchStats) -> Any:
+            return int(self._v[i])
+    elif name in _BOOL_FIELDS:
+
+        def get(self: SearchStats) -> Any:
+            return bool(self._v[i] != 0.0)
+    else:
+
+        def get(self: SearchStats) -> Any:
+            return float(self._v[i])
+
+    return property(get, doc=f"``{name}`` (see :data:`STATS_FIELDS`)")
+
+
+for _i, _name in enumerate(STATS_FIELDS):
+    setattr(SearchStats, _name, _decoder(_name, _i))
+
+
+def _encode(name: str, value: Any) -> float:
+    if name == "incumbent_cost_s":
+        return math.inf if value is None else float(value)
+    if name == "expansions_left":
+        return -1.0 if value is None else float(value)
+    return float(value)
 
 
 @dataclass
@@ -90,7 +265,9 @@ class PlanResult:
     ``route`` holds node indices (int64[k + 1]) and ``route_edges`` edge indices (int64[k], so
     parallel edges are unambiguous); both are ``None`` when no route was found.
     ``cost_s`` / ``gap`` are ``None`` when no route was found; ``lower_bound_s`` is ``None`` only
-    for ``no_route`` (a search stopped before its first route still proves a bound).
+    for ``no_route``. ``stopped_by`` is one of :data:`STOP_REASONS`; ``instant_cost_s`` the cost
+    of the instant route the search started from (``None`` when there was none);
+    ``weight_capped`` is true when the runaway guard forced weight 1 (see ``planner.session``).
     """
 
     status: str
@@ -112,12 +289,20 @@ class PlanResult:
     budget_expansions: int | None = None
     h_start_s: float = 0.0
     nodes_touched: int = 0
+    stopped_by: str = "proof"
+    instant_cost_s: float | None = None
+    weight_capped: bool = False
+    gap_target: float = 0.0
+    #: wall time spent expanding (inside the kernel); ``elapsed_ms - kernel_ms`` is the rest:
+    #: opening the query, the instant route, decision steps, reading routes back
+    kernel_ms: float = 0.0
     extra: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
         """JSON-ready dict (numpy arrays become lists; non-finite numbers become None)."""
         out: dict[str, Any] = {
             "status": self.status,
+            "stopped_by": self.stopped_by,
             "origin_node": self.origin,
             "destination_node": self.destination,
             "cost_s": _json_num(self.cost_s),
@@ -136,6 +321,10 @@ class PlanResult:
             "budget_expansions": self.budget_expansions,
             "h_start_s": _json_num(self.h_start_s),
             "nodes_touched": self.nodes_touched,
+            "instant_cost_s": _json_num(self.instant_cost_s),
+            "weight_capped": self.weight_capped,
+            "gap_target": self.gap_target,
+            "kernel_ms": self.kernel_ms,
             "improvements": [i.to_dict() for i in self.improvements],
             "weights": [asdict(w) for w in self.weights],
         }

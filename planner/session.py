@@ -3,9 +3,20 @@
 A :class:`Planner` wraps one road graph (and optionally its ALT landmarks) and hands out
 :class:`Search` objects. A search runs under one *contract*: a wall-clock deadline
 (``deadline_ms``, counted from ``started_at``, the moment the request arrived) or an expansion
-budget (``budget_expansions``, reproducible). The contract is cut into ``steps`` decision steps;
-before each step a controller picks the weight (see :mod:`planner.controllers`), and
+budget (``budget_expansions``, reproducible). The contract is cut into decision steps; before
+each step a controller picks the weight (see :mod:`dueroute.planner.controllers`), and
 :func:`plan` drives that loop.
+
+The instant route
+-----------------
+Every search of a reachable pair holds a complete route before it expands a node: the
+landmarks' shortest-path trees give origin -> landmark -> destination routes; the best of the
+few most promising ones, with the loop cut where the two halves meet
+(:func:`dueroute.planner._kernel.instant_route`), is the first incumbent and the first
+improvement (``source="instant"``). It costs microseconds and prunes the main search from its
+first expansion. A pair the trees do not connect (outside the landmarks' strong component, or
+no landmarks) starts with a greedy search (ANA*'s order before its first route) until a first
+route, then hands over to the controller.
 
 Contracts and steps
 -------------------
@@ -13,32 +24,31 @@ Contracts and steps
   ``budget * (k + 1) // steps`` expansions in total, so the same query, controller and seed always
   give the same result.
 * **Deadline**: step ``k`` ends at ``now + (deadline_at - now) / steps_left`` (the remaining
-  time shared equally among the remaining steps), the last step at the deadline itself.
+  time shared equally among the remaining steps), the last step at the deadline itself. The
+  kernel reads the monotonic clock every 64 expansions (about 10 us) and returns at the step's
+  end, so a step is one kernel call. The number of steps follows the contract
+  (:func:`steps_for_deadline`): control costs at most :data:`CONTROL_SHARE` of the deadline.
 * **Neither** (documented choice): the search runs to proven optimality under a safety budget
   of :data:`UNBOUNDED_BUDGET_PER_NODE` expansions per graph node (at least
-  :data:`UNBOUNDED_BUDGET_MIN`); it ends ``contract_spent`` only if that cap is hit, which needs
-  heavy reopening.
+  :data:`UNBOUNDED_BUDGET_MIN`).
+* A **gap target** (``gap_target`` > 0) ends the search as soon as the proven gap
+  ``(cost - bound) / cost`` is at or below it, like a MIP solver's relative gap tolerance.
 
-How the deadline is honoured
+Weights that cannot run away
 ----------------------------
-Python only touches the search between kernel chunks. Within a step, chunks are sized from the
-measured expansion rate (an exponential moving average of expansions per second, started from
-the previous search on the same workspace): each chunk is planned to take at most half the time
-left in the step and at most :data:`MAX_CHUNK_S`, so the chunks shrink geometrically towards the
-step end and an error in the rate estimate costs at most a fraction of a shrinking remainder. The
-step stops when less than :data:`STOP_MARGIN_S` remains (about one chunk call's overhead).
-Lateness is therefore bounded by the mis-estimate of the last, tiny chunk plus one call's
-overhead; it is measured by ``tests/planner/test_session.py`` (printed, not asserted) and by
-``dueroute bench deadline``. Path extraction after an improvement and ``on_improvement`` callbacks run in
-the same thread and count against the deadline.
+Two things bound what any weight schedule can cost: (1) the instant route prunes every node
+with ``g + h`` at or above its cost from the first expansion, so a search never leaves that
+ellipse; (2) the kernel's runaway guard switches to weight 1 once the expansions exceed
+:data:`RUNAWAY_FACTOR` times the distinct nodes touched (plus :data:`RUNAWAY_MIN`): a large
+weight is then re-expanding nodes it reached too expensively, and under weight 1 with a
+consistent heuristic each node is expanded at most once more (A*'s ordering invariant, Hart,
+Nilsson & Raphael 1968). ``PlanResult.weight_capped`` says when it happened.
 
 Bounds
 ------
 ``lower_bound_s = min(incumbent, min over open of g + h)`` (the running maximum of that value,
 each of which is valid), equal to the cost once the search is proven. The reported route cost is
-the sum of its edges' ``travel_time_s`` (it can be below the kernel's g of the destination when
-an ancestor was reached more cheaply later); the kernel's incumbent is lowered to it so
-pruning uses the real cost.
+the sum of its edges' ``travel_time_s``.
 
 Thread safety
 -------------
@@ -59,6 +69,7 @@ from collections.abc import Callable
 from dataclasses import replace
 from typing import Any, Protocol
 
+import numba
 import numpy as np
 
 from dueroute.planner import _kernel as K
@@ -76,6 +87,8 @@ from dueroute.planner.limits import (
     MIN_WEIGHT,
 )
 from dueroute.planner.results import (
+    STATS_INDEX,
+    STATS_LEN,
     Improvement,
     PlanResult,
     SearchStats,
@@ -87,20 +100,64 @@ from dueroute.planner.results import (
 UNBOUNDED_BUDGET_PER_NODE = 20
 UNBOUNDED_BUDGET_MIN = 10_000
 
-#: Deadline chunking (see the module docstring).
-MAX_CHUNK_S = 0.002
-STOP_MARGIN_S = 30e-6
-FIRST_CHUNK_EXPANSIONS = 64
-RATE_EMA = 0.5
-#: Budget contracts check ``cancel`` at least every this many expansions.
+#: Budget contracts check ``cancel`` at least every this many expansions; deadline steps at
+#: least every this many seconds when a ``cancel`` event is given (a kernel call costs a few us).
 BUDGET_CHUNK_EXPANSIONS = 50_000
+CANCEL_CHECK_S = 0.002
+
+#: Landmarks the kernel evaluates per node: the best for the query's origin and destination.
+#: A search is bound by memory, not arithmetic (measured with ``dueroute bench search``: the
+#: same cost per expansion with 2, 4, 8 or 16 active landmarks, since one node's row is one
+#: cache line either way), so by default all of them (up to 16) are active.
+ACTIVE_LANDMARKS = 16
+
+#: Runaway guard (see the module docstring).
+RUNAWAY_FACTOR = 2.0
+RUNAWAY_MIN = 10_000
+
+#: Share of a deadline that decision steps may cost, and the cost of one step that the step
+#: count assumes, by controller kind (measured with ``dueroute bench deadline``: a few us for
+#: the built-in controllers, ten or so with an ONNX policy).
+CONTROL_SHARE = 0.02
+STEP_COST_US = {"builtin": 5.0, "policy": 12.0}
+
+#: Longest route the instant route may have (edges); longer ones are left to the search.
+INSTANT_MAX_EDGES = 1 << 16
 
 MODES = ("weighted", "ana")
+
+# positions in the live stats vector (planner.results.STATS_FIELDS)
+_V_INCUMBENT = STATS_INDEX["incumbent_cost_s"]
+_V_BOUND = STATS_INDEX["lower_bound_s"]
+_V_H_START = STATS_INDEX["h_start_s"]
+_V_EXPANSIONS = STATS_INDEX["expansions"]
+_V_LEFT = STATS_INDEX["expansions_left"]
+_V_FRAC = STATS_INDEX["contract_fraction_left"]
+_V_ELAPSED = STATS_INDEX["elapsed_ms"]
+_V_WEIGHT = STATS_INDEX["weight"]
+_V_IMPROVEMENTS = STATS_INDEX["improvements"]
+_V_STEPS_DONE = STATS_INDEX["steps_done"]
+_V_STEPS_TOTAL = STATS_INDEX["steps_total"]
+_V_STEPS_SINCE = STATS_INDEX["steps_since_improvement"]
+_V_EXP_SINCE = STATS_INDEX["expansions_since_improvement"]
+_V_CPU = STATS_INDEX["cpu_share_last_step"]
+_V_TOUCHED = STATS_INDEX["nodes_touched"]
+_V_DONE = STATS_INDEX["done"]
+_V_RATE = STATS_INDEX["expansion_rate_per_s"]
+_V_INSTANT = STATS_INDEX["instant_only"]
 _MODE_CODE = {"weighted": K.MODE_WEIGHTED, "ana": K.MODE_ANA}
+_EMPTY_I32 = np.zeros(0, dtype=np.int32)
 
 
 class _Event(Protocol):
     def is_set(self) -> bool: ...
+
+
+def steps_for_deadline(deadline_ms: float, steps: int, step_cost_us: float) -> int:
+    """Decision steps for a deadline: at most ``steps``, at least 1, and no more than
+    :data:`CONTROL_SHARE` of the deadline spent on control at ``step_cost_us`` per step."""
+    affordable = int(CONTROL_SHARE * deadline_ms * 1000.0 / max(step_cost_us, 1e-3))
+    return max(1, min(int(steps), affordable))
 
 
 # ------------------------------------------------------------------------------------------
@@ -111,18 +168,20 @@ class _Workspace:
     """Kernel arrays for one running search on one graph (see ``planner._kernel``)."""
 
     def __init__(self, n_nodes: int) -> None:
-        self.arrays = K.new_workspace(n_nodes)
-        self.nodei, self.nodef, self.heap, self.istate, self.fstate = self.arrays
+        self.state, self.heap, self.istate, self.fstate = K.new_workspace(n_nodes)
         self.generation = 0
-        #: expansions per second measured by the last search on this workspace
-        self.rate_hint: float | None = None
+        self.route_buf = np.empty(INSTANT_MAX_EDGES, dtype=np.int64)
+        self.src_node = np.zeros(1, dtype=np.int64)
+        self.src_g = np.zeros(1, dtype=np.float64)
 
-    def next_generation(self) -> int:
-        self.generation += 1
-        if self.generation >= 2**31 - 1:  # stamps are int32: wrap once every 2^31 queries
-            self.nodei[:, K.N_STAMP] = 0
-            self.generation = 1
-        return self.generation
+    def next_generations(self, count: int) -> int:
+        """Reserve ``count`` fresh generations; returns the first."""
+        if self.generation + count >= 2**31 - 1:  # stamps are int32: wrap once every 2^31
+            self.state.view(np.int32)[:, K.SI_STAMP] = 0
+            self.generation = 0
+        first = self.generation + 1
+        self.generation += count
+        return first
 
 
 def _readonly(a: np.ndarray, dtype: Any) -> np.ndarray:
@@ -138,12 +197,17 @@ class Planner:
     Parameters
     ----------
     graph : RoadGraph
-    landmarks : object with ``lm_from``, ``lm_to`` (float32[n, L]) and ``slack_s`` (float), optional
-        ALT landmark distances (``planner.heuristics.Landmarks``); see ``planner._kernel`` for
-        the contract. ``None`` uses the great-circle bound alone.
+    landmarks : planner.heuristics.Landmarks, optional
+        ALT landmark distances and trees (see ``planner.heuristics``): the ALT bound, the
+        active landmarks and the instant route. ``None`` uses the great-circle bound alone
+        (and a greedy first route instead of the instant one).
+    active_landmarks : int
+        Landmarks evaluated per node (the best for each query's origin and destination).
     """
 
-    def __init__(self, graph: RoadGraph, landmarks: Any = None) -> None:
+    def __init__(
+        self, graph: RoadGraph, landmarks: Any = None, active_landmarks: int = ACTIVE_LANDMARKS
+    ) -> None:
         self.graph = graph
         n = graph.n_nodes
         self.n_nodes = n
@@ -154,27 +218,54 @@ class Planner:
         self._coords = _readonly(coords if n else np.zeros((1, 3)), np.float32)
         self._component = np.asarray(graph.component)
         self._gc_scale = (1.0 - 1e-9) / float(graph.max_speed_mps)
+        self._lm_unit = 0.0
         if landmarks is None:
-            empty = _readonly(np.zeros((1, 0), dtype=np.float32), np.float32)
-            self._lm_from, self._lm_to, self._lm_slack = empty, empty, 0.0
+            self._lm = _readonly(np.zeros((max(n, 1), 0, 2), dtype=np.uint16), np.uint16)
+            self._tree_to = _readonly(np.zeros((0, max(n, 1)), dtype=np.int32), np.int32)
+            self._tree_from = self._tree_to
+            self._lm_nodes = _EMPTY_I32
+            self._lm_slack = 0.0
         else:
             check_graph = getattr(landmarks, "check_graph", None)
             if check_graph is not None:  # landmarks of another graph give wrong bounds
                 check_graph(graph)
-            lm_from = np.asarray(landmarks.lm_from)
-            lm_to = np.asarray(landmarks.lm_to)
-            if lm_from.ndim != 2 or lm_from.shape != lm_to.shape or lm_from.shape[0] != n:
+            lm = np.asarray(landmarks.lm)
+            if lm.ndim != 3 or lm.shape[0] != n or lm.shape[2] != 2:
                 raise InvalidRequest(
-                    f"landmark arrays must both have shape (nodes={n}, L), got "
-                    f"{lm_from.shape} and {lm_to.shape}"
+                    f"landmark rows must have shape (nodes={n}, L, 2), got {lm.shape}"
                 )
+            if lm.shape[1] > K.MAX_LANDMARKS:
+                raise InvalidRequest(f"at most {K.MAX_LANDMARKS} landmarks, got {lm.shape[1]}")
             slack = float(landmarks.slack_s)
             if not (math.isfinite(slack) and slack >= 0.0):
                 raise InvalidRequest(f"landmark slack_s must be finite and >= 0, got {slack!r}")
-            self._lm_from = _readonly(lm_from, np.float32)
-            self._lm_to = _readonly(lm_to, np.float32)
+            if lm.dtype != np.uint16:
+                raise InvalidRequest(f"landmark rows must be uint16 codes, got {lm.dtype}")
+            self._lm = _readonly(lm, np.uint16)
+            self._lm_unit = float(landmarks.unit_s)
+            self._tree_to = _readonly(landmarks.tree_to, np.int32)
+            self._tree_from = _readonly(landmarks.tree_from, np.int32)
+            self._lm_nodes = _readonly(landmarks.nodes, np.int32)
             self._lm_slack = slack
-        self.n_landmarks = int(self._lm_from.shape[1])
+        self.n_landmarks = int(self._lm.shape[1])
+        # With landmarks the chord bound is almost never the larger term (measured on the demo
+        # region: the same expansions with and without it), so it is skipped, saving a cache
+        # line per node; without landmarks it is the heuristic.
+        self.use_chord = self.n_landmarks == 0
+        if not 0 <= int(active_landmarks) <= K.MAX_ACTIVE:
+            raise InvalidRequest(f"active_landmarks must be in 0..{K.MAX_ACTIVE}")
+        self.active_landmarks = min(int(active_landmarks), self.n_landmarks)
+        # the query-independent part of fstate, copied into every new query
+        t = np.zeros(K.F_LOG, dtype=np.float64)
+        t[K.F_WEIGHT] = 1.0
+        t[K.F_GC_SCALE] = self._gc_scale if self.use_chord else 0.0
+        t[K.F_GC_MARGIN] = self._gc_margin
+        t[K.F_LM_SLACK] = self._lm_slack
+        t[K.F_LM_UNIT] = self._lm_unit
+        t[K.F_RUNAWAY_FACTOR] = RUNAWAY_FACTOR
+        t[K.F_RUNAWAY_MIN] = RUNAWAY_MIN
+        self._ftemplate = t
+        self._entry: dict[str, Any] = {}  # compiled entry points (see _call)
         self._dag: tuple[np.ndarray, np.ndarray] | None = None
         self._dag_lock = threading.Lock()
         self._pool: list[_Workspace] = []
@@ -206,22 +297,25 @@ class Planner:
         with self._pool_lock:
             self._pool.append(ws)
 
-    def _chunk(self, ws: _Workspace) -> int:
-        return int(
-            K.run_chunk(
-                self._indptr,
-                self._head,
-                self._cost,
-                self._coords,
-                self._lm_from,
-                self._lm_to,
-                ws.nodei,
-                ws.nodef,
-                ws.heap,
-                ws.istate,
-                ws.fstate,
-            )
+    def _run(self, ws: _Workspace) -> int:
+        args: tuple[Any, ...] = (self._indptr, self._head, self._cost, self._coords, self._lm)
+        args += (ws.state, ws.heap, ws.istate, ws.fstate)
+        return int(_call(K.run, self._entry, "run", args))
+
+    def _open_query(self, ws: _Workspace) -> tuple[int, float, float]:
+        args: tuple[Any, ...] = (self._indptr, self._head, self._cost, self._coords, self._lm)
+        args += (
+            self._lm_nodes,
+            self._tree_to,
+            self._tree_from,
+            ws.state,
+            ws.heap,
+            ws.istate,
+            ws.fstate,
         )
+        args += (ws.src_node, ws.src_g, ws.route_buf)
+        count, cost, h_start = _call(K.open_query, self._entry, "open_query", args)
+        return int(count), float(cost), float(h_start)
 
     def warm_up(self) -> None:
         """Compile (or load from the numba cache) every kernel and build the component DAG, so
@@ -240,6 +334,7 @@ class Planner:
         started_at: float | None = None,
         cancel: _Event | None = None,
         mode: str = "weighted",
+        gap_target: float = 0.0,
     ) -> Search:
         """Open a search (see the module docstring for contracts and steps).
 
@@ -248,7 +343,7 @@ class Planner:
         origin, destination : int
             Node indices (``NodeNotFound`` when outside ``0..n_nodes-1``).
         deadline_ms : float, optional
-            Wall-clock contract, counted from ``started_at``; ``0 < deadline_ms <= 86_400_000``.
+            Wall-clock contract, counted from ``started_at``; ``0 < deadline_ms <= 60000``.
         budget_expansions : int, optional
             Expansion contract, ``1 <= budget_expansions <= 10**12``. At most one of the two.
         steps : int
@@ -256,9 +351,13 @@ class Planner:
         started_at : float, optional
             ``time.perf_counter()`` when the request arrived; defaults to now.
         cancel : threading.Event-like, optional
-            Checked between kernel chunks; when set the search ends with status ``cancelled``.
+            Checked between steps and (through the kernel's stop flag, see
+            :meth:`Search.stop`) while expanding; when set the search ends ``cancelled``.
         mode : {"weighted", "ana"}
             Open-list order: ``g + w*h`` (Anytime Weighted A*) or the ANA* key.
+        gap_target : float
+            Stop once the proven relative gap is at or below this (``0 <= gap < 1``; 0: only
+            when proven optimal).
         """
         t_arrival = time.perf_counter() if started_at is None else float(started_at)
         g = self.graph
@@ -267,6 +366,7 @@ class Planner:
         deadline_ms, budget_expansions, steps = validate_contract(
             deadline_ms, budget_expansions, steps
         )
+        gap_target = validate_gap_target(gap_target)
         if mode not in _MODE_CODE:
             raise InvalidRequest(f"search mode must be one of {list(MODES)}, got {mode!r}")
         return Search(
@@ -279,7 +379,27 @@ class Planner:
             started_at=t_arrival,
             cancel=cancel,
             mode=mode,
+            gap_target=gap_target,
         )
+
+
+def _call(dispatcher: Any, cache: dict[str, Any], name: str, args: tuple[Any, ...]) -> Any:
+    """Call a numba function through its compiled entry point for these argument types.
+
+    numba's dispatcher resolves the types of every argument on each call (about a microsecond
+    for nine arrays); a planner always passes the same types, so after the first call it keeps
+    the compiled entry point and calls it directly. The first call goes through the dispatcher
+    (compiling or loading from the cache as needed).
+    """
+    entry = cache.get(name)
+    if entry is not None:
+        return entry(*args)
+    out = dispatcher(*args)
+    sig = tuple(numba.typeof(a) for a in args)
+    overload = dispatcher.overloads.get(sig)
+    if overload is not None:
+        cache[name] = overload.entry_point
+    return out
 
 
 _WARM_LOCK = threading.Lock()
@@ -291,28 +411,34 @@ def _warm_kernel() -> None:
     with _WARM_LOCK:
         if _WARMED:
             return
-        lat = np.array([0.0, 0.0, 0.001])
-        lon = np.array([0.0, 0.001, 0.001])
+        from dueroute.planner.heuristics import build_landmarks
+
+        lat = np.array([0.0, 0.0, 0.001, 0.001])
+        lon = np.array([0.0, 0.001, 0.001, 0.0])
         graph = RoadGraph(
-            indptr=np.array([0, 1, 2, 2], dtype=np.int64),
-            head=np.array([1, 2], dtype=np.int32),
-            travel_time_s=np.array([10.0, 10.0]),
-            length_m=np.array([112.0, 112.0]),
-            speed_kph=np.array([50.0, 50.0], dtype=np.float32),
-            road_class=np.zeros(2, dtype=np.int8),
-            speed_source=np.zeros(2, dtype=np.int8),
+            indptr=np.array([0, 1, 2, 3, 4], dtype=np.int64),
+            head=np.array([1, 2, 3, 0], dtype=np.int32),
+            travel_time_s=np.array([10.0, 10.0, 10.0, 10.0]),
+            length_m=np.array([112.0, 112.0, 112.0, 112.0]),
+            speed_kph=np.full(4, 50.0, dtype=np.float32),
+            road_class=np.zeros(4, dtype=np.int8),
+            speed_source=np.zeros(4, dtype=np.int8),
             lat=lat,
             lon=lon,
-            osm_id=np.arange(3, dtype=np.int64),
-            component=np.array([0, 1, 2], dtype=np.int32),
-            geom_indptr=np.zeros(3, dtype=np.int64),
+            osm_id=np.arange(4, dtype=np.int64),
+            component=np.zeros(4, dtype=np.int32),
+            geom_indptr=np.zeros(5, dtype=np.int64),
             geom_lat=np.zeros(0),
             geom_lon=np.zeros(0),
         )
-        tiny = Planner(graph)
-        plan(tiny, 0, 2, budget_expansions=10, steps=2, controller="decreasing")
-        plan(tiny, 0, 2, budget_expansions=10, steps=2, controller="ana")
-        plan(tiny, 2, 0, budget_expansions=10, steps=2)  # no route: component DAG walk
+        with_lm = Planner(graph, landmarks=build_landmarks(graph, count=1, progress=False))
+        plain = Planner(graph)
+        for p in (with_lm, plain):
+            plan(p, 0, 2, budget_expansions=10, steps=2, controller="decreasing")
+            plan(p, 0, 2, budget_expansions=10, steps=2, controller="ana")
+            plan(p, 0, 3, deadline_ms=5.0, steps=2, controller="fixed:2", gap_target=0.5)
+            p._condensation()
+        K.dag_reachable(*with_lm._condensation(), 0, 0)
         _WARMED = True
 
 
@@ -352,6 +478,18 @@ def validate_contract(
     return deadline_ms, budget_expansions, int(steps)
 
 
+def validate_gap_target(gap_target: Any) -> float:
+    """A relative gap tolerance in ``[0, 1)``; raise :class:`InvalidRequest` otherwise."""
+    if isinstance(gap_target, bool) or not isinstance(gap_target, (int, float, np.number)):
+        raise InvalidRequest(f"gap_target must be a number in [0, 1), got {gap_target!r}")
+    g = float(gap_target)
+    if not (math.isfinite(g) and 0.0 <= g < 1.0):
+        raise InvalidRequest(
+            f"gap_target must be in [0, 1) (a relative gap such as 0.01 for 1 %), got {g!r}"
+        )
+    return g
+
+
 # ------------------------------------------------------------------------------------------
 # Search
 
@@ -375,6 +513,7 @@ class Search:
         started_at: float,
         cancel: _Event | None,
         mode: str,
+        gap_target: float,
     ) -> None:
         self.planner = planner
         self.origin = origin
@@ -385,6 +524,8 @@ class Search:
         self.started_at = started_at
         self.cancel = cancel
         self.mode = mode
+        self._mode_code = _MODE_CODE[mode]
+        self.gap_target = gap_target
         self.controller_name = ""
         self.on_improvement: Callable[[Improvement], None] | None = None
         if deadline_ms is None and budget_expansions is None:
@@ -400,66 +541,125 @@ class Search:
             self._deadline_at = None
 
         self.improvements: list[Improvement] = []
-        self.weights: list[WeightStep] = []
+        self._steps: list[tuple[int, float, int, float]] = []  # (step, elapsed_ms, exp, weight)
         self.steps_done = 0
         self.weight = float("nan")
         self._status: str | None = None
+        self._stopped_by = "proof"
         self._route: np.ndarray | None = None
         self._route_edges: np.ndarray | None = None
         self._cost: float | None = None
-        self._bound = 0.0
-        self._h_start = 0.0
-        self._expansions = 0
+        self._instant_cost: float | None = None
+        #: kernel improvement count whose route self._route holds (0: the instant route)
+        self._route_read = 0
+        self._greedy_first = False  # no instant route: greedy until the first route
+        self._log_seen = 0
         self._last_improvement_step = -1
         self._last_improvement_expansions = 0
-        self._cpu_share = 1.0
-        self._final_stats: SearchStats | None = None
+        self._cpu_mark = -1.0  # thread CPU time at the end of the last step (-1: none yet)
+        self._cpu_s = 0.0
+        self._kernel_s = 0.0  # wall time inside kernel.run (the rest is control overhead)
+        self._weight_capped = False
+        self._final: np.ndarray | None = None  # the stats vector once done
         self._ws: _Workspace | None = None
         self._finished_at: float | None = None
+        # the live stats vector (planner.results.STATS_FIELDS order)
+        v = self._v = np.zeros(STATS_LEN, dtype=np.float64)
+        v[_V_INCUMBENT] = math.inf
+        v[_V_STEPS_TOTAL] = steps
+        v[_V_CPU] = 1.0
+        v[_V_WEIGHT] = 1.0
+        v[_V_LEFT] = -1.0
 
         comp = planner._component
         if origin == destination:
             self._route = np.array([origin], dtype=np.int64)
             self._route_edges = np.zeros(0, dtype=np.int64)
-            self._cost = 0.0
-            self._finish("optimal")
+            self._set_cost(0.0)
+            self._finish("optimal", "proof")
             return
         if comp[origin] != comp[destination] and not _reachable_by_labels(
             planner, origin, destination
         ):
-            self._finish("no_route")
+            self._finish("no_route", "unreachable")
             return
         ws = planner._acquire()
         self._ws = ws
-        # Return the workspace to the pool if the search is dropped before it ends.
-        self._finalizer = weakref.finalize(self, planner._release, ws)
+        self._open(ws, origin, destination)
+
+    def __del__(self) -> None:
+        # a search dropped before it ended returns its workspace to the pool
+        ws = getattr(self, "_ws", None)
+        if ws is not None:
+            self._ws = None
+            self.planner._release(ws)
+
+    def _set_cost(self, cost: float) -> None:
+        self._cost = cost
+        self._v[_V_INCUMBENT] = cost
+
+    def _open(self, ws: _Workspace, origin: int, destination: int) -> None:
+        planner = self.planner
         ist, fst = ws.istate, ws.fstate
-        ist[:] = 0
-        fst[:] = 0.0
-        ist[K.I_GEN] = ws.next_generation()
-        ist[K.I_ORIGIN] = origin
-        ist[K.I_TARGET] = destination
-        ist[K.I_MODE] = _MODE_CODE[mode]
-        fst[K.F_WEIGHT] = 1.0
-        fst[K.F_GC_SCALE] = planner._gc_scale
-        fst[K.F_GC_MARGIN] = planner._gc_margin
-        fst[K.F_LM_SLACK] = planner._lm_slack
-        self._h_start = float(
-            K.start_query(
-                planner._coords,
-                planner._lm_from,
-                planner._lm_to,
-                ws.nodei,
-                ws.nodef,
-                ws.heap,
-                ist,
-                fst,
+        ist[: K.I_TLM] = 0
+        fst[: K.F_LOG] = planner._ftemplate
+        ist[K.I_GEN] = ws.next_generations(K.INSTANT_GENERATIONS + 1)
+        ist[K.I_MODE] = self._mode_code
+        fst[K.F_GAP_TARGET] = self.gap_target
+        fst[K.F_T_X : K.F_T_Z + 1] = planner._coords[destination]
+        ist[K.I_N_TARGETS] = 1
+        ist[K.I_TNODE] = destination
+        ist[K.I_TEDGE] = -1
+        ws.src_node[0] = origin
+        n_lm = planner.n_landmarks
+        ist[K.I_N_ACTIVE] = planner.active_landmarks
+        if n_lm:
+            ist[K.I_TLM : K.I_TLM + 2 * n_lm] = planner._lm[destination].reshape(-1)
+        count, _, h_start = planner._open_query(ws)
+        h_start = float(h_start)
+        v = self._v
+        v[_V_H_START] = h_start
+        if math.isfinite(h_start):
+            v[_V_BOUND] = h_start
+        if ist[K.I_SIZE] == 0 and count < 0:  # nothing to search and no route
+            self._finish("no_route", "unreachable")
+            return
+        if count >= 0:
+            edges = ws.route_buf[:count].copy()
+            nodes = np.empty(count + 1, dtype=np.int64)
+            nodes[0] = origin
+            nodes[1:] = planner._head[edges]
+            self._install_instant(nodes, edges)
+        else:
+            # no tree connects the pair: search greedily (ANA*'s order) until a first route
+            self._greedy_first = True
+            ist[K.I_MODE] = K.MODE_ANA
+
+    def _install_instant(self, nodes: np.ndarray, edges: np.ndarray) -> None:
+        cost = float(np.sum(self.planner._cost[edges]))
+        self._route, self._route_edges = nodes, edges
+        self._set_cost(cost)
+        self._instant_cost = cost
+        ws = self._ws
+        assert ws is not None
+        ws.fstate[K.F_INCUMBENT] = cost
+        v = self._v
+        bound = min(v[_V_BOUND], cost)
+        v[_V_BOUND] = bound
+        v[_V_INSTANT] = 1.0
+        self.improvements.append(
+            Improvement(
+                elapsed_ms=(time.perf_counter() - self.started_at) * 1000.0,
+                expansions=0,
+                cost_s=cost,
+                lower_bound_s=bound,
+                gap=gap_of(cost, bound),
+                weight=float("nan"),
+                source="instant",
             )
         )
-        self._bound = self._h_start if math.isfinite(self._h_start) else 0.0
-        self._rate = ws.rate_hint
-        if ist[K.I_SIZE] == 0:  # landmarks prove the destination unreachable
-            self._finish("no_route")
+        v[_V_IMPROVEMENTS] = 1.0
+        self._last_improvement_step = 0
 
     # -- public API --
     @property
@@ -470,64 +670,97 @@ class Search:
     def status(self) -> str | None:
         return self._status
 
+    @property
+    def weight_capped(self) -> bool:
+        """True once the runaway guard forced weight 1 (later weights are ignored)."""
+        return self._weight_capped
+
+    @property
+    def weights(self) -> list[WeightStep]:
+        """The weight chosen for each step so far."""
+        return [
+            WeightStep(step=k, elapsed_ms=t, expansions=e, weight=w) for k, t, e, w in self._steps
+        ]
+
     def elapsed_ms(self) -> float:
         end = self._finished_at if self._finished_at is not None else time.perf_counter()
         return (end - self.started_at) * 1000.0
 
-    def run_step(self, weight: float) -> None:
-        """Run one decision step with ``weight`` (>= 1; ignored by the key in ``ana`` mode).
+    def stop(self) -> None:
+        """Ask the kernel to stop at its next check (any thread; about 10 us of search)."""
+        ws = self._ws
+        if ws is not None:
+            ws.istate[K.I_STOP] = 1
 
-        Returns when the step's share of the contract is spent, the optimum is proven or the
-        search is cancelled. Calling it on a finished search does nothing.
+    def run_step(self, weight: float) -> None:
+        """Run one decision step with ``weight`` (1..5; ignored by the key in ``ana`` mode).
+
+        Returns when the step's share of the contract is spent, the optimum is proven, the gap
+        target is reached or the search is cancelled. Calling it on a finished search does
+        nothing.
         """
-        if self.done:
+        if self._status is not None:
             return
         w = float(weight)
-        if not (math.isfinite(w) and MIN_WEIGHT <= w <= MAX_WEIGHT):
+        if not (MIN_WEIGHT <= w <= MAX_WEIGHT):  # also refuses NaN
             raise InvalidRequest(
                 f"weight must be a number in {MIN_WEIGHT:g}..{MAX_WEIGHT:g}, got {weight!r}"
             )
         ws = self._ws
         assert ws is not None
+        ist, fst = ws.istate, ws.fstate
         k = self.steps_done
         wall0 = time.perf_counter()
-        # CPU share only matters against the wall clock; under budgets it is 1 by definition
         timed = self._deadline_at is not None
-        cpu0 = time.thread_time() if timed else 0.0
+        if timed and self._cpu_mark < 0:
+            self._cpu_mark = time.thread_time()
+        if ist[K.I_RUNAWAY]:
+            w = 1.0
         self.weight = w
-        ws.fstate[K.F_WEIGHT] = w
-        self.weights.append(
-            WeightStep(
-                step=k,
-                elapsed_ms=(wall0 - self.started_at) * 1000.0,
-                expansions=int(ws.istate[K.I_EXPANSIONS]),
-                weight=w,
-            )
+        if not self._greedy_first and not ist[K.I_RUNAWAY]:
+            fst[K.F_WEIGHT] = w
+            ist[K.I_MODE] = self._mode_code
+        self._steps.append((k, (wall0 - self.started_at) * 1000.0, int(ist[K.I_EXPANSIONS]), w))
+        ist[K.I_RETURN_ON_IMPROVE] = (
+            1 if (self.on_improvement is not None or self._greedy_first) else 0
         )
         if self._budget is not None:
             self._run_budget_step(ws, k)
         else:
-            self._run_deadline_step(ws, k)
+            self._run_deadline_step(ws, k, wall0)
         wall1 = time.perf_counter()
-        if timed and wall1 > wall0:
-            self._cpu_share = min(1.0, (time.thread_time() - cpu0) / (wall1 - wall0))
+        if timed:
+            # one CPU-clock read per step: the CPU this step (and its control) received
+            cpu1 = time.thread_time()
+            cpu = cpu1 - self._cpu_mark
+            self._cpu_mark = cpu1
+            self._cpu_s += cpu
+            if wall1 > wall0:
+                self._v[_V_CPU] = min(1.0, cpu / (wall1 - wall0))
         self.steps_done = k + 1
-        out_of_time = self._deadline_at is not None and wall1 >= self._deadline_at
-        if not self.done and (self.steps_done >= self.steps_total or out_of_time):
-            self._finish("contract_spent")
+        if self._status is None:
+            self._collect_log(ws)
+            out_of_time = timed and wall1 >= self._deadline_at  # type: ignore[operator]
+            if self.steps_done >= self.steps_total or out_of_time:
+                self._finish_unproven(ws, "deadline" if timed else "budget")
 
     def stats(self) -> SearchStats:
         """Snapshot for features and controllers (the final snapshot once done)."""
-        if self._final_stats is not None:
-            return self._final_stats
-        return self._snapshot()
+        if self._final is not None:
+            return SearchStats.from_vector(self._final, self.mode)
+        self._refresh()
+        return SearchStats.from_vector(self._v, self.mode)
 
     def result(self) -> PlanResult:
         """The answer so far (final once :attr:`done`)."""
-        status = self._status if self._status is not None else "contract_spent"
+        ws = self._ws
+        if ws is not None and self._status is None:
+            self._collect_log(ws)
+            self._refresh()
+        status = self._status if self._status is not None else self._quality_status()
         cost = self._cost
-        # before any route the bound (min f over open) is still a valid, useful number
-        bound: float | None = self._bound if cost is None else min(self._bound, cost)
+        v = self._final if self._final is not None else self._v
+        bound: float | None = float(v[_V_BOUND]) if cost is None else min(float(v[_V_BOUND]), cost)
         if status == "no_route":
             bound = None
         elif status == "optimal" and cost is not None:
@@ -542,28 +775,38 @@ class Search:
             lower_bound_s=bound,
             gap=None if cost is None or bound is None else gap_of(cost, bound),
             improvements=list(self.improvements),
-            weights=list(self.weights),
-            expansions=self._expansions_now(),
+            weights=self.weights,
+            expansions=int(v[_V_EXPANSIONS]),
             elapsed_ms=self.elapsed_ms(),
             controller=self.controller_name,
             steps=self.steps_total,
             mode=self.mode,
             deadline_ms=self.deadline_ms,
             budget_expansions=self.budget_expansions,
-            h_start_s=self._h_start,
-            nodes_touched=self._final_stats.nodes_touched if self._final_stats else 0,
+            h_start_s=float(v[_V_H_START]),
+            nodes_touched=int(v[_V_TOUCHED]) if self._final is not None else 0,
+            stopped_by=self._stopped_by if self._status is not None else "deadline",
+            instant_cost_s=self._instant_cost,
+            weight_capped=self._weight_capped,
+            gap_target=self.gap_target,
+            kernel_ms=self._kernel_s * 1000.0,
         )
 
     def close(self) -> None:
         """End the search now (status ``cancelled`` if it was still running)."""
-        if not self.done:
-            self._finish("cancelled")
+        if self._status is None:
+            ws = self._ws
+            if ws is not None:
+                self._collect_log(ws)
+            self._finish("cancelled", "cancel")
 
     # -- internals --
-    def _expansions_now(self) -> int:
-        if self._ws is not None:
-            return int(self._ws.istate[K.I_EXPANSIONS])
-        return self._expansions
+    def _quality_status(self) -> str:
+        if self._cost is None:
+            return "not_found"
+        if self._route_read == 0 and self._instant_cost is not None:
+            return "instant"
+        return "improved"
 
     def _cancelled(self) -> bool:
         return self.cancel is not None and self.cancel.is_set()
@@ -572,175 +815,171 @@ class Search:
         assert self._budget is not None
         target = self._budget * (k + 1) // self.steps_total
         ist = ws.istate
-        while not self.done:
+        ist[K.I_UNTIL_NS] = 0
+        while self._status is None:
             if self._cancelled():
-                self._finish("cancelled")
+                self.close()
                 return
             left = target - int(ist[K.I_EXPANSIONS])
             if left <= 0:
                 return
-            ist[K.I_CHUNK] = min(left, BUDGET_CHUNK_EXPANSIONS)
-            self._handle(self.planner._chunk(ws))
+            ist[K.I_LIMIT] = min(left, BUDGET_CHUNK_EXPANSIONS)
+            self._handle(ws, self._kernel(ws))
 
-    def _run_deadline_step(self, ws: _Workspace, k: int) -> None:
+    def _run_deadline_step(self, ws: _Workspace, k: int, now: float) -> None:
         assert self._deadline_at is not None
-        now = time.perf_counter()
         steps_left = self.steps_total - k
         step_end = now + max(0.0, self._deadline_at - now) / steps_left
         if steps_left == 1:
             step_end = self._deadline_at
         ist = ws.istate
-        while not self.done:
+        ist[K.I_LIMIT] = -1
+        watch = self.cancel is not None
+        while self._status is None:
+            if watch and self.cancel.is_set():  # type: ignore[union-attr]
+                self.close()
+                return
+            if now >= step_end:
+                return
+            until = min(step_end, now + CANCEL_CHECK_S) if watch else step_end
+            ist[K.I_UNTIL_NS] = int(until * 1e9)
+            status = self._kernel(ws)
             now = time.perf_counter()
-            left = step_end - now
-            if left <= STOP_MARGIN_S:
-                return
-            if self._cancelled():
-                self._finish("cancelled")
-                return
-            rate = self._rate
-            if rate is None:
-                chunk = FIRST_CHUNK_EXPANSIONS
-            else:
-                chunk = int(rate * min(0.5 * left, MAX_CHUNK_S))
-                if chunk < 1:
-                    if rate * (left - STOP_MARGIN_S) < 1.0:
-                        return
-                    chunk = 1
-            before = int(ist[K.I_EXPANSIONS])
-            ist[K.I_CHUNK] = chunk
-            status = self.planner._chunk(ws)
-            t1 = time.perf_counter()
-            made = int(ist[K.I_EXPANSIONS]) - before
-            # rate from full chunks only (an early return says little about the rate)
-            if status == K.CHUNK_DONE and made > 0 and t1 > now:
-                r = made / (t1 - now)
-                self._rate = r if self._rate is None else RATE_EMA * r + (1 - RATE_EMA) * self._rate
-            self._handle(status)
+            if status == K.TIME_UP:
+                if until >= step_end:
+                    return
+                continue
+            self._handle(ws, status)
 
-    def _handle(self, status: int) -> None:
+    def _kernel(self, ws: _Workspace) -> int:
+        t0 = time.perf_counter()
+        status = self.planner._run(ws)
+        self._kernel_s += time.perf_counter() - t0
+        return int(status)
+
+    def _handle(self, ws: _Workspace, status: int) -> None:
         if status == K.IMPROVED:
-            self._on_improved()
+            self._on_improved(ws)
+            if self._greedy_first:  # the first route: hand over to the controller
+                self._greedy_first = False
+                ws.istate[K.I_MODE] = self._mode_code
+                if not ws.istate[K.I_RUNAWAY]:
+                    ws.fstate[K.F_WEIGHT] = self.weight if math.isfinite(self.weight) else 1.0
+                ws.istate[K.I_RETURN_ON_IMPROVE] = 1 if self.on_improvement is not None else 0
         elif status == K.PROVEN:
-            ws = self._ws
-            assert ws is not None
-            if math.isfinite(ws.fstate[K.F_INCUMBENT]) and self._cost is not None:
-                self._finish("optimal")
+            self._collect_log(ws)
+            if self._cost is not None:
+                self._finish("optimal", "proof")
             else:
-                self._finish("no_route")
+                self._finish("no_route", "unreachable")
+        elif status == K.GAP_REACHED:
+            self._finish_unproven(ws, "gap_target")
+        elif status == K.STOPPED:
+            self.close()
 
-    def _on_improved(self) -> None:
-        ws = self._ws
-        assert ws is not None
+    def _finish_unproven(self, ws: _Workspace, reason: str) -> None:
+        self._collect_log(ws)
+        self._finish(self._quality_status(), reason)
+
+    def _route_from_kernel(self, ws: _Workspace) -> None:
+        """Read the incumbent route back from the parent pointers (when the kernel holds it)."""
+        best = int(ws.istate[K.I_BEST_NODE])
+        found = int(ws.istate[K.I_IMPROVEMENTS])
+        if best < 0 or found == self._route_read:
+            return
         planner = self.planner
-        nodes, edges = K.extract_route(ws.nodei, self.origin, self.destination, planner.n_nodes)
+        nodes, edges = K.extract_route(ws.state, best, planner.n_nodes)
         if nodes.shape[0] == 0:  # cannot happen: parent pointers always lead back
             raise RuntimeError("internal error: route extraction failed")
         cost = float(np.sum(planner._cost[edges]))
-        kernel_cost = float(ws.fstate[K.F_INCUMBENT])
-        if cost < kernel_cost:
+        self._route, self._route_edges = nodes, edges
+        self._set_cost(cost)
+        self._route_read = found
+        self._v[_V_INSTANT] = 0.0
+        if cost < ws.fstate[K.F_INCUMBENT]:
             ws.fstate[K.F_INCUMBENT] = cost  # prune with the real route cost
-        self._route, self._route_edges, self._cost = nodes, edges, cost
-        self._update_bound(ws)
-        expansions = int(ws.istate[K.I_EXPANSIONS])
-        bound = min(self._bound, cost)
-        imp = Improvement(
-            elapsed_ms=(time.perf_counter() - self.started_at) * 1000.0,
-            expansions=expansions,
-            cost_s=cost,
-            lower_bound_s=bound,
-            gap=gap_of(cost, bound),
-            weight=self.weight,
-        )
-        self.improvements.append(imp)
+
+    def _on_improved(self, ws: _Workspace) -> None:
+        self._route_from_kernel(ws)
+        self._collect_log(ws, with_route=True)
+
+    def _collect_log(self, ws: _Workspace, with_route: bool = False) -> None:
+        """Turn the kernel's improvement log into :class:`Improvement` records."""
+        ist, fst = ws.istate, ws.fstate
+        count = int(ist[K.I_LOG_COUNT])
+        if count == self._log_seen:
+            return
+        if int(ist[K.I_BEST_NODE]) >= 0:
+            self._route_from_kernel(ws)
+        v = self._v
+        for i in range(self._log_seen, min(count, K.MAX_LOG)):
+            base = K.F_LOG + 4 * i
+            cost = float(fst[base])
+            bound = float(fst[base + 1])
+            if i == count - 1 and self._cost is not None:
+                cost = min(cost, self._cost)  # the route read back is the real cost
+            bound = min(max(bound, float(v[_V_BOUND])), cost)
+            v[_V_BOUND] = max(float(v[_V_BOUND]), bound)
+            imp = Improvement(
+                elapsed_ms=(fst[base + 3] * 1e-9 - self.started_at) * 1000.0,
+                expansions=int(fst[base + 2]),
+                cost_s=cost,
+                lower_bound_s=bound,
+                gap=gap_of(cost, bound),
+                weight=self.weight,
+            )
+            self.improvements.append(imp)
+            if self.on_improvement is not None:
+                if with_route and i == count - 1:
+                    imp = replace(imp, route_nodes=self._route, route_edges=self._route_edges)
+                self.on_improvement(imp)
+        self._log_seen = count
+        v[_V_IMPROVEMENTS] = len(self.improvements)
         self._last_improvement_step = self.steps_done
-        self._last_improvement_expansions = expansions
-        if self.on_improvement is not None:
-            self.on_improvement(replace(imp, route_nodes=nodes, route_edges=edges))
+        self._last_improvement_expansions = int(ist[K.I_EXPANSIONS])
 
-    def _update_bound(self, ws: _Workspace) -> None:
-        inc = float(ws.fstate[K.F_INCUMBENT])
-        if self._cost is not None:
-            inc = min(inc, self._cost)
-        min_f = K.open_min_f(ws.heap, ws.istate)
-        b = min(inc, min_f)
-        if math.isfinite(b) and b > self._bound:
-            self._bound = b
-
-    def _snapshot(self) -> SearchStats:
+    def _refresh(self) -> None:
+        """Bring the live stats vector up to date (the kernel's part in one numba call)."""
+        v = self._v
         ws = self._ws
-        elapsed_ms = self.elapsed_ms()
         if ws is not None:
-            ist, fst = ws.istate, ws.fstate
-            size = int(ist[K.I_SIZE])
-            self._update_bound(ws)
-            expansions = int(ist[K.I_EXPANSIONS])
-            min_f = K.open_min_f(ws.heap, ws.istate)
-            mean_g = float(fst[K.F_SUM_G]) / size if size else 0.0
-            mean_h = float(fst[K.F_SUM_H]) / size if size else 0.0
-            touched, reopened = int(ist[K.I_TOUCHED]), int(ist[K.I_REOPENED])
-        else:
-            size, expansions, min_f, mean_g, mean_h = 0, self._expansions, math.inf, 0.0, 0.0
-            touched, reopened = 0, 0
+            K.refresh_stats(ws.heap, ws.istate, ws.fstate, v)
+        elapsed_ms = self.elapsed_ms()
+        v[_V_ELAPSED] = elapsed_ms
+        expansions = v[_V_EXPANSIONS]
         if self._budget is not None:
-            spare = max(0, self._budget - expansions)
-            frac = spare / self._budget
-            left: int | None = spare
-            if self.deadline_ms is None and self.budget_expansions is None:
-                left = None  # the safety cap is not a contract
+            spare = max(0.0, self._budget - expansions)
+            v[_V_FRAC] = spare / self._budget
+            contract = self.deadline_ms is not None or self.budget_expansions is not None
+            v[_V_LEFT] = spare if contract else -1.0  # the safety cap is not a contract
         else:
             assert self.deadline_ms is not None
-            left = None
-            frac = max(0.0, 1.0 - elapsed_ms / self.deadline_ms)
-        cost = self._cost
-        bound = self._bound if cost is None else min(self._bound, cost)
-        if self._status == "optimal" and cost is not None:
-            bound = cost
-        steps_since = (
-            self.steps_done - self._last_improvement_step
-            if self._last_improvement_step >= 0
-            else self.steps_done
+            v[_V_FRAC] = max(0.0, 1.0 - elapsed_ms / self.deadline_ms)
+        v[_V_WEIGHT] = self.weight if math.isfinite(self.weight) else 1.0
+        v[_V_STEPS_DONE] = self.steps_done
+        v[_V_STEPS_SINCE] = self.steps_done - (
+            self._last_improvement_step if self._last_improvement_step >= 0 else 0
         )
-        return SearchStats(
-            incumbent_cost_s=cost,
-            lower_bound_s=bound,
-            open_size=size,
-            open_mean_g_s=mean_g,
-            open_mean_h_s=mean_h,
-            open_min_f_s=min_f,
-            h_start_s=self._h_start,
-            expansions=expansions,
-            expansions_left=left,
-            contract_fraction_left=frac,
-            elapsed_ms=elapsed_ms,
-            weight=self.weight if math.isfinite(self.weight) else 1.0,
-            mode=self.mode,
-            improvements=len(self.improvements),
-            steps_done=self.steps_done,
-            steps_total=self.steps_total,
-            steps_since_improvement=steps_since,
-            expansions_since_improvement=expansions - self._last_improvement_expansions,
-            cpu_share_last_step=self._cpu_share,
-            nodes_touched=touched,
-            reopened=reopened,
-            done=self.done,
-        )
+        v[_V_EXP_SINCE] = expansions - self._last_improvement_expansions
+        v[_V_RATE] = expansions / self._cpu_s if self._cpu_s > 0 else 0.0
 
-    def _finish(self, status: str) -> None:
+    def _finish(self, status: str, reason: str) -> None:
         self._finished_at = time.perf_counter()
         ws = self._ws
         if ws is not None:
-            self._update_bound(ws)
-            if status == "optimal" and self._cost is not None:
-                self._bound = self._cost
-            self._expansions = int(ws.istate[K.I_EXPANSIONS])
-            if self._rate is not None:
-                ws.rate_hint = self._rate
+            if int(ws.istate[K.I_BEST_NODE]) >= 0:
+                self._route_from_kernel(ws)
+            self._weight_capped = bool(ws.istate[K.I_RUNAWAY])
         self._status = status
-        self._final_stats = self._snapshot()
+        self._stopped_by = reason
+        self._refresh()
+        v = self._v
+        if status == "optimal" and self._cost is not None:
+            v[_V_BOUND] = self._cost
+        v[_V_DONE] = 1.0
+        self._final = v
         if ws is not None:
             self._ws = None
-            self._finalizer.detach()
             self.planner._release(ws)
 
 
@@ -799,6 +1038,7 @@ def plan(
     cancel: _Event | None = None,
     seed: int | None = None,
     started_at: float | None = None,
+    gap_target: float = 0.0,
 ) -> PlanResult:
     """Best route from ``origin`` to ``destination`` within the contract.
 
@@ -813,19 +1053,27 @@ def plan(
         A spec for :func:`planner.controllers.make_controller` (``"fixed:2"``, ``"random"``,
         ``"decreasing"``, ``"ana"``) or an object following the ``Controller`` protocol.
     steps : int
-        Decision steps (the controller is asked for a weight before each).
+        Most decision steps (the controller is asked for a weight before each); under a
+        deadline fewer when control would cost more than :data:`CONTROL_SHARE` of it.
     on_improvement : callable, optional
-        Called with every :class:`Improvement`, in the search thread; the one it gets carries
-        the route (``route_nodes``, ``route_edges``).
+        Called with every :class:`Improvement`, in the search thread; the one it gets for a
+        route found by the search carries the route (``route_nodes``, ``route_edges``).
     cancel : threading.Event-like, optional
     seed : int, optional
         Seed for randomised controllers.
     started_at : float, optional
         ``time.perf_counter()`` at request arrival (the deadline counts from it).
+    gap_target : float
+        Stop as soon as the proven relative gap is at or below this (0: search until the
+        deadline or the proof).
     """
     t0 = time.perf_counter() if started_at is None else started_at
     ctrl = make_controller(controller, seed=seed) if isinstance(controller, str) else controller
     planner = planner_for(graph_or_planner)
+    if deadline_ms is not None and budget_expansions is None:
+        validate_contract(deadline_ms, None, steps)
+        kind = "policy" if getattr(ctrl, "uses_policy", False) else "builtin"
+        steps = steps_for_deadline(float(deadline_ms), steps, STEP_COST_US[kind])
     search = planner.start(
         origin,
         destination,
@@ -835,9 +1083,13 @@ def plan(
         started_at=t0,
         cancel=cancel,
         mode=ctrl.mode,
+        gap_target=gap_target,
     )
     search.controller_name = ctrl.name
     search.on_improvement = on_improvement
+    if on_improvement is not None:
+        for imp in search.improvements:  # the instant route, found when the search opened
+            on_improvement(replace(imp, route_nodes=search._route, route_edges=search._route_edges))
     weight = _check_weight(ctrl.reset(seed), ctrl.name)
     while not search.done:
         search.run_step(weight)
@@ -871,5 +1123,7 @@ __all__ = [
     "WeightStep",
     "plan",
     "planner_for",
+    "steps_for_deadline",
     "validate_contract",
+    "validate_gap_target",
 ]

@@ -243,7 +243,7 @@ class WeightControlEnv(gym.Env):
     Info
     ----
     ``quality``, ``optimal_cost_s``, ``incumbent_cost_s``, ``query_index``, ``weight``,
-    ``status`` (``running``, ``optimal`` or ``contract_spent``).
+    ``status`` (``running`` or a final status of ``dueroute.planner.results.STATUSES``).
     """
 
     metadata: dict[str, Any] = {"render_modes": []}
@@ -306,9 +306,7 @@ class WeightControlEnv(gym.Env):
     def _observe(self) -> tuple[np.ndarray, dict[str, Any]]:
         assert self._search is not None
         stats = self._search.stats()
-        stats = dataclasses.replace(
-            stats, cpu_share_last_step=float(self.np_random.uniform(0.25, 1.0))
-        )
+        stats = stats.replace(cpu_share_last_step=float(self.np_random.uniform(0.25, 1.0)))
         info = {
             "quality": self._quality,
             "optimal_cost_s": self._optimal_s,

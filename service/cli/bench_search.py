@@ -50,7 +50,7 @@ from dueroute.service.cli.common import (
     progress,
 )
 
-#: (key, what, comparison, target) — the issue's targets.
+#: (key, what, comparison, target): the performance targets this benchmark reports against.
 TARGETS: tuple[tuple[str, str, str, float], ...] = (
     ("kernel_vs_scipy_rate", "kernel settle rate vs scipy dijkstra", ">=", 1.0),
     ("setup_us_large", "per-query setup on the large graph (us)", "<=", 50.0),

@@ -53,7 +53,7 @@ MAX_REQUESTS_PER_CELL = 1_000_000
 MAX_DEADLINE_MS = 60_000
 
 #: Plan statuses the contract allows in a ``wait=true`` answer.
-FINAL_STATUSES = frozenset({"optimal", "contract_spent", "no_route", "cancelled"})
+FINAL_STATUSES = frozenset({"optimal", "improved", "instant", "no_route", "not_found", "cancelled"})
 
 #: Relative tolerance when comparing costs summed in a different order (server vs local).
 COST_RTOL = 1e-6

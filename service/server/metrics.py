@@ -44,7 +44,7 @@ class ServiceMetrics:
         r = self.registry
         self.plans = Counter(
             "dueroute_plans",
-            "Plan requests by outcome (optimal, contract_spent, no_route, cancelled, shed, "
+            "Plan requests by outcome (optimal, improved, instant, no_route, not_found, cancelled, shed, "
             "rejected)",
             ["outcome"],
             registry=r,

@@ -27,7 +27,9 @@ MAX_DEADLINE_MS = int(limits.MAX_DEADLINE_MS)
 #: so OpenAPI clients see the rule (a test checks it against ``planner.controllers``).
 CONTROLLER_PATTERN = r"^(learned|decreasing|ana|random|fixed:([1-4](\.[0-9]+)?|5(\.0+)?))$"
 
-PlanStatus = Literal["running", "optimal", "contract_spent", "no_route", "cancelled"]
+PlanStatus = Literal[
+    "running", "optimal", "improved", "instant", "no_route", "not_found", "cancelled"
+]
 
 
 def _whole_number(v: Any) -> Any:
@@ -121,7 +123,10 @@ class Improvement(BaseModel):
     cost_s: float
     lower_bound_s: float
     gap: float
-    weight: float
+    weight: float | None = Field(description="weight in force (null for the instant route)")
+    source: Literal["instant", "search"] = Field(
+        description="instant: the route every search starts from; search: found by the search"
+    )
 
 
 class Timings(BaseModel):

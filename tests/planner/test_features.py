@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-import dataclasses
+import math
 
 import numpy as np
 import pytest
@@ -60,7 +60,7 @@ def trace(graph: RoadGraph, origin: int, destination: int, weights, budget: int 
         if search.done:
             break
         search.run_step(w)
-        stats = dataclasses.replace(search.stats(), cpu_share_last_step=1.0)
+        stats = search.stats().replace(cpu_share_last_step=1.0)
         out.append((stats, compute_features(stats)))
     return out
 
@@ -117,8 +117,44 @@ def test_before_any_route_and_degenerate_stats():
     x = compute_features(stats)
     assert x[IDX["has_incumbent"]] == 0 and x[IDX["quality_estimate"]] == 0
     assert x[IDX["stale_share"]] == 1.0
-    weird = dataclasses.replace(
-        stats, h_start_s=0.0, open_size=0, open_min_f_s=float("inf"), lower_bound_s=float("nan")
+    weird = stats.replace(
+        h_start_s=0.0, open_size=0, open_min_f_s=float("inf"), lower_bound_s=float("nan")
     )
     y = compute_features(weird)
     assert np.all(np.isfinite(y)) and np.all(y >= FEATURE_LOW) and np.all(y <= FEATURE_HIGH)
+
+
+def _reference_features(stats) -> np.ndarray:
+    """The module docstring's table, written out in plain Python (an independent reading)."""
+    h0 = max(stats.h_start_s if math.isfinite(stats.h_start_s) else 0.0, 1.0)
+    inc = stats.incumbent_cost_s
+    has = inc is not None and math.isfinite(inc) and inc > 0
+    bound = stats.lower_bound_s if math.isfinite(stats.lower_bound_s) else 0.0
+    size = max(stats.open_size, 0)
+    steps = max(stats.steps_done, 0)
+    vals = [
+        1.0 if has else 0.0,
+        min(max(bound / inc, 0.0), 1.0) if has else 0.0,
+        stats.contract_fraction_left,
+        (stats.weight - 1.0) / 4.0,
+        math.log10(1.0 + max(stats.h_start_s, 0.0)) / 4.0,
+        math.log10(1.0 + size) / 6.0,
+        stats.open_mean_g_s / h0 if size else 0.0,
+        stats.open_mean_h_s / h0 if size else 0.0,
+        (stats.open_min_f_s / h0 if size else bound / h0),
+        bound / h0,
+        inc / h0 if has else 0.0,
+        math.log1p(stats.improvements) / 3.0,
+        (stats.steps_since_improvement / steps if steps else 0.0) if has else 1.0,
+        stats.cpu_share_last_step,
+    ]
+    return np.clip(np.asarray(vals, dtype=np.float32), FEATURE_LOW, FEATURE_HIGH)
+
+
+def test_numba_features_equal_the_table_read_in_python():
+    """The compiled feature function (shared by training and serving) equals a plain-Python
+    reading of the feature table, step by step along real searches."""
+    graph = grid()
+    for weights in ([1.0] * 6, [5.0, 3.0, 1.0, 2.0, 1.0, 1.0]):
+        for stats, x in trace(graph, 0, graph.n_nodes - 1, weights, budget=300):
+            np.testing.assert_allclose(x, _reference_features(stats), rtol=1e-6, atol=1e-7)

@@ -132,18 +132,20 @@ def test_alt_admissible_and_consistent_on_random_graphs(method: str, seed: int) 
 
 @pytest.mark.parametrize("method", METHODS)
 def test_stored_distances_match_scipy(method: str) -> None:
-    """lm_from / lm_to equal scipy csgraph.dijkstra distances to float32 rounding (IEEE 754
-    round to nearest); missing distances are +inf, as in scipy, never NaN."""
+    """The decoded rows equal scipy csgraph.dijkstra distances within half a unit (the 16-bit
+    rounding to nearest); missing distances decode to +inf, as in scipy, never NaN. The rows
+    are one contiguous uint16 block per node."""
     graph = random_graph(5)
     lm = build_landmarks(graph, count=5, method=method, progress=False)
+    assert lm.lm.dtype == np.uint16 and lm.lm.flags.c_contiguous
+    assert lm.lm.shape == (graph.n_nodes, 5, 2)
     exact_from = dijkstra(graph.csr(), indices=lm.nodes)  # [i, v]
     exact_to = dijkstra(graph.csr().T.tocsr(), indices=lm.nodes)
     for stored, exact in ((lm.lm_from, exact_from.T), (lm.lm_to, exact_to.T)):
-        assert stored.dtype == np.float32 and stored.flags.c_contiguous
         assert stored.shape == (graph.n_nodes, 5)
         finite = np.isfinite(exact)
         assert (~finite).any(), "the test graph should have unreachable nodes"
-        np.testing.assert_allclose(stored[finite], exact[finite], rtol=2.0**-24, atol=0)
+        assert np.all(np.abs(stored[finite] - exact[finite]) <= lm.unit_s / 2 * (1 + 1e-9))
         assert np.all(np.isposinf(stored[~finite]))
     assert lm.max_distance_s == pytest.approx(
         max(exact_from[np.isfinite(exact_from)].max(), exact_to[np.isfinite(exact_to)].max())
@@ -201,36 +203,63 @@ def test_distinct_even_when_the_component_is_tiny() -> None:
     assert build_landmarks(graph, count=16, method="avoid", progress=False).count == 2
 
 
-def test_float32_slack_on_adversarial_large_distances() -> None:
-    """Distances of ~1e7 s with fractional parts, chosen so float32 rounding (2**-24 relative,
-    IEEE 754) goes both ways: with ``slack_s`` every bound stays admissible against scipy
-    csgraph.dijkstra, also when the kernel evaluates the formula in float32; without the slack
+def test_quantization_slack_on_adversarial_distances() -> None:
+    """Edge costs with fractional parts, chosen so the 16-bit rounding (half a unit either way)
+    goes both ways: with ``slack_s`` every bound stays admissible against scipy
+    csgraph.dijkstra, also when evaluated in integer codes as the kernel does; without the slack
     some bound would exceed the true distance, so the slack is doing real work."""
     rng = np.random.default_rng(0)
-    costs = 2.0**23 / 40 * rng.uniform(0.999, 1.001, 40) + rng.uniform(0, 1, 40) / 3.0
+    costs = 100.0 * rng.uniform(0.9, 1.1, 40) + rng.uniform(0, 1, 40) / 3.0
     graph = line_graph(costs)
     lm = build_landmarks(graph, count=3, method="farthest", progress=False)
     exact = dijkstra(graph.csr())
     h = all_bounds(graph, lm)
     assert np.all(h <= exact)
 
-    # the same formula evaluated entirely in float32
-    f32 = np.float32
+    # the kernel's formula: integer code differences (no path = 65535), scaled once
+    codes = np.asarray(lm.lm).astype(np.int64)
     for t in range(graph.n_nodes):
-        fwd = lm.lm_from[t][None, :] - lm.lm_from
-        bwd = lm.lm_to - lm.lm_to[t][None, :]
-        term = np.max(np.maximum(fwd, bwd), axis=1) - f32(lm.slack_s)
-        assert term.dtype == np.float32
-        assert np.all(np.maximum(term, f32(0)).astype(np.float64) <= exact[:, t])
+        d1 = codes[:, :, 0] - codes[t, :, 0][None, :]
+        d2 = codes[t, :, 1][None, :] - codes[:, :, 1]
+        term = np.max(np.maximum(d1, d2), axis=1) * lm.unit_s - lm.slack_s
+        reachable = np.isfinite(exact[:, t])
+        assert np.all(np.maximum(term, 0.0)[reachable] <= exact[reachable, t])
 
     unslacked = dataclasses.replace(lm, slack_s=0.0)
     assert np.any(all_bounds(graph, unslacked) > exact), "adversarial case not adversarial"
 
 
+def test_trees_are_shortest_path_trees() -> None:
+    """Each landmark's trees hold, for every node, an edge of a shortest path to / from the
+    landmark: its cost closes the distance gap exactly (Bellman's optimality condition,
+    distances from scipy csgraph.dijkstra), and -1 only at the landmark or without a path."""
+    graph = random_graph(6)
+    lm = build_landmarks(graph, count=4, progress=False)
+    csr = graph.csr()
+    d_from = dijkstra(csr, indices=lm.nodes)
+    d_to = dijkstra(csr.T.tocsr(), indices=lm.nodes)
+    tail, head, cost = np.asarray(graph.tail), np.asarray(graph.head), graph.travel_time_s
+    for i, landmark in enumerate(lm.nodes):
+        into = lm.tree_from[i]
+        has = into >= 0
+        assert np.array_equal(has, np.isfinite(d_from[i]) & (np.arange(graph.n_nodes) != landmark))
+        v = np.flatnonzero(has)
+        e = into[has]
+        assert np.all(head[e] == v)
+        np.testing.assert_allclose(d_from[i, tail[e]] + cost[e], d_from[i, v], rtol=1e-12)
+        out = lm.tree_to[i]
+        has = out >= 0
+        assert np.array_equal(has, np.isfinite(d_to[i]) & (np.arange(graph.n_nodes) != landmark))
+        v = np.flatnonzero(has)
+        e = out[has]
+        assert np.all(tail[e] == v)
+        np.testing.assert_allclose(cost[e] + d_to[i, head[e]], d_to[i, v], rtol=1e-12)
+
+
 def test_zero_landmarks_leave_the_great_circle_bound() -> None:
     graph = random_graph(4)
     lm = build_landmarks(graph, count=0, progress=False)
-    assert lm.lm_from.shape == (graph.n_nodes, 0) and lm.lm_to.shape == (graph.n_nodes, 0)
+    assert lm.lm.shape == (graph.n_nodes, 0, 2) and lm.lm_to.shape == (graph.n_nodes, 0)
     assert alt_bound_s(lm, 3, 7) == 0.0
     assert heuristic_s(graph, lm, 3, 7) == pytest.approx(great_circle_bound_s(graph, 3, 7))
 
@@ -260,15 +289,18 @@ def test_file_round_trip_is_memory_mapped(tmp_path: Path) -> None:
     with zipfile.ZipFile(path) as zf:  # numpy alone can read it, members stored uncompressed
         assert {i.compress_type for i in zf.infolist()} == {zipfile.ZIP_STORED}
     loaded = load_landmarks(path, graph)
-    assert isinstance(loaded.lm_from, np.memmap) and isinstance(loaded.lm_to, np.memmap)
-    assert loaded.lm_from.flags.c_contiguous
+    for name in ("lm", "tree_to", "tree_from"):
+        arr = getattr(loaded, name)
+        assert isinstance(arr, np.memmap) and arr.flags.c_contiguous
+        assert arr.ctypes.data % 64 == 0, f"{name} rows do not start on a cache line"
+        np.testing.assert_array_equal(arr, getattr(lm, name))
     np.testing.assert_array_equal(loaded.nodes, lm.nodes)
-    np.testing.assert_array_equal(loaded.lm_from, lm.lm_from)
-    np.testing.assert_array_equal(loaded.lm_to, lm.lm_to)
-    assert loaded.slack_s == lm.slack_s and loaded.max_distance_s == lm.max_distance_s
+    assert loaded.slack_s == lm.slack_s and loaded.unit_s == lm.unit_s
+    assert loaded.max_distance_s == lm.max_distance_s
     assert loaded.method == "avoid" and loaded.graph_fingerprint == graph.fingerprint
-    with np.load(path) as plain:
-        np.testing.assert_array_equal(plain["lm_to"], lm.lm_to)
+    with np.load(path) as plain:  # numpy's own reader (the padding is a standard zip field)
+        np.testing.assert_array_equal(plain["lm"], lm.lm)
+        np.testing.assert_array_equal(plain["tree_from"], lm.tree_from)
 
 
 def test_landmarks_of_another_graph_are_refused(tmp_path: Path) -> None:
@@ -278,7 +310,7 @@ def test_landmarks_of_another_graph_are_refused(tmp_path: Path) -> None:
         load_landmarks(path, other)
 
 
-@pytest.mark.parametrize("damage", ["truncate", "garbage", "missing", "shape", "negative", "nan"])
+@pytest.mark.parametrize("damage", ["truncate", "garbage", "missing", "shape", "tree", "dtype"])
 def test_corrupt_landmark_files_are_refused(tmp_path: Path, damage: str) -> None:
     graph = random_graph(8)
     lm = build_landmarks(graph, count=3, progress=False)
@@ -289,15 +321,23 @@ def test_corrupt_landmark_files_are_refused(tmp_path: Path, damage: str) -> None
         path.write_bytes(b"this is not a zip file at all")
     else:
         meta = np.load(path)["meta"]
-        arrays = {"meta": meta, "nodes": lm.nodes, "lm_from": lm.lm_from, "lm_to": lm.lm_to}
+        arrays = {
+            "meta": meta,
+            "nodes": lm.nodes,
+            "lm": lm.lm,
+            "tree_to": lm.tree_to,
+            "tree_from": lm.tree_from,
+        }
         if damage == "missing":
-            del arrays["lm_to"]
+            del arrays["tree_to"]
         elif damage == "shape":
-            arrays["lm_to"] = lm.lm_to[:-1]
+            arrays["lm"] = lm.lm[:-1]
+        elif damage == "tree":
+            bad = lm.tree_to.copy()
+            bad[0, 0] = graph.n_edges + 10  # an edge the graph does not have
+            arrays["tree_to"] = bad
         else:
-            bad = lm.lm_from.copy()
-            bad[0, 0] = -5.0 if damage == "negative" else np.nan
-            arrays["lm_from"] = bad
+            arrays["lm"] = lm.lm.astype(np.float32)
         with open(path, "wb") as fh:
             np.savez(fh, **arrays)
     with pytest.raises(CorruptGraphFile, match=str(path.name)):
@@ -319,7 +359,7 @@ def test_load_or_build_stores_beside_the_graph_and_rebuilds_when_stale(tmp_path:
     stamp = first.path.stat().st_mtime_ns
     again = load_or_build_landmarks(graph, count=3, progress=False)
     assert again.path.stat().st_mtime_ns == stamp  # reused, not rebuilt
-    np.testing.assert_array_equal(again.lm_from, first.lm_from)
+    np.testing.assert_array_equal(again.lm, first.lm)
 
     # the graph is recompiled with other costs: the old file is stale and gets replaced
     other_path = save_graph(random_graph(9), graph_path)

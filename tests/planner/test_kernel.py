@@ -2,20 +2,25 @@
 
 Graphs here are small random geometric graphs: nodes at random coordinates, edge lengths at
 least the great-circle distance between their endpoints (so the great-circle heuristic is
-admissible, as in any real road graph), built with ``planner.graph.build_graph``.
+admissible, as in any real road graph), built with ``planner.graph.build_graph``. The kernel is
+driven directly (``_open`` below mirrors what ``planner.session`` does) with small expansion
+limits, so resuming a search between calls is exercised too.
 """
 
 from __future__ import annotations
 
 import math
-from types import SimpleNamespace
+import threading
+import time
 
 import numpy as np
 import pytest
+from scipy.sparse import csr_matrix
 from scipy.sparse.csgraph import dijkstra
 
 from dueroute.planner import _kernel as K
 from dueroute.planner.graph import RoadGraph, build_graph, great_circle_m
+from dueroute.planner.heuristics import build_landmarks, largest_component_nodes
 from dueroute.planner.session import Planner
 
 
@@ -86,53 +91,60 @@ def grid_graph(side: int, seed: int = 0, spacing_deg: float = 0.001) -> RoadGrap
     )
 
 
-def exact_landmarks(graph: RoadGraph, landmarks: list[int]) -> SimpleNamespace:
-    """ALT tables from scipy csgraph.dijkstra, in the kernel's float32 node-major layout."""
-    csr = graph.csr()
-    d_from = dijkstra(csr, directed=True, indices=landmarks)  # landmark -> v
-    d_to = dijkstra(csr.T.tocsr(), directed=True, indices=landmarks)  # v -> landmark
-    finite = np.concatenate((d_from[np.isfinite(d_from)], d_to[np.isfinite(d_to)]))
-    top = float(finite.max()) if finite.size else 0.0
-    # float32 rounding moves each stored distance by at most top * 2^-24; two of them per bound
-    slack = 2.0 * top * 2.0**-23
-    return SimpleNamespace(
-        lm_from=np.ascontiguousarray(d_from.T, dtype=np.float32),
-        lm_to=np.ascontiguousarray(d_to.T, dtype=np.float32),
-        slack_s=slack,
-    )
+def _open(
+    planner: Planner,
+    sources: list[tuple[int, float]],
+    targets: list[tuple[int, int, float]],
+    weight: float,
+    mode: int,
+    ws=None,
+):
+    """Set up a query like ``planner.session`` does: sources ``(node, g0)``, targets
+    ``(node, kind, exit_cost)``; the target position and landmark row are the first target's."""
+    ws = ws if ws is not None else planner._acquire()
+    ist, fst = ws.istate, ws.fstate
+    ist[:] = 0
+    fst[:] = 0.0
+    ist[K.I_GEN] = ws.next_generations(1)
+    ist[K.I_MODE] = mode
+    fst[K.F_WEIGHT] = weight
+    fst[K.F_GC_SCALE] = planner._gc_scale if planner.use_chord else 0.0
+    fst[K.F_GC_MARGIN] = planner._gc_margin
+    fst[K.F_LM_SLACK] = planner._lm_slack
+    fst[K.F_LM_UNIT] = planner._lm_unit
+    t0 = targets[0][0]
+    fst[K.F_T_X : K.F_T_Z + 1] = planner._coords[t0]
+    ist[K.I_N_TARGETS] = len(targets)
+    for k, (node, kind, exit_cost) in enumerate(targets):
+        ist[K.I_TNODE + k] = node
+        ist[K.I_TKIND + k] = kind
+        fst[K.F_TCOST + k] = exit_cost
+    if planner.n_landmarks:
+        ist[K.I_TLM : K.I_TLM + 2 * planner.n_landmarks] = planner._lm[t0].reshape(-1)
+    ist[K.I_N_ACTIVE] = planner.active_landmarks
+    src = np.array([s for s, _ in sources], dtype=np.int64)
+    g0 = np.array([g for _, g in sources], dtype=np.float64)
+    K.start_query(planner._coords, planner._lm, ws.state, ws.heap, ist, fst, src, g0)
+    return ws
+
+
+def _drive(planner: Planner, ws, limit: int = 7) -> tuple[int, float, list[float]]:
+    """Run to the end in small calls; returns (status, incumbent, incumbents logged)."""
+    ist, fst = ws.istate, ws.fstate
+    ist[K.I_LIMIT] = limit
+    while True:
+        status = planner._run(ws)
+        if status != K.LIMIT:
+            count = min(int(ist[K.I_LOG_COUNT]), K.MAX_LOG)
+            logged = [float(fst[K.F_LOG + 4 * i]) for i in range(count)]
+            return status, float(fst[K.F_INCUMBENT]), logged
 
 
 def _run_to_end(planner: Planner, origin: int, target: int, weight: float, mode: int) -> tuple:
-    """Drive the kernel directly: returns (status, incumbent, improvements, expansions)."""
-    ws = planner._acquire()
+    ws = _open(planner, [(origin, 0.0)], [(target, K.ARRIVAL, 0.0)], weight, mode)
     try:
-        ist, fst = ws.istate, ws.fstate
-        ist[:] = 0
-        fst[:] = 0.0
-        ist[K.I_GEN] = ws.next_generation()
-        ist[K.I_ORIGIN], ist[K.I_TARGET], ist[K.I_MODE] = origin, target, mode
-        fst[K.F_WEIGHT] = weight
-        fst[K.F_GC_SCALE] = planner._gc_scale
-        fst[K.F_GC_MARGIN] = planner._gc_margin
-        fst[K.F_LM_SLACK] = planner._lm_slack
-        K.start_query(
-            planner._coords,
-            planner._lm_from,
-            planner._lm_to,
-            ws.nodei,
-            ws.nodef,
-            ws.heap,
-            ist,
-            fst,
-        )
-        ist[K.I_CHUNK] = 7  # small chunks: exercise resuming
-        incumbents = []
-        while True:
-            status = planner._chunk(ws)
-            if status == K.IMPROVED:
-                incumbents.append(float(fst[K.F_INCUMBENT]))
-            elif status == K.PROVEN:
-                return status, float(fst[K.F_INCUMBENT]), incumbents, int(ist[K.I_EXPANSIONS])
+        status, inc, logged = _drive(planner, ws)
+        return status, inc, logged, int(ws.istate[K.I_EXPANSIONS])
     finally:
         planner._release(ws)
 
@@ -140,8 +152,8 @@ def _run_to_end(planner: Planner, origin: int, target: int, weight: float, mode:
 @pytest.mark.parametrize("mode", [K.MODE_WEIGHTED, K.MODE_ANA])
 def test_kernel_run_to_end_is_optimal(mode: int) -> None:
     """Run to proof, the kernel's incumbent equals scipy ``csgraph.dijkstra`` (rel 1e-9);
-    incumbents only decrease (Hansen & Zhou 2007, Anytime Weighted A*; van den Berg et al. 2011,
-    ANA*)."""
+    logged incumbents only decrease (Hansen & Zhou 2007, Anytime Weighted A*; van den Berg et
+    al. 2011, ANA*)."""
     g = random_graph(400, 1600, seed=1)
     planner = Planner(g)
     dist = dijkstra(g.csr(), directed=True, indices=np.arange(10))
@@ -149,23 +161,22 @@ def test_kernel_run_to_end_is_optimal(mode: int) -> None:
         for t in range(0, 400, 37):
             if s == t:
                 continue
-            status, inc, incumbents, _ = _run_to_end(planner, s, t, 3.0, mode)
+            status, inc, logged, _ = _run_to_end(planner, s, t, 3.0, mode)
             assert status == K.PROVEN
             if math.isfinite(dist[s, t]):
                 assert inc == pytest.approx(dist[s, t], rel=1e-9)
-                assert incumbents == sorted(incumbents, reverse=True)
+                assert logged == sorted(logged, reverse=True) and logged[-1] == inc
             else:
                 assert inc == math.inf
 
 
-def test_alt_bounds_from_exact_tables_keep_optimality() -> None:
-    """With ALT tables computed by scipy ``csgraph.dijkstra`` (exact distances, Goldberg &
-    Harrelson 2005: ALT bounds are admissible), weight 1 still returns the dijkstra optimum, and
-    needs no more expansions than the great-circle bound alone on average."""
+def test_alt_landmarks_keep_optimality_and_cut_expansions() -> None:
+    """With ALT landmarks (Goldberg & Harrelson 2005: admissible bounds), weight 1 returns the
+    scipy ``csgraph.dijkstra`` optimum and needs fewer expansions than the great-circle bound
+    alone, over many queries."""
     g = grid_graph(30, seed=2)
-    lms = exact_landmarks(g, [0, 29, 870, 899])
-    plain, alt = Planner(g), Planner(g, landmarks=lms)
-    assert alt.n_landmarks == 4
+    plain, alt = Planner(g), Planner(g, landmarks=build_landmarks(g, count=6, progress=False))
+    assert alt.n_landmarks == 6 and not alt.use_chord
     rng = np.random.default_rng(0)
     pairs = rng.integers(0, g.n_nodes, (25, 2))
     dist = dijkstra(g.csr(), directed=True, indices=pairs[:, 0])
@@ -179,45 +190,27 @@ def test_alt_bounds_from_exact_tables_keep_optimality() -> None:
         assert inc_a == pytest.approx(dist[i, t], rel=1e-9)
         exp_plain += e_p
         exp_alt += e_a
-    assert exp_alt <= exp_plain
+    assert exp_alt < exp_plain
 
 
-def test_heuristic_is_admissible_against_dijkstra() -> None:
+@pytest.mark.parametrize("with_landmarks", [False, True])
+def test_heuristic_is_admissible_against_dijkstra(with_landmarks: bool) -> None:
     """h(v) <= exact distance d(v, t) from scipy ``csgraph.dijkstra`` on the reversed graph, for
-    both the great-circle term and ALT tables (Goldberg & Harrelson 2005)."""
+    every node the search touched: the great-circle term, and the 16-bit ALT codes with their
+    slack (Goldberg & Harrelson 2005), including nodes that cannot reach t at all."""
     g = random_graph(300, 1500, seed=3)
-    lms = exact_landmarks(g, [5, 50, 150])
+    lms = build_landmarks(g, count=3, progress=False) if with_landmarks else None
     planner = Planner(g, landmarks=lms)
-    ws = planner._acquire()
-    t = 17
-    exact_to_t = dijkstra(g.csr().T.tocsr(), directed=True, indices=t)
-    ws.istate[:] = 0
-    ws.istate[K.I_GEN] = ws.next_generation()
-    ws.istate[K.I_ORIGIN], ws.istate[K.I_TARGET] = 0, t
-    ws.fstate[K.F_GC_SCALE] = planner._gc_scale
-    ws.fstate[K.F_GC_MARGIN] = planner._gc_margin
-    ws.fstate[K.F_LM_SLACK] = planner._lm_slack
-    ws.fstate[K.F_WEIGHT] = 1.0
-    K.start_query(
-        planner._coords,
-        planner._lm_from,
-        planner._lm_to,
-        ws.nodei,
-        ws.nodef,
-        ws.heap,
-        ws.istate,
-        ws.fstate,
-    )
-    ws.istate[K.I_CHUNK] = 10**9
-    while planner._chunk(ws) != K.PROVEN:
-        pass
-    touched = np.flatnonzero(ws.nodei[:, K.N_STAMP] == ws.istate[K.I_GEN])
-    h = ws.nodef[touched, K.N_H]
-    d = exact_to_t[touched]
-    assert np.all(h <= d * (1 + 1e-12) + 1e-9)
-    # the landmarks prove some nodes unable to reach t (h = inf), and only such nodes
-    assert np.all(np.isinf(d[np.isinf(h)]))
-    planner._release(ws)
+    for t in (17, 123, 250):
+        exact_to_t = dijkstra(g.csr().T.tocsr(), directed=True, indices=t)
+        ws = _open(planner, [(0, 0.0)], [(t, K.ARRIVAL, 0.0)], 1.0, K.MODE_WEIGHTED)
+        _drive(planner, ws, limit=10**9)
+        si = ws.state.view(np.int32)
+        touched = np.flatnonzero(si[:, K.SI_STAMP] == ws.istate[K.I_GEN])
+        h = ws.state[touched, K.S_H]
+        d = exact_to_t[touched]
+        assert np.all(h <= d * (1 + 1e-12) + 1e-9)
+        planner._release(ws)
 
 
 def test_extract_route_walks_parallel_edges_by_index() -> None:
@@ -239,12 +232,11 @@ def test_extract_route_walks_parallel_edges_by_index() -> None:
         spatial_order=False,
     )
     planner = Planner(g)
-    status, inc, _, _ = _run_to_end(planner, 0, 2, 1.0, K.MODE_WEIGHTED)
+    ws = _open(planner, [(0, 0.0)], [(2, K.ARRIVAL, 0.0)], 1.0, K.MODE_WEIGHTED)
+    status, inc, _ = _drive(planner, ws)
     assert status == K.PROVEN
     assert inc == pytest.approx(2 * seg / 10.0, rel=1e-12)
-    ws = planner._acquire()
-    # the pooled workspace still holds the finished query's parent pointers
-    nodes, edges = K.extract_route(ws.nodei, 0, 2, g.n_nodes)
+    nodes, edges = K.extract_route(ws.state, int(ws.istate[K.I_BEST_NODE]), g.n_nodes)
     planner._release(ws)
     assert nodes.tolist() == [0, 1, 2]
     assert g.travel_time_s[edges].sum() == pytest.approx(inc, rel=1e-12)
@@ -310,8 +302,6 @@ def test_heap_compaction_keeps_results_exact(weight: float, mode: int) -> None:
     planner = Planner(g)
     ws = planner._acquire()
     ws.heap = np.zeros((2, g.n_nodes + 1, 2))
-    ws.arrays = (ws.nodei, ws.nodef, ws.heap, ws.istate, ws.fstate)
-    planner._release(ws)
     origins = [0, 7, 33]
     dist = dijkstra(g.csr(), directed=True, indices=origins)
     compactions = 0
@@ -319,10 +309,152 @@ def test_heap_compaction_keeps_results_exact(weight: float, mode: int) -> None:
         for t in range(1, 120, 9):
             if t == s:
                 continue
-            _, inc, _, _ = _run_to_end(planner, s, t, weight, mode)
+            _open(planner, [(s, 0.0)], [(t, K.ARRIVAL, 0.0)], weight, mode, ws=ws)
+            _, inc, _ = _drive(planner, ws)
             if math.isfinite(dist[i, t]):
                 assert inc == pytest.approx(dist[i, t], rel=1e-9)
             else:
                 assert inc == math.inf
-            compactions += int(planner._pool[0].istate[K.I_COMPACTIONS])
+            compactions += int(ws.istate[K.I_COMPACTIONS])
     assert compactions > 0
+
+
+def test_sources_and_exit_targets_equal_dijkstra_on_an_augmented_graph() -> None:
+    """Several sources with start costs and EXIT targets (the destination on an edge leaving a
+    node, reached with an extra cost) give the optimum of scipy ``csgraph.dijkstra`` on the
+    graph augmented, in the test, with a super-source and a super-target joined by those costs.
+
+    The targets here are scattered at random, so no single target position gives an admissible
+    bound for all of them: the heuristic is turned off (h = 0, i.e. Dijkstra's order), which
+    tests the source and target mechanics alone (the session only ever gives targets around
+    one destination point)."""
+    g = random_graph(250, 1200, seed=11)
+    planner = Planner(g)
+    rng = np.random.default_rng(12)
+    n = g.n_nodes
+    csr = g.csr().tocoo()
+    for _ in range(30):
+        srcs = [(int(v), float(rng.uniform(0, 30))) for v in rng.choice(n, 2, replace=False)]
+        exits = [(int(v), float(rng.uniform(0, 30))) for v in rng.choice(n, 3, replace=False)]
+        if {s for s, _ in srcs} & {t for t, _ in exits}:
+            continue
+        rows = np.concatenate([csr.row, [n] * 2, [t for t, _ in exits]])
+        cols = np.concatenate([csr.col, [s for s, _ in srcs], [n + 1] * 3])
+        vals = np.concatenate([csr.data, [g0 for _, g0 in srcs], [c for _, c in exits]])
+        aug = csr_matrix((vals + 1e-300, (rows, cols)), shape=(n + 2, n + 2))
+        ref = float(dijkstra(aug, directed=True, indices=n)[n + 1])
+        ws = _open(planner, srcs, [(t, K.EXIT, c) for t, c in exits], 1.0, K.MODE_WEIGHTED)
+        ws.fstate[K.F_GC_SCALE] = 0.0
+        si = ws.state.view(np.int32)
+        touched = si[:, K.SI_STAMP] == ws.istate[K.I_GEN]
+        ws.state[touched, K.S_H] = 0.0  # the sources were opened with the chord bound
+        ws.istate[K.I_KEYED_MODE] = -1  # force a re-key with h = 0
+        ws.fstate[K.F_SUM_H] = 0.0
+        status, inc, _ = _drive(planner, ws)
+        planner._release(ws)
+        assert status == K.PROVEN
+        if math.isfinite(ref):
+            assert inc == pytest.approx(ref, rel=1e-9)
+        else:
+            assert inc == math.inf
+
+
+def test_instant_route_is_a_real_path_no_cheaper_than_the_optimum() -> None:
+    """The instant route (origin -> landmark -> destination along the landmarks' trees, loop
+    cut) exists for every pair of the landmarks' strong component, is a path of the graph
+    (each edge starts where the previous ended) from the origin to the destination, costs what
+    its edges cost, and never less than the scipy ``csgraph.dijkstra`` optimum."""
+    g = grid_graph(20, seed=8)
+    planner = Planner(g, landmarks=build_landmarks(g, count=4, progress=False))
+    nodes = largest_component_nodes(g)
+    rng = np.random.default_rng(9)
+    tail = np.asarray(g.tail)
+    for s, t in rng.choice(nodes, (40, 2)):
+        s, t = int(s), int(t)
+        if s == t:
+            continue
+        ws = _open(planner, [(s, 0.0)], [(t, K.ARRIVAL, 0.0)], 1.0, K.MODE_WEIGHTED)
+        ws.istate[K.I_GEN] = ws.next_generations(K.INSTANT_GENERATIONS)
+        count, cost, _, _ = K.instant_route(
+            planner._indptr,
+            planner._head,
+            planner._cost,
+            planner._lm,
+            planner._lm_nodes,
+            planner._tree_to,
+            planner._tree_from,
+            ws.state,
+            ws.istate,
+            ws.fstate,
+            np.array([s]),
+            np.array([0.0]),
+            ws.route_buf,
+        )
+        edges = ws.route_buf[:count].copy()
+        planner._release(ws)
+        assert count >= 1
+        assert int(tail[edges[0]]) == s and int(g.head[edges[-1]]) == t
+        assert np.all(tail[edges[1:]] == np.asarray(g.head)[edges[:-1]])
+        assert cost == pytest.approx(float(g.travel_time_s[edges].sum()), rel=1e-12)
+        opt = float(dijkstra(g.csr(), directed=True, indices=s)[t])
+        assert cost >= opt * (1 - 1e-12)
+
+
+def test_gap_target_stops_with_the_gap_reached() -> None:
+    """With a gap target the kernel stops as soon as (incumbent - min f) <= target * incumbent;
+    the optimum (scipy ``csgraph.dijkstra``) then lies within that gap of the incumbent."""
+    g = grid_graph(40, seed=10)
+    planner = Planner(g)
+    dist = dijkstra(g.csr(), directed=True, indices=[0])[0]
+    t = g.n_nodes - 1
+    ws = _open(planner, [(0, 0.0)], [(t, K.ARRIVAL, 0.0)], 3.0, K.MODE_WEIGHTED)
+    ws.fstate[K.F_GAP_TARGET] = 0.05
+    status, inc, _ = _drive(planner, ws, limit=50)
+    min_f = K.open_min_f(ws.heap, ws.istate)
+    planner._release(ws)
+    assert status in (K.GAP_REACHED, K.PROVEN)
+    assert inc - min(min_f, inc) <= 0.05 * inc + 1e-9
+    assert dist[t] <= inc <= dist[t] / (1 - 0.05) + 1e-9
+
+
+def test_the_clock_and_the_stop_flag() -> None:
+    """The kernel's clock is the one ``time.perf_counter_ns`` reads; a call returns TIME_UP at
+    the instant it is given, and STOPPED soon after another thread sets the stop flag."""
+    before = time.perf_counter_ns()
+    now = K.monotonic_ns()
+    assert before <= now <= time.perf_counter_ns()
+    g = grid_graph(200, seed=13)  # 40,000 nodes: a long search
+    planner = Planner(g)
+    ws = _open(planner, [(0, 0.0)], [(g.n_nodes - 1, K.ARRIVAL, 0.0)], 1.0, K.MODE_WEIGHTED)
+    ws.istate[K.I_LIMIT] = -1
+    ws.istate[K.I_UNTIL_NS] = time.perf_counter_ns() + 1_000_000  # 1 ms from now
+    assert planner._run(ws) == K.TIME_UP
+    assert ws.istate[K.I_CLOCK_NS] >= ws.istate[K.I_UNTIL_NS]
+    ws.istate[K.I_UNTIL_NS] = 0
+    timer = threading.Timer(0.002, lambda: ws.istate.__setitem__(K.I_STOP, 1))
+    timer.start()
+    status = planner._run(ws)
+    timer.join()
+    planner._release(ws)
+    assert status in (K.STOPPED, K.PROVEN)
+
+
+def test_runaway_guard_switches_to_weight_one() -> None:
+    """A weighted search whose expansions outrun the nodes it touched is switched to weight 1
+    and still proves the scipy ``csgraph.dijkstra`` optimum."""
+    g = random_graph(300, 6000, seed=14, detour=3.0)  # dense, long detours: heavy reopening
+    planner = Planner(g)
+    dist = dijkstra(g.csr(), directed=True, indices=[0])[0]
+    switched = 0
+    for t in range(1, 300, 23):
+        ws = _open(planner, [(0, 0.0)], [(t, K.ARRIVAL, 0.0)], 5.0, K.MODE_WEIGHTED)
+        ws.fstate[K.F_RUNAWAY_FACTOR] = 0.5  # trip the guard early
+        ws.fstate[K.F_RUNAWAY_MIN] = 0.0
+        status, inc, _ = _drive(planner, ws, limit=10**9)
+        switched += int(ws.istate[K.I_RUNAWAY])
+        assert ws.istate[K.I_RUNAWAY] == 0 or ws.fstate[K.F_WEIGHT] == 1.0
+        planner._release(ws)
+        assert status == K.PROVEN
+        if math.isfinite(dist[t]):
+            assert inc == pytest.approx(dist[t], rel=1e-9)
+    assert switched > 0

@@ -80,7 +80,7 @@ def test_return_is_final_quality_and_episode_ends(env):
         if term:
             assert info["status"] == "optimal" and info["quality"] == pytest.approx(1.0)
         else:
-            assert info["status"] == "contract_spent" and n_actions == env.config.steps - 1
+            assert info["status"] in ("improved", "instant") and n_actions == env.config.steps - 1
 
 
 def test_episode_matches_plan_with_the_same_weights(env, grid_graph):

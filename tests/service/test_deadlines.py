@@ -159,7 +159,7 @@ def _report(name: str, records: list[dict]) -> dict[str, Any]:
         "accepted": len(ok),
         "shed": len(shed),
         "other": len(records) - len(ok) - len(shed),
-        "ran_to_deadline": sum(1 for r in ok if r["plan_status"] == "contract_spent"),
+        "ran_to_deadline": sum(1 for r in ok if r["plan_status"] in ("improved", "instant")),
         "late_client_gt_tol": int(np.sum(late_client > TOLERANCE_MS)),
         "late_client_gt_tol_plus_margin": int(np.sum(late_client > TOLERANCE_MS + CI_MARGIN_MS)),
         "late_server_gt_tol": int(np.sum(server - DEADLINE_MS > TOLERANCE_MS)),

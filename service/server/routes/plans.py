@@ -177,12 +177,12 @@ async def create_plan(body: PlanRequest, request: Request, state: StateDep) -> R
         ticket.cancel.set()
         if job.future.cancel():
             state.admission.release(ticket)
-            engine.finish(job, "contract_spent", None)
+            engine.finish(job, job.interim_status(), None)
         # The worker may finish while this snapshot is taken: a waiting caller never gets
         # a "running" plan, whichever side won.
         result = dict(job.current())
         if result["status"] == "running":
-            result["status"] = "contract_spent"
+            result["status"] = job.interim_status()
         metrics.watchdog.inc()
     now = time.perf_counter()
     timings = dict(result["timings"])
