@@ -66,6 +66,14 @@ def register(sub: Any) -> argparse.ArgumentParser:
         help=f"decision steps (1..10000; default {DEFAULT_STEPS})",
     )
     p.add_argument("--seed", type=int, default=None, help="seed for the random controller")
+    p.add_argument(
+        "--gap",
+        type=float,
+        default=0.0,
+        metavar="G",
+        help="stop as soon as the proven relative gap is at or below G, e.g. 0.01 (default 0: "
+        "search until the deadline or the proof)",
+    )
     add_landmarks_option(p)
     add_alias(p, "--no-landmarks", "--landmarks 0", dest="landmarks", nargs=0, const=0)
     add_json_flag(p)
@@ -113,7 +121,7 @@ def _controller_factory(spec: str, policy_path: str | None, seed: int | None) ->
 
 
 def cmd_route(args: argparse.Namespace) -> int:
-    from dueroute.planner.session import Planner, plan, validate_contract
+    from dueroute.planner.session import Planner, plan, validate_contract, validate_gap_target
 
     single = args.origin is not None or args.destination is not None
     if single and args.queries is not None:
@@ -123,6 +131,7 @@ def cmd_route(args: argparse.Namespace) -> int:
     if single and (args.origin is None or args.destination is None):
         raise InvalidRequest("--from and --to go together: give both")
     validate_contract(args.deadline_ms, args.budget, args.steps)
+    validate_gap_target(args.gap)
     make = _controller_factory(args.controller, args.policy, args.seed)
 
     graph = load_graph_arg(args.graph)
@@ -153,6 +162,7 @@ def cmd_route(args: argparse.Namespace) -> int:
                 steps=args.steps,
                 cancel=cancel,
                 seed=args.seed,
+                gap_target=args.gap,
             )
             d = res.to_dict()
             d["node_ids"] = (

@@ -129,6 +129,7 @@ class PlanJob:
     search_deadline_s: float
     policy_sha256: str | None
     controller_spec: str = ""  # what to build; ``controller`` is the label answers carry
+    gap_target: float = 0.0  # stop once the proven gap is at or below this
     ticket: Ticket | None = None
     policy: Any = None
     future: Any = None  # concurrent.futures.Future of the worker run
@@ -372,6 +373,7 @@ class PlanningEngine:
                     on_improvement=lambda imp: self._record(job, imp),
                     cancel=ticket.cancel,
                     started_at=job.arrival_s,
+                    gap_target=job.gap_target,
                 )
                 status = str(result.status)
         except Exception as exc:  # never leave a caller waiting

@@ -95,6 +95,15 @@ class PlanRequest(BaseModel):
     wait: StrictBool = Field(
         True, description="true: answer with the plan; false: 202 and run in the background"
     )
+    gap_target: float = Field(
+        default=0.0,
+        ge=0.0,
+        lt=1.0,
+        allow_inf_nan=False,
+        description="relative gap tolerance, like a MIP solver's: the search stops as soon as "
+        "(cost - bound) / cost is at or below it and answers at once (0: search until the "
+        "deadline or the proof)",
+    )
 
 
 class RouteProperties(BaseModel):

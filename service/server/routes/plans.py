@@ -137,6 +137,7 @@ async def create_plan(body: PlanRequest, request: Request, state: StateDep) -> R
         if active.policy is not None or body.controller != "learned"
         else f"learned (fallback: {active.fallback_controller})",
         controller_spec=body.controller,
+        gap_target=body.gap_target,
         wait=body.wait,
         arrival_s=arrival_s,
         search_deadline_s=search_deadline_s,
