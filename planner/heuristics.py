@@ -62,7 +62,9 @@ Landmark distances are computed on free-flow costs (``graph.travel_time_s``). If
 raises some edge costs (congestion, closures as large costs), every true distance ``d'(v, t)``
 is >= the free-flow ``d(v, t)`` >= ``h(v)``, so the bound stays admissible, and
 ``h(v) <= c(v, w) + h(w) <= c'(v, w) + h(w)`` keeps it consistent. Lowered costs would break
-both: rebuild the landmarks for such a graph. A graph compiled with other costs has another
+both: rebuild the landmarks for such a graph, or lower the bound by the total decrease
+(live traffic does both; the proof is in the ``planner/traffic.py`` docstring, and
+:func:`landmarks_on_costs` rebuilds the same landmarks on other costs). A graph compiled with other costs has another
 fingerprint, so its stale landmark file is refused (``load_landmarks``) or rebuilt
 (``load_or_build_landmarks``); ``Landmarks.check_graph(graph)`` makes the same test.
 
@@ -369,6 +371,42 @@ def build_landmarks(
         method=method,
         graph_fingerprint=graph.fingerprint,
         meta={"seed": int(seed), "requested_count": int(count), "build_s": build_s},
+    )
+
+
+def landmarks_on_costs(graph: RoadGraph, landmarks: Landmarks, costs: np.ndarray) -> Landmarks:
+    """The same landmark nodes with their distances recomputed on other edge costs.
+
+    Used for live traffic (``planner/traffic.py``): ALT built on costs ``c`` is admissible for
+    any costs ``>= c``. ``costs`` is float64[m] with ``+inf`` for closed edges (scipy's
+    ``csgraph.dijkstra`` never relaxes an infinite edge, so closed edges carry no path).
+    The result keeps the graph's fingerprint in ``graph_fingerprint`` (it belongs to that
+    graph) and records in ``meta["costs"]`` that it was not built on the base costs; it is
+    never saved beside the graph.
+    """
+    started = time.perf_counter()
+    nodes = np.asarray(landmarks.nodes, dtype=np.int64)
+    forward = graph.csr(np.asarray(costs, dtype=np.float64))
+    backward = forward.T.tocsr()
+    if nodes.size:
+        dist_from = np.atleast_2d(dijkstra(forward, directed=True, indices=nodes))
+        dist_to = np.atleast_2d(dijkstra(backward, directed=True, indices=nodes))
+    else:
+        dist_from = np.zeros((0, graph.n_nodes))
+        dist_to = np.zeros((0, graph.n_nodes))
+    max_distance_s = max(_finite_max(dist_from), _finite_max(dist_to))
+    lm_from, lm_to = _store(dist_from), _store(dist_to)
+    lm_from.flags.writeable = False
+    lm_to.flags.writeable = False
+    return Landmarks(
+        nodes=np.asarray(landmarks.nodes, dtype=np.int32),
+        lm_from=lm_from,
+        lm_to=lm_to,
+        slack_s=slack_for(max_distance_s),
+        max_distance_s=max_distance_s,
+        method=landmarks.method,
+        graph_fingerprint=graph.fingerprint,
+        meta={"costs": "live", "build_s": time.perf_counter() - started},
     )
 
 
