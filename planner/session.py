@@ -67,6 +67,7 @@ from dueroute.planner.graph import RoadGraph
 
 if TYPE_CHECKING:
     from dueroute.planner.controllers import Controller
+    from dueroute.planner.traffic import CostVersion
 
 #: Longest accepted deadline (one day) and largest budget, to catch unit mistakes.
 MAX_DEADLINE_MS = 86_400_000.0
@@ -325,15 +326,22 @@ class Planner:
         with self._pool_lock:
             self._pool.append(ws)
 
-    def _chunk(self, ws: _Workspace) -> int:
+    def _chunk(
+        self,
+        ws: _Workspace,
+        cost: np.ndarray | None = None,
+        lm_from: np.ndarray | None = None,
+        lm_to: np.ndarray | None = None,
+    ) -> int:
+        """One kernel chunk; ``cost`` / ``lm_*`` replace the planner's (live traffic)."""
         return int(
             K.run_chunk(
                 self._indptr,
                 self._head,
-                self._cost,
+                self._cost if cost is None else cost,
                 self._coords,
-                self._lm_from,
-                self._lm_to,
+                self._lm_from if lm_from is None else lm_from,
+                self._lm_to if lm_to is None else lm_to,
                 ws.nodei,
                 ws.nodef,
                 ws.heap,
@@ -359,6 +367,7 @@ class Planner:
         started_at: float | None = None,
         cancel: _Event | None = None,
         mode: str = "weighted",
+        costs: CostVersion | None = None,
     ) -> Search:
         """Open a search (see the module docstring for contracts and steps).
 
@@ -378,6 +387,9 @@ class Planner:
             Checked between kernel chunks; when set the search ends with status ``cancelled``.
         mode : {"weighted", "ana"}
             Open-list order: ``g + w*h`` (Anytime Weighted A*) or the ANA* key.
+        costs : planner.traffic.CostVersion, optional
+            Live edge costs to search on instead of the graph's base costs (the search keeps
+            this version from start to end; bounds stay proven, see ``planner/traffic.py``).
         """
         t_arrival = time.perf_counter() if started_at is None else float(started_at)
         g = self.graph
@@ -398,6 +410,7 @@ class Planner:
             started_at=t_arrival,
             cancel=cancel,
             mode=mode,
+            costs=costs,
         )
 
 
@@ -494,8 +507,22 @@ class Search:
         started_at: float,
         cancel: _Event | None,
         mode: str,
+        costs: CostVersion | None = None,
     ) -> None:
         self.planner = planner
+        # Live costs: this search's cost array and landmark tables (a reference to one
+        # immutable version, held from start to end).
+        self.costs = costs
+        cost_arr, lm_from, lm_to = planner._cost, planner._lm_from, planner._lm_to
+        gc_scale, lm_slack = planner._gc_scale, planner._lm_slack
+        if costs is not None:
+            cost_arr = costs.travel_time_s
+            gc_scale = (1.0 - 1e-9) / float(costs.max_speed_mps)
+            if costs.landmarks is not None:
+                lm_from, lm_to = costs.landmarks.lm_from, costs.landmarks.lm_to
+                lm_slack = float(costs.landmarks.slack_s)
+            lm_slack += float(costs.landmark_slack_extra_s)
+        self._arrays = (cost_arr, lm_from, lm_to)
         self.origin = origin
         self.destination = destination
         self.deadline_ms = deadline_ms
@@ -543,9 +570,13 @@ class Search:
             self._cost = 0.0
             self._finish("optimal")
             return
-        if comp[origin] != comp[destination] and not _reachable_by_labels(
-            planner, origin, destination
-        ):
+        if costs is not None and costs.component is not None:
+            unreachable = not costs.may_reach(origin, destination)
+        else:
+            unreachable = comp[origin] != comp[destination] and not _reachable_by_labels(
+                planner, origin, destination
+            )
+        if unreachable:
             self._finish("no_route")
             return
         ws = planner._acquire()
@@ -560,14 +591,14 @@ class Search:
         ist[K.I_TARGET] = destination
         ist[K.I_MODE] = _MODE_CODE[mode]
         fst[K.F_WEIGHT] = 1.0
-        fst[K.F_GC_SCALE] = planner._gc_scale
+        fst[K.F_GC_SCALE] = gc_scale
         fst[K.F_GC_MARGIN] = planner._gc_margin
-        fst[K.F_LM_SLACK] = planner._lm_slack
+        fst[K.F_LM_SLACK] = lm_slack
         self._h_start = float(
             K.start_query(
                 planner._coords,
-                planner._lm_from,
-                planner._lm_to,
+                lm_from,
+                lm_to,
                 ws.nodei,
                 ws.nodef,
                 ws.heap,
@@ -697,7 +728,7 @@ class Search:
             if left <= 0:
                 return
             ist[K.I_CHUNK] = min(left, BUDGET_CHUNK_EXPANSIONS)
-            self._handle(self.planner._chunk(ws))
+            self._handle(self.planner._chunk(ws, *self._arrays))
 
     def _run_deadline_step(self, ws: _Workspace, k: int) -> None:
         assert self._deadline_at is not None
@@ -726,7 +757,7 @@ class Search:
                     chunk = 1
             before = int(ist[K.I_EXPANSIONS])
             ist[K.I_CHUNK] = chunk
-            status = self.planner._chunk(ws)
+            status = self.planner._chunk(ws, *self._arrays)
             t1 = time.perf_counter()
             made = int(ist[K.I_EXPANSIONS]) - before
             # rate from full chunks only (an early return says little about the rate)
@@ -753,7 +784,7 @@ class Search:
         nodes, edges = K.extract_route(ws.nodei, self.origin, self.destination, planner.n_nodes)
         if nodes.shape[0] == 0:  # cannot happen: parent pointers always lead back
             raise RuntimeError("internal error: route extraction failed")
-        cost = float(np.sum(planner._cost[edges]))
+        cost = float(np.sum(self._arrays[0][edges]))
         kernel_cost = float(ws.fstate[K.F_INCUMBENT])
         if cost < kernel_cost:
             ws.fstate[K.F_INCUMBENT] = cost  # prune with the real route cost
@@ -916,6 +947,7 @@ def plan(
     cancel: _Event | None = None,
     seed: int | None = None,
     started_at: float | None = None,
+    costs: CostVersion | None = None,
 ) -> PlanResult:
     """Best route from ``origin`` to ``destination`` within the contract.
 
@@ -938,6 +970,8 @@ def plan(
         Seed for randomised controllers.
     started_at : float, optional
         ``time.perf_counter()`` at request arrival (the deadline counts from it).
+    costs : planner.traffic.CostVersion, optional
+        Live edge costs (see :meth:`Planner.start`).
     """
     from dueroute.planner.controllers import make_controller
     from dueroute.planner.features import compute_features
@@ -954,6 +988,7 @@ def plan(
         started_at=t0,
         cancel=cancel,
         mode=ctrl.mode,
+        costs=costs,
     )
     search.controller_name = ctrl.name
     search.on_improvement = on_improvement
