@@ -16,7 +16,13 @@ from typing import Any
 
 from dueroute.demo_data.build import resolve_graph_path
 from dueroute.planner.errors import InvalidRequest
-from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit
+from dueroute.service.cli.common import (
+    GRAPH_HELP,
+    add_json_flag,
+    add_traffic_flag,
+    emit,
+    load_traffic_arg,
+)
 
 #: Extra spellings of generated flags (the issue's short names).
 FLAG_ALIASES = {"budget_expansions": ["--budget"]}
@@ -112,6 +118,7 @@ def register(sub: Any) -> None:
         metavar="L",
         help="ALT landmarks for the heuristic (default: as in training; 0 = great-circle only)",
     )
+    add_traffic_flag(ev, "controller")
     ev.add_argument("--no-progress", action="store_true", help="hide the progress bar")
     add_json_flag(ev)
     ev.set_defaults(func=cmd_evaluate)
@@ -256,7 +263,10 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         from dueroute.planner.heuristics import load_or_build_landmarks
 
         landmarks = load_or_build_landmarks(graph, count=n_landmarks, progress=False)
+    costs = load_traffic_arg(args.traffic, graph, landmarks) if args.traffic else None
     settings = EvalSettings(
+        costs=costs,
+        traffic_source=args.traffic,
         n_queries=args.queries,
         seed=args.seed,
         budgets=args.budgets,
@@ -282,6 +292,8 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         )
     except OSError as exc:
         raise InvalidRequest(f"cannot write the report to {args.out}: {exc}") from exc
+    except ValueError as exc:  # every query cut off by closures
+        raise InvalidRequest(str(exc)) from None
     summary["landmarks"] = n_landmarks
     summary["out"] = str(args.out)
     emit(summary, args.json, _format_evaluate)

@@ -15,8 +15,11 @@ from dueroute.service.cli.common import (
     GRAPH_HELP,
     _json_default,
     add_json_flag,
+    add_traffic_flag,
     load_graph_arg,
+    load_traffic_arg,
     progress,
+    traffic_summary,
 )
 
 #: Controllers the CLI accepts; ``learned`` goes through ``policies.runtime``.
@@ -61,6 +64,7 @@ def register(sub: Any) -> argparse.ArgumentParser:
         action="store_true",
         help="ignore <graph>.landmarks.npz and use the great-circle bound alone",
     )
+    add_traffic_flag(p)
     add_json_flag(p)
     p.set_defaults(func=cmd_route)
     return p
@@ -172,7 +176,13 @@ def cmd_route(args: argparse.Namespace) -> int:
     make = _controller_factory(args.controller, args.policy, args.seed)
 
     graph = load_graph_arg(args.graph)
-    planner = Planner(graph, landmarks=_landmarks_for(graph, args.no_landmarks))
+    landmarks = _landmarks_for(graph, args.no_landmarks)
+    planner = Planner(graph, landmarks=landmarks)
+    costs = None
+    if args.traffic is not None:
+        costs = load_traffic_arg(args.traffic, graph, landmarks)
+        if not args.json:
+            print(traffic_summary(costs, args.traffic))
     planner.warm_up()  # JIT compile or cache load stays out of the first deadline
     if single:
         queries = [
@@ -199,9 +209,13 @@ def cmd_route(args: argparse.Namespace) -> int:
                 steps=args.steps,
                 cancel=cancel,
                 seed=args.seed,
+                costs=costs,
             )
             d = res.to_dict()
             d["nodes"] = d["route"]
+            if costs is not None:
+                d.update(costs.answer_fields())
+                d["traffic"] = args.traffic
             if args.json:
                 bar.clear()
                 print(json.dumps(d, default=_json_default), flush=True)
