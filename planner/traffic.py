@@ -215,8 +215,6 @@ class Update:
     spec : dict
         The update as JSON, with ``expires_in_s`` turned into ``expires_at`` (what journals
         store, so a replay resolves the same edges and expires at the same moment).
-    batch : int
-        Version of the batch it came in (set by the layer; 0 before).
     """
 
     position: int
@@ -227,12 +225,11 @@ class Update:
     edges: np.ndarray
     costs: np.ndarray
     spec: dict[str, Any]
-    batch: int = 0
 
-    def info(self) -> dict[str, Any]:
-        """JSON summary (``GET /v1/traffic``)."""
+    def info(self, batch: int) -> dict[str, Any]:
+        """JSON summary (``GET /v1/traffic``); ``batch`` is the version it came in with."""
         return {
-            "batch_version": self.batch,
+            "batch_version": batch,
             "position": self.position,
             "selection": self.selection,
             "change": self.change,
@@ -874,6 +871,12 @@ class CostVersion:
         Unix time stamp of the operation that made this version.
     active : tuple of Update
         The updates in force, in the order they apply (later wins).
+    active_batches : tuple of int
+        The version each of ``active`` came in with (same length).
+    next_expiry : float or None
+        Earliest ``expires_at`` among the active updates (unix seconds).
+    updates_by_kind : dict
+        Active updates per change kind (:data:`CHANGE_KINDS`).
     edges_changed, edges_closed, edges_faster : int
         Edges whose cost differs from base / is closed / is below base.
     base_max_speed_mps : float
@@ -890,24 +893,16 @@ class CostVersion:
     landmark_basis: int = 0
     at: float = 0.0
     active: tuple[Update, ...] = ()
+    active_batches: tuple[int, ...] = ()
+    next_expiry: float | None = None
+    updates_by_kind: dict[str, int] = dataclasses.field(
+        default_factory=lambda: dict.fromkeys(CHANGE_KINDS, 0)
+    )
     edges_changed: int = 0
     edges_closed: int = 0
     edges_faster: int = 0
     base_max_speed_mps: float = 0.0
     refining: bool = False  #: labels or landmarks for this version are being computed
-
-    @property
-    def next_expiry(self) -> float | None:
-        """Earliest ``expires_at`` among the active updates (unix seconds), or ``None``."""
-        times = [u.expires_at for u in self.active if u.expires_at is not None]
-        return min(times) if times else None
-
-    @property
-    def updates_by_kind(self) -> dict[str, int]:
-        counts = dict.fromkeys(CHANGE_KINDS, 0)
-        for u in self.active:
-            counts[u.change] += 1
-        return counts
 
     @property
     def bound_quality(self) -> str:
@@ -980,7 +975,12 @@ class CostVersion:
             "refining": self.refining,
             "bound_quality": self.bound_quality,
             "bound_note": self.bound_note,
-            "updates": [u.info() for u in self.active[:max_listed]],
+            "updates": [
+                u.info(b)
+                for u, b in zip(
+                    self.active[:max_listed], self.active_batches[:max_listed], strict=True
+                )
+            ],
             "updates_listed": min(len(self.active), max_listed),
         }
 
@@ -1111,38 +1111,44 @@ class CostLayer:
         """Add a batch (later updates win); drops updates expired by ``at``."""
         with self._lock:
             v, at = self._next(version, at)
-            batch = tuple(dataclasses.replace(u, batch=v) for u in updates)
-            prev = self._current.active
-            alive = tuple(u for u in prev if u.expires_at is None or u.expires_at > at)
-            new = tuple(u for u in batch if u.expires_at is None or u.expires_at > at)
-            if len(alive) == len(prev):
-                return self._publish_incremental(v, at, alive, new)
-            return self._publish_full(v, at, alive + new)
+            new = _Active.of(updates, v).alive_at(at)
+            cur = self._current
+            if cur.next_expiry is None or cur.next_expiry > at:  # nothing expires now
+                return self._publish_incremental(v, at, _Active.from_version(cur), new)
+            alive = _Active.from_version(cur).alive_at(at)
+            return self._publish_full(v, at, alive.plus(new))
 
     def expire(self, at: float | None = None, *, version: int | None = None) -> CostVersion | None:
         """Drop the updates expired by ``at``; a new version when any was, else ``None``."""
         with self._lock:
             at_now = self._stamp(at)
-            prev = self._current.active
-            alive = tuple(u for u in prev if u.expires_at is None or u.expires_at > at_now)
-            if len(alive) == len(prev):
+            cur = self._current
+            if cur.next_expiry is None or cur.next_expiry > at_now:
                 return None
             v, at_now = self._next(version, at_now)
-            return self._publish_full(v, at_now, alive)
+            return self._publish_full(v, at_now, _Active.from_version(cur).alive_at(at_now))
 
     def clear(self, *, version: int | None = None, at: float | None = None) -> CostVersion:
         """Drop every update: a new version with the base costs."""
         with self._lock:
             v, at = self._next(version, at)
-            return self._publish_full(v, at, ())
+            return self._publish_full(v, at, _Active.of((), v))
 
     def replace(
-        self, active: Sequence[Update], *, version: int, at: float | None = None
+        self,
+        active: Sequence[Update],
+        batches: Sequence[int],
+        *,
+        version: int,
+        at: float | None = None,
     ) -> CostVersion:
-        """Publish ``version`` with exactly ``active`` in force (journal replay, catch-up)."""
+        """Publish ``version`` with exactly ``active`` in force, ``batches[i]`` being the
+        version update ``i`` came in with (journal replay, catch-up)."""
         with self._lock:
             v, at = self._next(version, at)
-            alive = tuple(u for u in active if u.expires_at is None or u.expires_at > at)
+            if len(active) != len(batches):
+                raise InvalidRequest("replace needs one batch version per update")
+            alive = _Active(tuple(active), tuple(int(b) for b in batches)).alive_at(at)
             return self._publish_full(v, at, alive)
 
     def wait_refined(self, timeout: float | None = None) -> bool:
@@ -1177,33 +1183,37 @@ class CostLayer:
             raise InvalidRequest(f"cost version {v} is not after the current version {cur}")
         return v, self._stamp(at)
 
-    def _publish_incremental(
-        self, v: int, at: float, alive: tuple[Update, ...], new: tuple[Update, ...]
-    ) -> CostVersion:
+    def _publish_incremental(self, v: int, at: float, alive: _Active, new: _Active) -> CostVersion:
         st = self._state
         costs = st.costs.copy()
         changed = st.changed.copy()
-        for u in new:
-            costs[u.edges] = u.costs
-            changed[u.edges] = True
-        return self._publish(v, at, alive + new, costs, changed)
+        _scatter(costs, changed, new.updates)
+        return self._publish(v, at, alive.plus(new), costs, changed, self._current, new)
 
-    def _publish_full(self, v: int, at: float, active: tuple[Update, ...]) -> CostVersion:
+    def _publish_full(self, v: int, at: float, active: _Active) -> CostVersion:
         costs = self._base.copy()
         changed = np.zeros(self.graph.n_edges, dtype=bool)
-        for u in active:
-            costs[u.edges] = u.costs
-            changed[u.edges] = True
-        return self._publish(v, at, active, costs, changed)
+        _scatter(costs, changed, active.updates)
+        return self._publish(v, at, active, costs, changed, None, active)
 
     def _publish(
         self,
         v: int,
         at: float,
-        active: tuple[Update, ...],
+        active: _Active,
         costs: np.ndarray,
         changed: np.ndarray,
+        prev: CostVersion | None,
+        added: _Active,
     ) -> CostVersion:
+        """Publish a version; ``prev`` + ``added`` give its expiry and counts in O(added)."""
+        times = [u.expires_at for u in added.updates if u.expires_at is not None]
+        earliest = min(times) if times else None
+        counts = dict.fromkeys(CHANGE_KINDS, 0) if prev is None else dict(prev.updates_by_kind)
+        for u in added.updates:
+            counts[u.change] += 1
+        if prev is not None and prev.next_expiry is not None:
+            earliest = prev.next_expiry if earliest is None else min(earliest, prev.next_expiry)
         costs = _readonly(costs)
         idx = np.flatnonzero(changed)
         c = costs[idx]
@@ -1230,7 +1240,10 @@ class CostLayer:
             landmarks=landmarks,
             landmark_basis=basis,
             at=at,
-            active=active,
+            active=active.updates,
+            active_batches=active.batches,
+            next_expiry=earliest,
+            updates_by_kind=counts,
             edges_changed=int(idx.size),
             edges_closed=int(closed.size),
             edges_faster=faster,
@@ -1393,6 +1406,53 @@ class CostLayer:
         if needs and self.refine != "off":
             fresh = dataclasses.replace(fresh, refining=True)
         self._current = fresh
+
+
+@dataclass(frozen=True)
+class _Active:
+    """The updates in force and the version each came in with (parallel tuples)."""
+
+    updates: tuple[Update, ...]
+    batches: tuple[int, ...]
+
+    @staticmethod
+    def of(updates: Iterable[Update], batch: int) -> _Active:
+        ups = tuple(updates)
+        return _Active(ups, (batch,) * len(ups))
+
+    @staticmethod
+    def from_version(version: CostVersion) -> _Active:
+        return _Active(version.active, version.active_batches)
+
+    def alive_at(self, at: float) -> _Active:
+        """Without the updates whose ``expires_at`` is not later than ``at``."""
+        keep = [i for i, u in enumerate(self.updates) if u.expires_at is None or u.expires_at > at]
+        if len(keep) == len(self.updates):
+            return self
+        return _Active(tuple(self.updates[i] for i in keep), tuple(self.batches[i] for i in keep))
+
+    def plus(self, other: _Active) -> _Active:
+        return _Active(self.updates + other.updates, self.batches + other.batches)
+
+
+def _scatter(costs: np.ndarray, changed: np.ndarray, updates: Sequence[Update]) -> None:
+    """Write the updates' costs in order (later wins), with one vectorised assignment.
+
+    numpy does not define which value lands when an index repeats in one assignment, so the
+    last occurrence of each edge is kept explicitly.
+    """
+    if not updates:
+        return
+    if len(updates) == 1:
+        edges, values = updates[0].edges, updates[0].costs
+    else:
+        edges = np.concatenate([u.edges for u in updates])
+        values = np.concatenate([u.costs for u in updates])
+        # first occurrence in the reversed order = last occurrence in apply order
+        edges, first = np.unique(edges[::-1], return_index=True)
+        values = values[::-1][first]
+    costs[edges] = values
+    changed[edges] = True
 
 
 def _compute_labels(graph: RoadGraph, costs: np.ndarray, closed: np.ndarray) -> _Labels:

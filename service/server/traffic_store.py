@@ -479,23 +479,26 @@ class LiveTraffic:
             return
         # Several entries (a restart, a process catching up) or a non-batch entry: fold them
         # into the active list and publish the last one's version.
-        active: list[Update] = list(layer.current.active)
+        cur = layer.current
+        active: list[tuple[Update, int]] = list(zip(cur.active, cur.active_batches, strict=True))
         for e in entries:
             if e.kind == "batch":
-                active += [_with_batch(u, e.seq) for u in self._resolve(e)]
+                active += [(u, e.seq) for u in self._resolve(e)]
             elif e.kind == "clear":
                 active = []
             elif e.kind == "snapshot":
                 active = self._from_snapshot(e)
-            active = [u for u in active if u.expires_at is None or u.expires_at > e.at]
+            active = [a for a in active if a[0].expires_at is None or a[0].expires_at > e.at]
             self.applied_entries += 1
         if last.seq > layer.current.version:
-            layer.replace(active, version=last.seq, at=last.at)
+            layer.replace(
+                [u for u, _ in active], [b for _, b in active], version=last.seq, at=last.at
+            )
         for seq in [s for s in self._resolved if s <= last.seq]:
             self._resolved.pop(seq, None)
 
-    def _from_snapshot(self, e: JournalEntry) -> list[Update]:
-        out: list[Update] = []
+    def _from_snapshot(self, e: JournalEntry) -> list[tuple[Update, int]]:
+        out: list[tuple[Update, int]] = []
         by_batch: dict[int, list[tuple[int, dict[str, Any]]]] = {}
         order: list[int] = []
         for a in e.active:
@@ -514,7 +517,8 @@ class LiveTraffic:
                 where=f"journal snapshot {e.seq}",
             )
             out += [
-                _with_batch(u, b, position) for u, (position, _) in zip(parsed, specs, strict=True)
+                (dataclasses.replace(u, position=position), b)
+                for u, (position, _) in zip(parsed, specs, strict=True)
             ]
         return out
 
@@ -543,9 +547,3 @@ class LiveTraffic:
         out["last_sync"] = rfc3339(self.last_sync_wall)
         out["error"] = self.error
         return out
-
-
-def _with_batch(u: Update, batch: int, position: int | None = None) -> Update:
-    if position is None:
-        return dataclasses.replace(u, batch=batch)
-    return dataclasses.replace(u, batch=batch, position=position)
