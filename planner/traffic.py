@@ -240,6 +240,40 @@ class Update:
         }
 
 
+class Batch:
+    """A validated batch prepared for the layer: its updates plus, computed once, their edges
+    and new costs merged in apply order (later wins), the earliest expiry and counts by kind.
+
+    :meth:`CostLayer.apply` accepts a plain sequence of updates too and prepares it itself;
+    preparing it beforehand (``Batch(parse_document(...))``) keeps that work out of the
+    moment a version is published.
+    """
+
+    def __init__(self, updates: Iterable[Update]) -> None:
+        self.updates: tuple[Update, ...] = tuple(updates)
+        ups = self.updates
+        if not ups:
+            self.edges = np.zeros(0, dtype=np.int64)
+            self.costs = np.zeros(0)
+        elif len(ups) == 1:
+            self.edges, self.costs = ups[0].edges, ups[0].costs
+        else:
+            edges = np.concatenate([u.edges for u in ups])
+            values = np.concatenate([u.costs for u in ups])
+            # numpy leaves the winner of a repeated index in one assignment undefined: keep
+            # the last occurrence explicitly (first in the reversed order)
+            self.edges, first = np.unique(edges[::-1], return_index=True)
+            self.costs = values[::-1][first]
+        times = [u.expires_at for u in ups if u.expires_at is not None]
+        self.min_expiry: float | None = min(times) if times else None
+        self.counts = dict.fromkeys(CHANGE_KINDS, 0)
+        for u in ups:
+            self.counts[u.change] += 1
+
+    def __len__(self) -> int:
+        return len(self.updates)
+
+
 def _number(v: Any) -> float | None:
     if isinstance(v, bool) or not isinstance(v, (int, float)):
         return None
@@ -504,6 +538,12 @@ class _Resolver:
     def __init__(self, graph: RoadGraph) -> None:
         self.graph = graph
         self.n = graph.n_nodes
+        # plain ndarray views of memory-mapped arrays: indexing a memmap object per update
+        # costs microseconds of Python each time
+        self.indptr = np.asarray(graph.indptr)
+        self.head = np.asarray(graph.head)
+        self.base = np.asarray(graph.travel_time_s)
+        self.length = np.asarray(graph.length_m)
         self._lat: np.ndarray | None = None
         self._lon: np.ndarray | None = None
 
@@ -546,9 +586,8 @@ class _Resolver:
                 return None
             ends.append(v)
         a, b = ends
-        g = self.graph
-        lo, hi = int(g.indptr[a]), int(g.indptr[a + 1])
-        heads = np.asarray(g.head[lo:hi], dtype=np.int64)
+        lo, hi = int(self.indptr[a]), int(self.indptr[a + 1])
+        heads = self.head[lo:hi]
         edges = lo + np.flatnonzero(heads == b)
         if edges.size == 0:
             near = ", ".join(str(int(x)) for x in heads[:8]) or "none"
@@ -746,9 +785,9 @@ class _Resolver:
         g = self.graph
         if change == "closed":
             return np.full(edges.shape[0], np.inf)
-        length = np.asarray(g.length_m[edges], dtype=np.float64)
+        length = self.length[edges]
         if change == "factor":
-            costs = np.asarray(g.travel_time_s[edges], dtype=np.float64) * value
+            costs = self.base[edges] * value
         elif change == "speed_kph":
             costs = length / (value / 3.6)
         else:
@@ -1106,15 +1145,25 @@ class CostLayer:
 
     # -- operations --
     def apply(
-        self, updates: Sequence[Update], *, version: int | None = None, at: float | None = None
+        self,
+        updates: Batch | Sequence[Update],
+        *,
+        version: int | None = None,
+        at: float | None = None,
     ) -> CostVersion:
-        """Add a batch (later updates win); drops updates expired by ``at``."""
+        """Add a batch (later updates win); drops updates expired by ``at``.
+
+        Costs O(edges touched) plus one copy of the cost array when nothing expires (the
+        common case); otherwise the version is rebuilt from the active updates.
+        """
+        batch = updates if isinstance(updates, Batch) else Batch(updates)
         with self._lock:
             v, at = self._next(version, at)
-            new = _Active.of(updates, v).alive_at(at)
             cur = self._current
-            if cur.next_expiry is None or cur.next_expiry > at:  # nothing expires now
-                return self._publish_incremental(v, at, _Active.from_version(cur), new)
+            fresh = batch.min_expiry is None or batch.min_expiry > at
+            if fresh and (cur.next_expiry is None or cur.next_expiry > at):
+                return self._publish_incremental(v, at, batch)
+            new = _Active.of(batch.updates, v).alive_at(at)
             alive = _Active.from_version(cur).alive_at(at)
             return self._publish_full(v, at, alive.plus(new))
 
@@ -1183,18 +1232,25 @@ class CostLayer:
             raise InvalidRequest(f"cost version {v} is not after the current version {cur}")
         return v, self._stamp(at)
 
-    def _publish_incremental(self, v: int, at: float, alive: _Active, new: _Active) -> CostVersion:
+    def _publish_incremental(self, v: int, at: float, batch: Batch) -> CostVersion:
         st = self._state
+        cur = self._current
         costs = st.costs.copy()
         changed = st.changed.copy()
-        _scatter(costs, changed, new.updates)
-        return self._publish(v, at, alive.plus(new), costs, changed, self._current, new)
+        costs[batch.edges] = batch.costs
+        changed[batch.edges] = True
+        earliest = _earliest(cur.next_expiry, batch.min_expiry)
+        counts = {k: cur.updates_by_kind[k] + batch.counts[k] for k in CHANGE_KINDS}
+        active = _Active.from_version(cur).plus(_Active.of(batch.updates, v))
+        return self._publish(v, at, active, costs, changed, earliest, counts)
 
     def _publish_full(self, v: int, at: float, active: _Active) -> CostVersion:
+        whole = Batch(active.updates)
         costs = self._base.copy()
         changed = np.zeros(self.graph.n_edges, dtype=bool)
-        _scatter(costs, changed, active.updates)
-        return self._publish(v, at, active, costs, changed, None, active)
+        costs[whole.edges] = whole.costs
+        changed[whole.edges] = True
+        return self._publish(v, at, active, costs, changed, whole.min_expiry, whole.counts)
 
     def _publish(
         self,
@@ -1203,17 +1259,11 @@ class CostLayer:
         active: _Active,
         costs: np.ndarray,
         changed: np.ndarray,
-        prev: CostVersion | None,
-        added: _Active,
+        earliest: float | None,
+        counts: dict[str, int],
     ) -> CostVersion:
-        """Publish a version; ``prev`` + ``added`` give its expiry and counts in O(added)."""
-        times = [u.expires_at for u in added.updates if u.expires_at is not None]
-        earliest = min(times) if times else None
-        counts = dict.fromkeys(CHANGE_KINDS, 0) if prev is None else dict(prev.updates_by_kind)
-        for u in added.updates:
-            counts[u.change] += 1
-        if prev is not None and prev.next_expiry is not None:
-            earliest = prev.next_expiry if earliest is None else min(earliest, prev.next_expiry)
+        """Publish a version with these costs (``earliest`` expiry and ``counts`` by kind of
+        ``active``, computed by the caller in O(what changed))."""
         costs = _readonly(costs)
         idx = np.flatnonzero(changed)
         c = costs[idx]
@@ -1435,24 +1485,10 @@ class _Active:
         return _Active(self.updates + other.updates, self.batches + other.batches)
 
 
-def _scatter(costs: np.ndarray, changed: np.ndarray, updates: Sequence[Update]) -> None:
-    """Write the updates' costs in order (later wins), with one vectorised assignment.
-
-    numpy does not define which value lands when an index repeats in one assignment, so the
-    last occurrence of each edge is kept explicitly.
-    """
-    if not updates:
-        return
-    if len(updates) == 1:
-        edges, values = updates[0].edges, updates[0].costs
-    else:
-        edges = np.concatenate([u.edges for u in updates])
-        values = np.concatenate([u.costs for u in updates])
-        # first occurrence in the reversed order = last occurrence in apply order
-        edges, first = np.unique(edges[::-1], return_index=True)
-        values = values[::-1][first]
-    costs[edges] = values
-    changed[edges] = True
+def _earliest(a: float | None, b: float | None) -> float | None:
+    if a is None:
+        return b
+    return a if b is None else min(a, b)
 
 
 def _compute_labels(graph: RoadGraph, costs: np.ndarray, closed: np.ndarray) -> _Labels:
@@ -1580,6 +1616,7 @@ def describe_updates(updates: Iterable[Update]) -> dict[str, int]:
 
 
 __all__ = [
+    "Batch",
     "CHANGE_KINDS",
     "CostLayer",
     "CostVersion",

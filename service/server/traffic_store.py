@@ -56,6 +56,7 @@ from pathlib import Path
 from typing import Any, Protocol
 
 from dueroute.planner.traffic import (
+    Batch,
     CostLayer,
     CostVersion,
     Update,
@@ -397,7 +398,7 @@ class LiveTraffic:
             graph, landmarks, refine=refine, background_nice=background_nice, clock=clock
         )
         self._sync_lock = threading.Lock()
-        self._resolved: dict[int, list[Update]] = {}
+        self._resolved: dict[int, Batch] = {}
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
         self.error: str | None = None
@@ -423,15 +424,16 @@ class LiveTraffic:
         self.layer.close()
 
     # -- writing --
-    def parse(self, doc: Any, now: float | None = None) -> list[Update]:
-        """Validate a document against the graph (raises ``TrafficDocumentError``)."""
-        return parse_document(
+    def parse(self, doc: Any, now: float | None = None) -> Batch:
+        """Validate a document against the graph and prepare it (``TrafficDocumentError``)."""
+        updates = parse_document(
             doc, self.graph, now=self.clock() if now is None else now, where="traffic batch"
         )
+        return Batch(updates)
 
-    def submit(self, updates: list[Update]) -> tuple[JournalEntry, CostVersion]:
+    def submit(self, updates: Batch) -> tuple[JournalEntry, CostVersion]:
         """Journal a validated batch and publish it; returns its entry and the version now."""
-        entry = self.store.append_batch([u.spec for u in updates], self.clock())
+        entry = self.store.append_batch([u.spec for u in updates.updates], self.clock())
         self._resolved[entry.seq] = updates
         self.sync(raise_errors=True)
         return entry, self.current
@@ -458,16 +460,18 @@ class LiveTraffic:
             self.last_sync_wall = self.clock()
             return self.current
 
-    def _resolve(self, entry: JournalEntry) -> list[Update]:
+    def _resolve(self, entry: JournalEntry) -> Batch:
         mine = self._resolved.pop(entry.seq, None)
         if mine is not None:
             return mine
-        return parse_document(
-            {"updates": entry.updates},
-            self.graph,
-            now=entry.at,
-            check_expiry=False,
-            where=f"journal entry {entry.seq}",
+        return Batch(
+            parse_document(
+                {"updates": entry.updates},
+                self.graph,
+                now=entry.at,
+                check_expiry=False,
+                where=f"journal entry {entry.seq}",
+            )
         )
 
     def _apply(self, entries: list[JournalEntry]) -> None:
@@ -483,7 +487,7 @@ class LiveTraffic:
         active: list[tuple[Update, int]] = list(zip(cur.active, cur.active_batches, strict=True))
         for e in entries:
             if e.kind == "batch":
-                active += [(u, e.seq) for u in self._resolve(e)]
+                active += [(u, e.seq) for u in self._resolve(e).updates]
             elif e.kind == "clear":
                 active = []
             elif e.kind == "snapshot":

@@ -737,3 +737,26 @@ def test_great_circle_sanity_of_the_local_plane() -> None:
         planar = float(np.hypot(x, y)[0])
         exact = float(great_circle_m(47.2, -31.0, 47.2 + dlat, -31.0 + dlon))
         assert planar == pytest.approx(exact, rel=5e-3)
+
+
+def test_batch_merge_equals_applying_updates_one_by_one(demo_tiny) -> None:
+    """The vectorised merge of a batch (later wins) gives exactly the costs of writing the
+    updates one after the other in plain Python."""
+    from dueroute.planner.traffic import Batch
+
+    g, _, _ = demo_tiny
+    rng = np.random.default_rng(2)
+    doc = sample_scenario(g, rng, slowdowns=300, speedups=50, closures=50, areas=4)
+    tail, head = np.asarray(g.tail), np.asarray(g.head)
+    for e in rng.choice(g.n_edges, 100):  # the same pairs again: overlaps the later one wins
+        doc["updates"].append({"from_node": int(tail[e]), "to_node": int(head[e]), "factor": 2.5})
+    ups = parse_document(doc, g)
+    expected = np.array(g.travel_time_s, dtype=np.float64)
+    for u in ups:
+        for e, c in zip(u.edges.tolist(), u.costs.tolist(), strict=True):
+            expected[e] = c
+    layer = CostLayer(g, refine="off")
+    v = layer.apply(Batch(ups))
+    assert np.array_equal(v.travel_time_s, expected)
+    v2 = CostLayer(g, refine="off").apply(ups)  # a plain list is prepared the same way
+    assert np.array_equal(v2.travel_time_s, expected)

@@ -181,7 +181,7 @@ async def post_traffic(
                 "batch_version": None,
                 "dry_run": True,
                 "updates": len(updates),
-                "edges_selected": int(sum(u.edges.shape[0] for u in updates)),
+                "edges_selected": int(updates.edges.shape[0]),
                 "traffic": traffic.info(),
             }
         )
