@@ -20,7 +20,15 @@ from typing import Any
 import numpy as np
 
 from dueroute.planner.errors import InvalidRequest
-from dueroute.service.cli.common import GRAPH_HELP, add_json_flag, emit, load_graph_arg, progress
+from dueroute.service.cli.common import (
+    GRAPH_HELP,
+    add_json_flag,
+    add_traffic_flag,
+    emit,
+    load_graph_arg,
+    load_traffic_arg,
+    progress,
+)
 
 TARGET_P99_MS = 0.5
 
@@ -52,6 +60,7 @@ def register(bench_sub: Any) -> None:
     d.add_argument(
         "--landmarks", action="store_true", help="use ALT landmarks (searches finish sooner)"
     )
+    add_traffic_flag(d)
     add_json_flag(d)
     d.set_defaults(func=cmd_deadline)
 
@@ -89,10 +98,11 @@ def cmd_deadline(args: argparse.Namespace) -> int:
     graph = load_graph_arg(args.graph)
     landmarks = load_or_build_landmarks(graph, progress=True) if args.landmarks else None
     planner = Planner(graph, landmarks=landmarks)
+    costs = load_traffic_arg(args.traffic, graph, landmarks) if args.traffic else None
     pairs, how = long_trip_pairs(graph, args.queries, np.random.default_rng(args.seed))
     for o, t in pairs[:3]:  # compile and warm every code path before timing
-        plan(planner, o, t, deadline_ms=1.0, controller="ana")
-        plan(planner, o, t, deadline_ms=1.0, controller="decreasing")
+        plan(planner, o, t, deadline_ms=1.0, controller="ana", costs=costs)
+        plan(planner, o, t, deadline_ms=1.0, controller="decreasing", costs=costs)
 
     cells = []
     bar = progress(total=len(args.controllers) * len(args.deadlines_ms) * len(pairs), unit="search")
@@ -104,7 +114,13 @@ def cmd_deadline(args: argparse.Namespace) -> int:
             for o, t in pairs:
                 start = time.perf_counter()
                 result = plan(
-                    planner, o, t, deadline_ms=deadline_ms, controller=spec, started_at=start
+                    planner,
+                    o,
+                    t,
+                    deadline_ms=deadline_ms,
+                    controller=spec,
+                    started_at=start,
+                    costs=costs,
                 )
                 back = time.perf_counter()
                 if result.status == "contract_spent":
@@ -132,6 +148,8 @@ def cmd_deadline(args: argparse.Namespace) -> int:
         "nodes": graph.n_nodes,
         "queries": how,
         "landmarks": bool(args.landmarks),
+        "traffic": args.traffic,
+        "traffic_version": costs.version if costs is not None else None,
         "target_p99_ms": TARGET_P99_MS,
         "worst_p99_ms": worst,
         "target_met": worst is not None and worst <= TARGET_P99_MS,

@@ -310,3 +310,51 @@ def test_real_server_post_plan_restart_plan(tiny_graph_path, tmp_path) -> None:
         second = httpx.post(server.url + "/v1/plans", json=body, timeout=10).json()
     assert info["version"] == 1 and second["traffic_version"] == 1
     assert second["cost_s"] == first["cost_s"] and second["status"] == "optimal"
+
+
+def test_loadtest_sets_the_traffic_and_checks_against_the_changed_optimum(
+    make_client, tiny_graph_path
+) -> None:
+    """``run_loadtest`` with a traffic document and the admin token: the service is set to
+    exactly that document, every answer names its version, and the reference (scipy
+    ``csgraph.dijkstra`` on the same changed costs) finds every route optimal and valid."""
+    import asyncio
+
+    from dueroute.planner.traffic import costs_from_document
+    from dueroute.service.loadtest import runner as lt
+
+    client = make_client(tiny_graph_path, admin_token=ADMIN_TOKEN)
+    client.post(
+        "/v1/traffic", json={"updates": [{"from_node": 0, "to_node": 5, "factor": 9}]}, headers=AUTH
+    )
+    graph = load_graph(tiny_graph_path)
+    version = costs_from_document(graph, CLOSE_PRIMARY)
+    queries = [(0, 3), (3, 0), (0, 6), (4, 2)]
+    reference = lt.Reference(graph, queries, costs=version)
+    config = lt.LoadTestConfig(
+        url="http://127.0.0.1:9",
+        concurrency=(1,),
+        deadlines_ms=(200,),
+        controllers=("fixed:1",),
+        duration_s=30,
+        max_requests=8,
+        warmup_requests=1,
+    )
+    result = asyncio.run(
+        lt.run_loadtest(
+            config,
+            queries,
+            reference=reference,
+            transport=httpx.ASGITransport(app=client.app),
+            traffic_doc=CLOSE_PRIMARY,
+            admin_token=ADMIN_TOKEN,
+        )
+    )
+    assert result.server["traffic"]["version"] == 3  # 1 = the earlier batch, 2 = the clear
+    assert result.server["traffic"]["active_updates"] == 1
+    (cell,) = lt.summarize(result)["cells"]
+    assert cell["answers"] == 8 and cell["traffic_version_mismatches"] == 0
+    assert cell["route_mismatches"] == 0 and cell["bound_above_optimal"] == 0
+    assert cell["quality"]["mean"] == pytest.approx(1.0)
+    base = float(dijkstra(graph.csr(), directed=True, indices=[0])[0, 3])
+    assert reference.optimal_s[(0, 3)] > base  # the reference did use the changed costs
