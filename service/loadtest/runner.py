@@ -700,7 +700,10 @@ def apply_reference(rec: RequestRecord, reference: Reference, plan: dict[str, An
     rec.cost_below_optimal = chk["cost_below_optimal"]
     rec.bound_above_optimal = chk["bound_above_optimal"]
     expected = reference.expected_version
-    rec.traffic_version_mismatch = expected is not None and rec.traffic_version != expected
+    # an answer that never searched (its deadline passed in the queue) names no version
+    rec.traffic_version_mismatch = (
+        expected is not None and rec.traffic_version is not None and rec.traffic_version != expected
+    )
 
 
 def _opt_float(v: Any) -> float | None:
