@@ -68,7 +68,9 @@ Landmark distances are computed on free-flow costs (``graph.travel_time_s``). If
 raises some edge costs (congestion, closures as large costs), every true distance ``d'(v, t)``
 is >= the free-flow ``d(v, t)`` >= ``h(v)``, so the bound stays admissible, and
 ``h(v) <= c(v, w) + h(w) <= c'(v, w) + h(w)`` keeps it consistent. Lowered costs would break
-both: rebuild the landmarks for such a graph. A graph compiled with other costs has another
+both: rebuild the landmarks for such a graph, or lower the bound by the total decrease
+(live traffic does both; the proof is in the ``planner/traffic.py`` docstring, and
+:func:`landmarks_on_costs` rebuilds the same landmarks on other costs). A graph compiled with other costs has another
 fingerprint, so its stale landmark file is refused (``load_landmarks``) or rebuilt
 (``load_or_build_landmarks``); ``Landmarks.check_graph(graph)`` makes the same test.
 
@@ -430,38 +432,101 @@ def build_landmarks(
     finally:
         bar.close()
 
+    built = _assemble(graph, nodes, dist_from, pred_from, dist_to, pred_to)
+    return Landmarks(
+        **built,
+        method=method,
+        graph_fingerprint=graph.fingerprint,
+        meta={
+            "seed": int(seed),
+            "requested_count": int(count),
+            "build_s": time.perf_counter() - started,
+        },
+    )
+
+
+def landmarks_on_costs(graph: RoadGraph, landmarks: Landmarks, costs: np.ndarray) -> Landmarks:
+    """The same landmark nodes with their distances and trees recomputed on other edge costs.
+
+    Used for live traffic (``planner/traffic.py``): ALT built on costs ``c`` is admissible for
+    any costs ``>= c``. ``costs`` is float64[m] with ``+inf`` for closed edges (scipy's
+    ``csgraph.dijkstra`` never relaxes an infinite edge, so closed edges carry no path, and the
+    trees never use one). The result keeps the graph's fingerprint in ``graph_fingerprint`` (it
+    belongs to that graph) and records in ``meta["costs"]`` that it was not built on the base
+    costs; it is never saved beside the graph.
+    """
+    started = time.perf_counter()
+    costs = np.asarray(costs, dtype=np.float64)
+    nodes = np.asarray(landmarks.nodes, dtype=np.int64)
+    forward = graph.csr(costs)
+    backward = forward.T.tocsr()
+    n = graph.n_nodes
+    if nodes.size:
+        dist_from, pred_from = dijkstra(
+            forward, directed=True, indices=nodes, return_predecessors=True
+        )
+        dist_to, pred_to = dijkstra(
+            backward, directed=True, indices=nodes, return_predecessors=True
+        )
+        dist_from, dist_to = np.atleast_2d(dist_from), np.atleast_2d(dist_to)
+        pred_from, pred_to = np.atleast_2d(pred_from), np.atleast_2d(pred_to)
+    else:
+        dist_from = dist_to = np.zeros((0, n))
+        pred_from = pred_to = np.zeros((0, n), dtype=np.int64)
+    built = _assemble(graph, nodes, dist_from, pred_from, dist_to, pred_to, costs)
+    return Landmarks(
+        **built,
+        method=landmarks.method,
+        graph_fingerprint=graph.fingerprint,
+        meta={"costs": "live", "build_s": time.perf_counter() - started},
+    )
+
+
+def _assemble(
+    graph: RoadGraph,
+    nodes: Any,
+    dist_from: np.ndarray,
+    pred_from: np.ndarray,
+    dist_to: np.ndarray,
+    pred_to: np.ndarray,
+    costs: np.ndarray | None = None,
+) -> dict[str, Any]:
+    """Quantized rows, trees as edge indices, unit and slack from scipy's distance and
+    predecessor arrays (float64 / int [L, n]); read-only arrays."""
+    n = graph.n_nodes
+    count = len(nodes)
     max_distance_s = max(_finite_max(dist_from), _finite_max(dist_to))
     unit_s = unit_for(max_distance_s)
     lm = np.empty((n, count, 2), dtype=np.uint16)
     lm[:, :, 0] = quantize(dist_to.T, unit_s)
     lm[:, :, 1] = quantize(dist_from.T, unit_s)
-    edge_of = _cheapest_edge_lookup(graph)
+    edge_of = _cheapest_edge_lookup(graph, costs)
     tree_from = edge_of(pred_from, np.arange(n)[None, :])  # edge pred -> v
     tree_to = edge_of(np.arange(n)[None, :], pred_to)  # edge v -> successor
-    build_s = time.perf_counter() - started
-    return Landmarks(
-        nodes=np.asarray(nodes, dtype=np.int32),
-        lm=lm,
-        tree_to=tree_to,
-        tree_from=tree_from,
-        unit_s=unit_s,
-        slack_s=slack_for(max_distance_s),
-        max_distance_s=max_distance_s,
-        method=method,
-        graph_fingerprint=graph.fingerprint,
-        meta={"seed": int(seed), "requested_count": int(count), "build_s": build_s},
-    )
+    for arr in (lm, tree_from, tree_to):
+        arr.flags.writeable = False
+    return {
+        "nodes": np.asarray(nodes, dtype=np.int32),
+        "lm": lm,
+        "tree_to": tree_to,
+        "tree_from": tree_from,
+        "unit_s": unit_s,
+        "slack_s": slack_for(max_distance_s),
+        "max_distance_s": max_distance_s,
+    }
 
 
-def _cheapest_edge_lookup(graph: RoadGraph) -> Any:
-    """``edge_of(tails, heads) -> int32`` array: the cheapest edge from each tail to each head
-    (-1 where a tail is negative, i.e. scipy's "no predecessor"). The shortest-path trees come
-    from ``graph.csr()``, which keeps the cheapest of parallel edges, so this picks that one."""
+def _cheapest_edge_lookup(graph: RoadGraph, costs: np.ndarray | None = None) -> Any:
+    """``edge_of(tails, heads) -> int32`` array: the cheapest edge (under ``costs``, default the
+    graph's) from each tail to each head (-1 where a tail is negative, i.e. scipy's "no
+    predecessor"). The shortest-path trees come from ``graph.csr(costs)``, which keeps the
+    cheapest of parallel edges, so this picks that one."""
     n = graph.n_nodes
     tail = np.asarray(graph.tail, dtype=np.int64)
     head = np.asarray(graph.head, dtype=np.int64)
     keys = tail * n + head
-    order = np.lexsort((np.asarray(graph.travel_time_s), keys))
+    w = np.asarray(graph.travel_time_s if costs is None else costs)
+    order = np.lexsort((w, keys))
     sorted_keys = keys[order]
     first = np.ones(order.shape[0], dtype=bool)
     first[1:] = sorted_keys[1:] != sorted_keys[:-1]

@@ -66,7 +66,7 @@ import threading
 import time
 import weakref
 from collections.abc import Callable
-from dataclasses import replace
+from dataclasses import dataclass, replace
 from typing import Any, Protocol
 
 import numba
@@ -191,6 +191,20 @@ def _readonly(a: np.ndarray, dtype: Any) -> np.ndarray:
     return arr
 
 
+@dataclass(frozen=True)
+class _Arrays:
+    """What differs between searches on base costs and on a live cost version."""
+
+    cost: np.ndarray
+    lm: np.ndarray
+    tree_to: np.ndarray
+    tree_from: np.ndarray
+    lm_nodes: np.ndarray
+    lm_unit: float
+    lm_slack: float
+    gc_scale: float
+
+
 class Planner:
     """Reusable search engine over one road graph.
 
@@ -255,6 +269,16 @@ class Planner:
         if not 0 <= int(active_landmarks) <= K.MAX_ACTIVE:
             raise InvalidRequest(f"active_landmarks must be in 0..{K.MAX_ACTIVE}")
         self.active_landmarks = min(int(active_landmarks), self.n_landmarks)
+        self._arrays = _Arrays(
+            cost=self._cost,
+            lm=self._lm,
+            tree_to=self._tree_to,
+            tree_from=self._tree_from,
+            lm_nodes=self._lm_nodes,
+            lm_unit=self._lm_unit,
+            lm_slack=self._lm_slack,
+            gc_scale=self._gc_scale if self.use_chord else 0.0,
+        )
         # the query-independent part of fstate, copied into every new query
         t = np.zeros(K.F_LOG, dtype=np.float64)
         t[K.F_WEIGHT] = 1.0
@@ -297,25 +321,62 @@ class Planner:
         with self._pool_lock:
             self._pool.append(ws)
 
-    def _run(self, ws: _Workspace) -> int:
-        args: tuple[Any, ...] = (self._indptr, self._head, self._cost, self._coords, self._lm)
+    def _run(self, ws: _Workspace, arrays: _Arrays | None = None) -> int:
+        a = self._arrays if arrays is None else arrays
+        args: tuple[Any, ...] = (self._indptr, self._head, a.cost, self._coords, a.lm)
         args += (ws.state, ws.heap, ws.istate, ws.fstate)
         return int(_call(K.run, self._entry, "run", args))
 
-    def _open_query(self, ws: _Workspace) -> tuple[int, float, float]:
-        args: tuple[Any, ...] = (self._indptr, self._head, self._cost, self._coords, self._lm)
-        args += (
-            self._lm_nodes,
-            self._tree_to,
-            self._tree_from,
-            ws.state,
-            ws.heap,
-            ws.istate,
-            ws.fstate,
-        )
+    def _open_query(
+        self, ws: _Workspace, arrays: _Arrays | None = None
+    ) -> tuple[int, float, float]:
+        a = self._arrays if arrays is None else arrays
+        args: tuple[Any, ...] = (self._indptr, self._head, a.cost, self._coords, a.lm)
+        args += (a.lm_nodes, a.tree_to, a.tree_from, ws.state, ws.heap, ws.istate, ws.fstate)
         args += (ws.src_node, ws.src_g, ws.route_buf)
         count, cost, h_start = _call(K.open_query, self._entry, "open_query", args)
         return int(count), float(cost), float(h_start)
+
+    def arrays_for(self, costs: Any) -> _Arrays:
+        """The cost and landmark arrays a search on live ``costs`` uses (``planner.traffic``
+        ``CostVersion``), with the scalars that keep its bound proven: the chord bound at the
+        version's top speed (used whenever the ALT term is weakened), the landmarks rebuilt for
+        the version if it has them, and the landmark slack plus the version's total saving R
+        (see ``planner/traffic.py``)."""
+        if costs is None:
+            return self._arrays
+        cost = _readonly(costs.travel_time_s, np.float64)
+        if cost.shape != self._cost.shape:
+            raise InvalidRequest(
+                f"cost version {getattr(costs, 'version', '?')} has {cost.shape[0]} edge costs; "
+                f"this graph has {self._cost.shape[0]} edges"
+            )
+        lms = getattr(costs, "landmarks", None)
+        if lms is not None and self.n_landmarks:
+            if np.asarray(lms.lm).shape != self._lm.shape:
+                raise InvalidRequest("the cost version's landmarks do not match the planner's")
+            lm = _readonly(lms.lm, np.uint16)
+            tree_to = _readonly(lms.tree_to, np.int32)
+            tree_from = _readonly(lms.tree_from, np.int32)
+            nodes = _readonly(lms.nodes, np.int32)
+            unit, slack = float(lms.unit_s), float(lms.slack_s)
+        else:
+            a = self._arrays
+            lm, tree_to, tree_from, nodes = a.lm, a.tree_to, a.tree_from, a.lm_nodes
+            unit, slack = self._lm_unit, self._lm_slack
+        extra = float(getattr(costs, "landmark_slack_extra_s", 0.0) or 0.0)
+        speed = float(getattr(costs, "max_speed_mps", 0.0) or self.graph.max_speed_mps)
+        chord = self.use_chord or extra > 0.0
+        return _Arrays(
+            cost=cost,
+            lm=lm,
+            tree_to=tree_to,
+            tree_from=tree_from,
+            lm_nodes=nodes,
+            lm_unit=unit,
+            lm_slack=slack + extra,
+            gc_scale=(1.0 - 1e-9) / speed if chord else 0.0,
+        )
 
     def warm_up(self) -> None:
         """Compile (or load from the numba cache) every kernel and build the component DAG, so
@@ -335,6 +396,7 @@ class Planner:
         cancel: _Event | None = None,
         mode: str = "weighted",
         gap_target: float = 0.0,
+        costs: Any = None,
     ) -> Search:
         """Open a search (see the module docstring for contracts and steps).
 
@@ -358,6 +420,9 @@ class Planner:
         gap_target : float
             Stop once the proven relative gap is at or below this (``0 <= gap < 1``; 0: only
             when proven optimal).
+        costs : planner.traffic.CostVersion, optional
+            Live edge costs to search on instead of the graph's base costs; the search keeps
+            this version from start to end, and its bounds stay proven (:meth:`arrays_for`).
         """
         t_arrival = time.perf_counter() if started_at is None else float(started_at)
         g = self.graph
@@ -380,6 +445,7 @@ class Planner:
             cancel=cancel,
             mode=mode,
             gap_target=gap_target,
+            costs=costs,
         )
 
 
@@ -514,8 +580,12 @@ class Search:
         cancel: _Event | None,
         mode: str,
         gap_target: float,
+        costs: Any = None,
     ) -> None:
         self.planner = planner
+        #: the cost version searched (None: base costs), held from start to end
+        self.costs = costs
+        self._arrays = planner.arrays_for(costs)
         self.origin = origin
         self.destination = destination
         self.deadline_ms = deadline_ms
@@ -578,9 +648,13 @@ class Search:
             self._set_cost(0.0)
             self._finish("optimal", "proof")
             return
-        if comp[origin] != comp[destination] and not _reachable_by_labels(
-            planner, origin, destination
-        ):
+        if costs is not None and getattr(costs, "component", None) is not None:
+            unreachable = not costs.may_reach(origin, destination)
+        else:
+            unreachable = comp[origin] != comp[destination] and not _reachable_by_labels(
+                planner, origin, destination
+            )
+        if unreachable:
             self._finish("no_route", "unreachable")
             return
         ws = planner._acquire()
@@ -603,6 +677,11 @@ class Search:
         ist, fst = ws.istate, ws.fstate
         ist[: K.I_TLM] = 0
         fst[: K.F_LOG] = planner._ftemplate
+        arrays = self._arrays
+        if arrays is not planner._arrays:
+            fst[K.F_GC_SCALE] = arrays.gc_scale
+            fst[K.F_LM_SLACK] = arrays.lm_slack
+            fst[K.F_LM_UNIT] = arrays.lm_unit
         ist[K.I_GEN] = ws.next_generations(K.INSTANT_GENERATIONS + 1)
         ist[K.I_MODE] = self._mode_code
         fst[K.F_GAP_TARGET] = self.gap_target
@@ -614,13 +693,15 @@ class Search:
         n_lm = planner.n_landmarks
         ist[K.I_N_ACTIVE] = planner.active_landmarks
         if n_lm:
-            ist[K.I_TLM : K.I_TLM + 2 * n_lm] = planner._lm[destination].reshape(-1)
-        count, _, h_start = planner._open_query(ws)
+            ist[K.I_TLM : K.I_TLM + 2 * n_lm] = arrays.lm[destination].reshape(-1)
+        count, _, h_start = planner._open_query(ws, arrays)
         h_start = float(h_start)
         v = self._v
         v[_V_H_START] = h_start
         if math.isfinite(h_start):
             v[_V_BOUND] = h_start
+        if count >= 0 and not math.isfinite(float(np.sum(arrays.cost[ws.route_buf[:count]]))):
+            count = -1  # the trees' route uses a closed edge (live costs): no instant route
         if ist[K.I_SIZE] == 0 and count < 0:  # nothing to search and no route
             self._finish("no_route", "unreachable")
             return
@@ -636,7 +717,7 @@ class Search:
             ist[K.I_MODE] = K.MODE_ANA
 
     def _install_instant(self, nodes: np.ndarray, edges: np.ndarray) -> None:
-        cost = float(np.sum(self.planner._cost[edges]))
+        cost = float(np.sum(self._arrays.cost[edges]))
         self._route, self._route_edges = nodes, edges
         self._set_cost(cost)
         self._instant_cost = cost
@@ -853,7 +934,7 @@ class Search:
 
     def _kernel(self, ws: _Workspace) -> int:
         t0 = time.perf_counter()
-        status = self.planner._run(ws)
+        status = self.planner._run(ws, self._arrays)
         self._kernel_s += time.perf_counter() - t0
         return int(status)
 
@@ -891,7 +972,7 @@ class Search:
         nodes, edges = K.extract_route(ws.state, best, planner.n_nodes)
         if nodes.shape[0] == 0:  # cannot happen: parent pointers always lead back
             raise RuntimeError("internal error: route extraction failed")
-        cost = float(np.sum(planner._cost[edges]))
+        cost = float(np.sum(self._arrays.cost[edges]))
         self._route, self._route_edges = nodes, edges
         self._set_cost(cost)
         self._route_read = found
@@ -1039,6 +1120,7 @@ def plan(
     seed: int | None = None,
     started_at: float | None = None,
     gap_target: float = 0.0,
+    costs: Any = None,
 ) -> PlanResult:
     """Best route from ``origin`` to ``destination`` within the contract.
 
@@ -1066,6 +1148,8 @@ def plan(
     gap_target : float
         Stop as soon as the proven relative gap is at or below this (0: search until the
         deadline or the proof).
+    costs : planner.traffic.CostVersion, optional
+        Live edge costs (see :meth:`Planner.start`).
     """
     t0 = time.perf_counter() if started_at is None else started_at
     ctrl = make_controller(controller, seed=seed) if isinstance(controller, str) else controller
@@ -1084,6 +1168,7 @@ def plan(
         cancel=cancel,
         mode=ctrl.mode,
         gap_target=gap_target,
+        costs=costs,
     )
     search.controller_name = ctrl.name
     search.on_improvement = on_improvement

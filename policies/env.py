@@ -67,6 +67,22 @@ class EnvConfig:
             "service uses them (0 = great-circle bound only)"
         },
     )
+    traffic: str = field(
+        default="",
+        metadata={
+            "help": "live traffic applied to every episode: a JSON document (POST /v1/traffic "
+            "format) or a shipped scenario name such as rush-hour ('' = free flow)"
+        },
+    )
+    traffic_scenarios: int = field(
+        default=0,
+        metadata={
+            "help": "random traffic scenarios (slowdowns, speed-ups, closures, congested "
+            "areas; planner.traffic.sample_scenario) in the pool; each episode draws its "
+            "costs uniformly from the free-flow (or --traffic) costs and these (scenarios)"
+        },
+    )
+    traffic_seed: int = field(default=7, metadata={"help": "seed of the random scenarios"})
 
     def __post_init__(self) -> None:
         problems = []
@@ -82,6 +98,8 @@ class EnvConfig:
             problems.append(f"n_queries must be >= 1, got {self.n_queries}")
         if self.landmarks < 0:
             problems.append(f"landmarks must be >= 0, got {self.landmarks}")
+        if not 0 <= self.traffic_scenarios <= 1000:
+            problems.append(f"traffic_scenarios must be in 0..1000, got {self.traffic_scenarios}")
         if problems:
             raise ValueError("invalid environment config: " + "; ".join(problems))
 
@@ -136,10 +154,14 @@ def _sample_by_distance(graph: RoadGraph, n: int, seed: int) -> np.ndarray:
 
 
 class OptimalCosts:
-    """Exact shortest travel times by ``scipy.sparse.csgraph.dijkstra``, cached per query."""
+    """Exact shortest travel times by ``scipy.sparse.csgraph.dijkstra``, cached per query.
 
-    def __init__(self, graph: RoadGraph) -> None:
-        self._csr = graph.csr()
+    ``costs`` (float64[m], ``+inf`` = closed; a live traffic version's ``travel_time_s``)
+    replaces the graph's free-flow travel times.
+    """
+
+    def __init__(self, graph: RoadGraph, costs: np.ndarray | None = None) -> None:
+        self._csr = graph.csr(costs)
         self._cache: dict[tuple[int, int], float] = {}
 
     def __call__(self, origin: int, destination: int) -> float:
@@ -165,6 +187,45 @@ class OptimalCosts:
                 if int(o) in row:
                     self._cache[(int(o), int(d))] = float(dist[row[int(o)], int(d)])
         return np.array([self._cache[(int(o), int(d))] for o, d in queries])
+
+
+def build_cost_pool(
+    graph: RoadGraph,
+    config: EnvConfig,
+    landmarks: Any = None,
+    optimal: OptimalCosts | None = None,
+) -> list[tuple[Any, OptimalCosts]]:
+    """``[(cost version or None, its exact optima)]`` an environment draws episodes from.
+
+    Entry 0 is the free-flow costs (``None``), or ``config.traffic`` applied to them; then
+    ``config.traffic_scenarios`` random scenarios. Each version gets its SCC labels, and
+    landmarks rebuilt on its costs when its speed-ups call for it (``planner.traffic``), as
+    the service would serve it once its background work is done.
+    """
+    from dueroute.planner.traffic import CostLayer, load_document, parse_document, sample_scenario
+
+    def version_of(updates: list[Any]) -> Any:
+        layer = CostLayer(graph, landmarks, refine="sync")
+        try:
+            return layer.apply(updates)
+        finally:
+            layer.close()
+
+    pool: list[tuple[Any, OptimalCosts]] = []
+    if config.traffic:
+        from dueroute.demo_data.traffic import resolve_traffic_path
+
+        _, updates = load_document(resolve_traffic_path(config.traffic), graph)
+        base = version_of(updates)
+        pool.append((base, OptimalCosts(graph, base.travel_time_s)))
+    else:
+        pool.append((None, optimal if optimal is not None else OptimalCosts(graph)))
+    rng = np.random.default_rng(config.traffic_seed)
+    for _ in range(config.traffic_scenarios):
+        doc = sample_scenario(graph, rng)
+        version = version_of(parse_document(doc, graph, where="sampled traffic scenario"))
+        pool.append((version, OptimalCosts(graph, version.travel_time_s)))
+    return pool
 
 
 def quality(optimal_cost_s: float, incumbent_cost_s: float | None) -> float:
@@ -240,10 +301,19 @@ class WeightControlEnv(gym.Env):
     the contract left is part of the observation, so the end of the contract is part of the
     state, not an outside time limit.
 
+    Traffic
+    -------
+    ``traffic`` / ``traffic_scenarios`` (:class:`EnvConfig`) give a pool of cost versions
+    (:func:`build_cost_pool`); each reset draws one with ``self.np_random`` (only when the
+    pool holds more than one, so free-flow training draws exactly as before) and searches the
+    episode on it, with the optimum computed on the same costs. A query a closure cuts off is
+    redrawn.
+
     Info
     ----
     ``quality``, ``optimal_cost_s``, ``incumbent_cost_s``, ``query_index``, ``weight``,
-    ``status`` (``running`` or a final status of ``dueroute.planner.results.STATUSES``).
+    ``status`` (``running`` or a final status of ``dueroute.planner.results.STATUSES``),
+    ``traffic_index`` (entry of the cost pool; 0 = free flow or ``traffic``).
     """
 
     metadata: dict[str, Any] = {"render_modes": []}
@@ -256,13 +326,14 @@ class WeightControlEnv(gym.Env):
         queries: np.ndarray | None = None,
         planner: Planner | None = None,
         optimal: OptimalCosts | None = None,
+        cost_pool: list[tuple[Any, OptimalCosts]] | None = None,
         **overrides: Any,
     ) -> None:
         self.config = dataclasses.replace(config or EnvConfig(), **overrides)
         cfg = self.config
         self.graph = graph
+        landmarks = None
         if planner is None:
-            landmarks = None
             if cfg.landmarks > 0:
                 from dueroute.planner.heuristics import load_or_build_landmarks
 
@@ -277,7 +348,11 @@ class WeightControlEnv(gym.Env):
         for o, d in self.queries:
             graph.check_node(int(o))
             graph.check_node(int(d))
-        self.optimal = optimal if optimal is not None else OptimalCosts(graph)
+        if cost_pool is None:
+            cost_pool = build_cost_pool(graph, cfg, landmarks, optimal)
+        self.cost_pool = cost_pool
+        self.optimal = cost_pool[0][1]
+        self._traffic_index = 0
 
         self.weights = WEIGHTS
         self.action_meanings = action_meanings(cfg.action_kind, WEIGHTS)
@@ -314,13 +389,25 @@ class WeightControlEnv(gym.Env):
             "query_index": self._query_index,
             "weight": stats.weight,
             "status": self._search.status or "running",
+            "traffic_index": self._traffic_index,
         }
         return compute_features(stats), info
 
-    def _open(self, index: int) -> None:
+    def _draw_costs(self) -> int:
+        if len(self.cost_pool) == 1:
+            return 0  # no draw: free-flow training keeps its random stream unchanged
+        return int(self.np_random.integers(len(self.cost_pool)))
+
+    def _open(self, index: int, traffic_index: int = 0) -> bool:
+        """Open query ``index`` on pool entry ``traffic_index``; False if it has no route."""
         origin, destination = (int(x) for x in self.queries[index])
+        version, optimal = self.cost_pool[traffic_index]
+        optimal_s = optimal(origin, destination)
+        if not math.isfinite(optimal_s):
+            return False
         self._query_index = index
-        self._optimal_s = self.optimal(origin, destination)
+        self._traffic_index = traffic_index
+        self._optimal_s = optimal_s
         if self._search is not None:
             self._search.close()
         self._search = self.planner.start(
@@ -328,8 +415,10 @@ class WeightControlEnv(gym.Env):
             destination,
             budget_expansions=self.config.budget_expansions,
             steps=self.config.steps,
+            costs=version,
         )
         self._search.run_step(self.config.initial_weight)
+        return True
 
     # -- gymnasium API --
     def reset(
@@ -347,13 +436,28 @@ class WeightControlEnv(gym.Env):
                 raise ValueError(
                     f"query_index must be in 0..{self.queries.shape[0] - 1}, got {index}"
                 )
-            self._open(index)
+            traffic = options.get("traffic_index")
+            traffic = self._draw_costs() if traffic is None else int(traffic)
+            if not 0 <= traffic < len(self.cost_pool):
+                raise ValueError(
+                    f"traffic_index must be in 0..{len(self.cost_pool) - 1}, got {traffic}"
+                )
+            if not self._open(index, traffic):
+                raise ValueError(f"query {index} has no route under cost pool entry {traffic}")
         else:
+            opened = False
             for _ in range(MAX_REDRAWS):
-                self._open(int(self.np_random.integers(self.queries.shape[0])))
+                query = int(self.np_random.integers(self.queries.shape[0]))
+                if not self._open(query, self._draw_costs()):
+                    continue  # a closure cut this query off: draw again
+                opened = True
                 assert self._search is not None
                 if not self._search.done:
                     break
+            if not opened:
+                raise ValueError(
+                    f"no query with a route found in {MAX_REDRAWS} draws under the traffic pool"
+                )
         # Quality counts from 0 at the episode start, so the first reward includes the first
         # step's route (see the class docstring): return == final quality.
         self._quality = 0.0

@@ -100,6 +100,10 @@ class EvalSettings:
     controllers: Sequence[str] = CONTROLLERS
     steps: int | None = None
     importance_queries: int = 100
+    #: live cost version (``planner.traffic.CostVersion``) every search and optimum uses
+    costs: Any = None
+    #: where ``costs`` came from (a file or scenario name), for the report
+    traffic_source: str | None = None
 
 
 def run_one(
@@ -111,15 +115,23 @@ def run_one(
     contract: Contract,
     steps: int,
     seed: int,
+    costs: Any = None,
 ) -> Run:
-    """Search one query with one controller under one contract."""
+    """Search one query with one controller under one contract (on live ``costs`` if given)."""
     kwargs: dict[str, Any] = (
         {"budget_expansions": int(contract.value)}
         if contract.kind == "budget"
         else {"deadline_ms": float(contract.value)}
     )
     res: PlanResult = plan(
-        planner, origin, destination, controller=controller, steps=steps, seed=seed, **kwargs
+        planner,
+        origin,
+        destination,
+        controller=controller,
+        steps=steps,
+        seed=seed,
+        costs=costs,
+        **kwargs,
     )
     profile = []
     for imp in res.improvements:
@@ -234,7 +246,16 @@ def evaluate(
     main = next((c for c in contracts if c.trained), contracts[0])
 
     queries = sample_queries(graph, settings.n_queries, settings.seed)
-    optimal = OptimalCosts(graph).precompute(queries)
+    costs = settings.costs
+    optimal = OptimalCosts(graph, None if costs is None else costs.travel_time_s).precompute(
+        queries
+    )
+    # Closures can cut a query off: nothing to find, nothing to compare; keep the others.
+    reachable = np.isfinite(optimal)
+    unreachable = int(np.count_nonzero(~reachable))
+    queries, optimal = queries[reachable], optimal[reachable]
+    if queries.shape[0] == 0:
+        raise ValueError("no held-out query has a route under these traffic costs")
 
     results: dict[str, dict[str, list[Run]]] = {c.key: {} for c in contracts}
     learned_features: list[np.ndarray] = []
@@ -257,6 +278,7 @@ def evaluate(
                         contract,
                         steps,
                         settings.seed + i,
+                        costs,
                     )
                 )
                 bar.update(1)
@@ -269,7 +291,13 @@ def evaluate(
         "n": int(len(queries)),
         "seed": settings.seed,
         "mean_optimal_s": float(np.mean(optimal)),
+        "unreachable_under_traffic": unreachable,
     }
+    if costs is not None:
+        summary["traffic"] = {
+            k: v for k, v in costs.info(max_listed=0).items() if k not in ("updates",)
+        }
+        summary["traffic"]["source"] = settings.traffic_source
     summary["policy"] = policy.info()
     summary["graph"] = {
         "name": graph.name,
@@ -412,7 +440,15 @@ def _importance(
             )
             qs.append(
                 run_one(
-                    planner, o, d, float(optimal[i]), ctrl, contract, steps, settings.seed + i
+                    planner,
+                    o,
+                    d,
+                    float(optimal[i]),
+                    ctrl,
+                    contract,
+                    steps,
+                    settings.seed + i,
+                    settings.costs,
                 ).quality
             )
             bar.update(1)
@@ -443,7 +479,19 @@ def markdown_report(summary: dict[str, Any]) -> str:
     contracts = summary["contracts"]
     keys = list(contracts)
     controllers = list(next(iter(contracts.values()))["controllers"])
-    lines = [
+    traffic = summary.get("traffic")
+    lines = []
+    if traffic:
+        lines += [
+            f"Under live traffic {traffic.get('source', '')}: cost version {traffic['version']}, "
+            f"{traffic['active_updates']} updates, {traffic['edges_changed']:,} edges changed "
+            f"({traffic['edges_closed']:,} closed, {traffic['edges_faster']:,} faster), bound "
+            f"{traffic['bound_quality']}; "
+            f"{summary['queries'].get('unreachable_under_traffic', 0)} queries cut off by "
+            "closures were left out.",
+            "",
+        ]
+    lines += [
         f"Held-out queries: {summary['queries']['n']} (seed {summary['queries']['seed']}), "
         f"{summary['decision_steps']} decision steps per contract. Quality = optimal travel "
         "time / found travel time (0 if no route found), optimum by scipy Dijkstra.",

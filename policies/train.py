@@ -58,10 +58,22 @@ def greedy_quality(
     The quality is taken from the search's final incumbent, not from the episode's reward
     sum: a query whose first step (run at the initial weight, before the policy acts) already
     ends the search has no step, and its return would read 0 although the route is optimal.
+
+    Under a traffic pool query ``i`` runs on pool entry ``i mod len(pool)`` (entry 0 when a
+    closure cuts it off there; a query without a route under entry 0 either is left out).
     """
-    out = np.empty(len(query_indices))
+    out = np.full(len(query_indices), np.nan)
+    pool = len(env.cost_pool)
     for k, i in enumerate(query_indices):
-        obs, info = env.reset(seed=0, options={"query_index": i})
+        obs = None
+        for traffic in dict.fromkeys((i % pool, 0)):
+            try:
+                obs, info = env.reset(seed=0, options={"query_index": i, "traffic_index": traffic})
+                break
+            except ValueError:
+                continue
+        if obs is None:
+            continue
         done = env.search is None or env.search.done
         while not done:
             obs, _, term, trunc, info = env.step(network.greedy(obs))
@@ -90,12 +102,17 @@ def train_policy(
             graph, validation.validation_queries, validation.validation_seed
         )
         val_env = WeightControlEnv(
-            graph, env_config, queries=val_queries, planner=env.planner, optimal=optimal
+            graph,
+            env_config,
+            queries=val_queries,
+            planner=env.planner,
+            optimal=optimal,
+            cost_pool=env.cost_pool,
         )
         indices = range(val_queries.shape[0])
 
         def eval_fn(network: QNetwork) -> float:
-            return float(np.mean(greedy_quality(network, val_env, indices)))
+            return float(np.nanmean(greedy_quality(network, val_env, indices)))
 
     result: TrainResult = train(dqn, env, eval_fn=eval_fn, progress=progress)
     config = {

@@ -8,13 +8,13 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from dueroute.service.cli import bench_deadline, bench_search
+from dueroute.service.cli import bench_deadline, bench_search, bench_traffic
 
 
 def register(sub: Any) -> argparse.ArgumentParser:
     """Add the ``bench`` command group and its subcommands; returns the group's parser."""
     parser = sub.add_parser("bench", help="measure speed as ratios against reference libraries")
     bench_sub = parser.add_subparsers(dest="bench_command", required=True, metavar="BENCH")
-    for module in (bench_search, bench_deadline):
+    for module in (bench_search, bench_deadline, bench_traffic):
         module.register(bench_sub)
     return parser

@@ -38,9 +38,11 @@ from dueroute.service.cli.common import (
     add_json_flag,
     add_landmarks_option,
     add_list_option,
+    add_traffic_flag,
     emit,
     landmarks_for,
     load_graph_arg,
+    load_traffic_arg,
     progress,
 )
 
@@ -90,6 +92,7 @@ def register(bench_sub: Any) -> None:
     add_count_option(d, 100, "query pairs per cell", old="--queries")
     d.add_argument("--seed", type=int, default=1000, help="seed of the query pairs (default 1000)")
     add_landmarks_option(d)
+    add_traffic_flag(d)
     add_json_flag(d)
     d.set_defaults(func=cmd_deadline)
 
@@ -142,26 +145,32 @@ def cmd_deadline(args: argparse.Namespace) -> int:
     landmarks = landmarks_for(graph, args.landmarks)
     planner = Planner(graph, landmarks=landmarks)
     planner.warm_up()
+    costs = load_traffic_arg(args.traffic, graph, landmarks) if args.traffic else None
     pairs = _pairs(graph, args.count, args.seed)
 
-    # exact optima, and the reference time of one single-source dijkstra
+    # exact optima (on the changed costs under --traffic), and the reference time of one
+    # single-source dijkstra
     origins = sorted({o for o, _ in pairs})
-    csr = graph.csr()
+    csr = graph.csr(None if costs is None else costs.travel_time_s)
     t0 = time.thread_time()
     dist = dijkstra(csr, directed=True, indices=origins)
     scipy_s = (time.thread_time() - t0) / len(origins)
     row = {o: i for i, o in enumerate(origins)}
     optimum = {(o, d): float(dist[row[o], d]) for o, d in pairs}
+    if costs is not None:  # closures may cut pairs apart: those are left out
+        pairs = [(o, d) for o, d in pairs if np.isfinite(optimum[(o, d)])]
+        if not pairs:
+            raise InvalidRequest("the traffic document disconnects every query pair")
 
     for make in factories.values():  # compile and warm every controller's code path
         for o, d in pairs[:2]:
-            plan(planner, o, d, deadline_ms=1.0, controller=make())
+            plan(planner, o, d, deadline_ms=1.0, controller=make(), costs=costs)
 
     optimal_ms = []
     bar = progress(total=len(pairs) * (1 + len(factories) * len(args.deadlines_ms)), unit="search")
     for o, d in pairs:
         t = time.thread_time()
-        res = plan(planner, o, d, controller="fixed:1")
+        res = plan(planner, o, d, controller="fixed:1", costs=costs)
         optimal_ms.append((time.thread_time() - t) * 1000.0)
         got = res.cost_s if res.cost_s is not None else float("inf")
         if res.status != "optimal" or abs(got - optimum[(o, d)]) > 1e-6 * optimum[(o, d)]:
@@ -184,7 +193,13 @@ def cmd_deadline(args: argparse.Namespace) -> int:
             cell = cells[(spec, dl)]
             start = time.perf_counter()
             res = plan(
-                planner, o, d, deadline_ms=dl, controller=factories[spec](), started_at=start
+                planner,
+                o,
+                d,
+                deadline_ms=dl,
+                controller=factories[spec](),
+                started_at=start,
+                costs=costs,
             )
             back = time.perf_counter()
             cost = res.cost_s
@@ -256,6 +271,8 @@ def cmd_deadline(args: argparse.Namespace) -> int:
         "landmarks": 0 if landmarks is None else landmarks.count,
         "pairs": len(pairs),
         "seed": args.seed,
+        "traffic": args.traffic,
+        "traffic_version": costs.version if costs is not None else None,
         "optimal": {
             "median_ms": opt_median,
             "p90_ms": float(np.percentile(optimal_ms, 90)),

@@ -199,3 +199,51 @@ def add_count_option(parser: Any, default: int, help: str, old: str | None = Non
     )
     if old is not None:
         add_alias(parser, old, "--count", dest="count", type=int)
+
+
+TRAFFIC_HELP = (
+    'live traffic to apply: a JSON document {"updates": [...]} (the format of POST '
+    "/v1/traffic) or the name of a shipped scenario (rush-hour, for the demo region)"
+)
+
+
+def add_traffic_flag(parser: argparse.ArgumentParser, what: str = "search") -> None:
+    parser.add_argument(
+        "--traffic",
+        default=None,
+        metavar="FILE.json",
+        help=f"{TRAFFIC_HELP}; every {what} runs on the changed costs",
+    )
+
+
+def load_traffic_arg(arg: str, graph: Any, landmarks: Any = None) -> Any:
+    """The cost version of a traffic document (or named scenario) applied to ``graph``.
+
+    SCC labels, and landmarks rebuilt on the new costs when speed-ups call for it, are
+    computed before it returns (``planner.traffic.CostLayer`` with ``refine="sync"``), so
+    offline answers carry the same bounds the service reaches once its background work is done.
+    """
+    from dueroute.demo_data.traffic import resolve_traffic_path
+    from dueroute.planner.traffic import CostLayer, load_document
+
+    path = resolve_traffic_path(arg)
+    _, updates = load_document(path, graph)
+    layer = CostLayer(graph, landmarks, refine="sync")
+    try:
+        version = layer.apply(updates)
+    finally:
+        layer.close()
+    return version
+
+
+def traffic_summary(version: Any, source: str) -> str:
+    """One line describing an applied traffic document (human output)."""
+    kinds = ", ".join(f"{k} {v}" for k, v in version.updates_by_kind.items() if v)
+    line = (
+        f"traffic {source}: version {version.version}, {len(version.active)} updates ({kinds}); "
+        f"{version.edges_changed:,} edges changed, {version.edges_closed:,} closed, "
+        f"{version.edges_faster:,} faster; bound {version.bound_quality}"
+    )
+    if version.bound_note:
+        line += f" ({version.bound_note})"
+    return line

@@ -15,12 +15,14 @@ from dueroute.planner.limits import DEFAULT_CONTROLLER
 from dueroute.planner.query_file import read_query_file
 from dueroute.service.cli.common import (
     GRAPH_HELP,
+    TRAFFIC_HELP,
     add_alias,
     add_json_flag,
     add_list_option,
     add_out_option,
     emit,
     load_graph_arg,
+    load_traffic_arg,
     progress,
 )
 
@@ -69,6 +71,20 @@ def register(sub: Any) -> None:
         "--reference",
         action="store_true",
         help="compute exact costs locally (scipy) for true quality; needs --graph",
+    )
+    p.add_argument(
+        "--traffic",
+        default=None,
+        metavar="FILE.json",
+        help=TRAFFIC_HELP + "; --reference computes the optima on the changed costs, and "
+        "with --admin-token-file the service is first set to exactly this traffic",
+    )
+    p.add_argument(
+        "--admin-token-file",
+        default=None,
+        metavar="FILE",
+        help="file holding the service's admin token: clear the service's live traffic and "
+        "post --traffic before the run (answers on another cost version are then counted)",
     )
     p.add_argument("--max-requests", type=int, default=20_000, help="most requests per cell")
     p.add_argument(
@@ -129,7 +145,37 @@ def run(args: argparse.Namespace) -> int:
         raise InvalidRequest(
             "no queries: pass --queries FILE.csv, or --graph GRAPH (with --count N) to draw them"
         )
-    reference = lt.Reference(graph, queries) if args.reference else None
+    traffic_doc = None
+    costs = None
+    token = None
+    if args.admin_token_file is not None and args.traffic is None:
+        raise InvalidRequest("--admin-token-file is only used with --traffic")
+    if args.traffic is not None:
+        if not args.reference and args.admin_token_file is None:
+            raise InvalidRequest(
+                "--traffic needs --reference (optima on the changed costs) and/or "
+                "--admin-token-file (to set the service's traffic to it)"
+            )
+        if graph is None:
+            raise InvalidRequest("--traffic needs --graph (the graph the service searches)")
+        import json
+        from pathlib import Path
+
+        from dueroute.demo_data.traffic import resolve_traffic_path
+
+        path = resolve_traffic_path(args.traffic)
+        costs = load_traffic_arg(args.traffic, graph)  # validates the document on the graph
+        traffic_doc = json.loads(Path(path).read_text(encoding="utf-8"))
+        if args.admin_token_file is not None:
+            try:
+                token = Path(args.admin_token_file).read_text(encoding="utf-8").strip()
+            except OSError as exc:
+                raise InvalidRequest(
+                    f"cannot read --admin-token-file {args.admin_token_file}: {exc.strerror or exc}"
+                ) from None
+            if not token:
+                raise InvalidRequest(f"--admin-token-file {args.admin_token_file} is empty")
+    reference = lt.Reference(graph, queries, costs=costs) if args.reference else None
 
     result = lt.LoadTestResult(config=config, queries=list(queries), queries_source=source)
     bar = progress(total=config.n_cells, unit="cell", desc="loadtest")
@@ -164,6 +210,8 @@ def run(args: argparse.Namespace) -> int:
                 result=result,
                 on_record=on_record,
                 on_cell=on_cell,
+                traffic_doc=traffic_doc,
+                admin_token=token,
             )
         )
     except KeyboardInterrupt:
@@ -174,6 +222,8 @@ def run(args: argparse.Namespace) -> int:
         bar.close()
         if previous_term is not None:
             signal.signal(signal.SIGTERM, previous_term)
+    if args.traffic is not None:
+        result.server.setdefault("traffic", {})["source"] = args.traffic
     if not result.cells:
         if code:
             return code

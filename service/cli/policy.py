@@ -23,7 +23,9 @@ from dueroute.service.cli.common import (
     add_json_flag,
     add_list_option,
     add_out_option,
+    add_traffic_flag,
     emit,
+    load_traffic_arg,
 )
 
 #: Generated flags whose spelling is not ``--field-name``: the project's one spelling per idea
@@ -129,6 +131,7 @@ def register(sub: Any) -> None:
         metavar="L",
         help="ALT landmarks for the heuristic (default: as in training; 0 = great-circle only)",
     )
+    add_traffic_flag(ev, "controller")
     ev.add_argument("--no-progress", action="store_true", help="hide the progress bar")
     add_json_flag(ev)
     ev.set_defaults(func=cmd_evaluate)
@@ -275,7 +278,10 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         from dueroute.planner.heuristics import load_or_build_landmarks
 
         landmarks = load_or_build_landmarks(graph, count=n_landmarks, progress=False)
+    costs = load_traffic_arg(args.traffic, graph, landmarks) if args.traffic else None
     settings = EvalSettings(
+        costs=costs,
+        traffic_source=args.traffic,
         n_queries=args.count,
         seed=args.seed,
         budgets=args.budgets,
@@ -301,6 +307,8 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         )
     except OSError as exc:
         raise InvalidRequest(f"cannot write the report to {args.out}: {exc}") from exc
+    except ValueError as exc:  # every query cut off by closures
+        raise InvalidRequest(str(exc)) from None
     summary["landmarks"] = n_landmarks
     summary["out"] = str(args.out)
     emit(summary, args.json, _format_evaluate)

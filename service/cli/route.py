@@ -19,9 +19,12 @@ from dueroute.service.cli.common import (
     add_alias,
     add_json_flag,
     add_landmarks_option,
+    add_traffic_flag,
     landmarks_for,
     load_graph_arg,
+    load_traffic_arg,
     progress,
+    traffic_summary,
 )
 
 #: Controllers the CLI accepts; ``learned`` goes through ``policies.runtime``.
@@ -76,6 +79,7 @@ def register(sub: Any) -> argparse.ArgumentParser:
     )
     add_landmarks_option(p)
     add_alias(p, "--no-landmarks", "--landmarks 0", dest="landmarks", nargs=0, const=0)
+    add_traffic_flag(p)
     add_json_flag(p)
     p.set_defaults(func=cmd_route)
     return p
@@ -135,7 +139,13 @@ def cmd_route(args: argparse.Namespace) -> int:
     make = _controller_factory(args.controller, args.policy, args.seed)
 
     graph = load_graph_arg(args.graph)
-    planner = Planner(graph, landmarks=landmarks_for(graph, args.landmarks))
+    landmarks = landmarks_for(graph, args.landmarks)
+    planner = Planner(graph, landmarks=landmarks)
+    costs = None
+    if args.traffic is not None:
+        costs = load_traffic_arg(args.traffic, graph, landmarks)
+        if not args.json:
+            print(traffic_summary(costs, args.traffic))
     planner.warm_up()  # JIT compile or cache load stays out of the first deadline
     if single:
         queries = [
@@ -163,11 +173,15 @@ def cmd_route(args: argparse.Namespace) -> int:
                 cancel=cancel,
                 seed=args.seed,
                 gap_target=args.gap,
+                costs=costs,
             )
             d = res.to_dict()
             d["node_ids"] = (
                 None if res.route is None else np.asarray(graph.osm_id)[res.route].tolist()
             )
+            if costs is not None:
+                d.update(costs.answer_fields())
+                d["traffic"] = args.traffic
             if args.json:
                 bar.clear()
                 print(json.dumps(d, default=_json_default), flush=True)

@@ -14,6 +14,7 @@ _FLAGS = {
     "graph": "graph",
     "policy": "policy",
     "policy_dir": "policy_dir",
+    "traffic_dir": "traffic_dir",
     "host": "host",
     "port": "port",
     "workers": "workers",
@@ -47,6 +48,13 @@ def register(sub: Any) -> None:
         help="where uploaded policies and the active one persist "
         "(default $XDG_STATE_HOME/dueroute/policies, i.e. ~/.local/state/dueroute/policies)",
     )
+    p.add_argument(
+        "--traffic-dir",
+        type=Path,
+        default=None,
+        help="where accepted live-traffic batches are journaled; replicas sharing it converge "
+        "(default: 'traffic' beside the policy directory)",
+    )
     p.add_argument("--host", default=None, help="address to listen on (default 127.0.0.1)")
     p.add_argument("--port", type=int, default=None, help="TCP port (default 8000)")
     p.add_argument(
@@ -56,7 +64,8 @@ def register(sub: Any) -> None:
         "--admin-token-file",
         type=Path,
         default=None,
-        help="file holding the bearer token that enables PUT /v1/policy and rollback "
+        help="file holding the bearer token that enables PUT /v1/policy, rollback and "
+        "POST/DELETE /v1/traffic "
         "(or set DUEROUTE_ADMIN_TOKEN; a token on the command line would show in 'ps')",
     )
     p.add_argument(

@@ -228,14 +228,27 @@ class Reference:
         The same compiled graph the service searches.
     pairs : sequence of (int, int)
         Query pairs (node indices).
+    costs : planner.traffic.CostVersion, optional
+        Live traffic the service searches under (``--traffic``): optima and route costs are
+        computed on its ``travel_time_s`` (closed edges ``+inf``), and answers naming another
+        ``traffic_version`` than ``expected_version`` (when given) are counted.
     """
 
-    def __init__(self, graph: Any, pairs: Sequence[tuple[int, int]]) -> None:
+    def __init__(
+        self,
+        graph: Any,
+        pairs: Sequence[tuple[int, int]],
+        costs: Any = None,
+        expected_version: int | None = None,
+    ) -> None:
         from scipy.sparse.csgraph import dijkstra
 
         self.graph = graph
         self.n_nodes = int(graph.n_nodes)
-        self.csr = graph.csr()  # cheapest of parallel edges, travel_time_s
+        self.costs = costs
+        self.expected_version = expected_version
+        # cheapest of parallel edges, on the live costs when given
+        self.csr = graph.csr(None if costs is None else costs.travel_time_s)
         self.osm_id = np.asarray(graph.osm_id)
         self.optimal_s: dict[tuple[int, int], float] = {}
         origins = sorted({o for o, _ in pairs})
@@ -396,6 +409,8 @@ class RequestRecord:
     route_mismatch: bool = False
     cost_below_optimal: bool = False
     bound_above_optimal: bool = False
+    traffic_version: int | None = None
+    traffic_version_mismatch: bool = False
     error: str | None = None
 
     @property
@@ -482,6 +497,7 @@ def summarize_cell(cell: CellResult, tolerance_ms: float) -> dict[str, Any]:
         "route_mismatches": sum(1 for r in answers if r.route_mismatch),
         "cost_below_optimal": sum(1 for r in answers if r.cost_below_optimal),
         "bound_above_optimal": sum(1 for r in answers if r.bound_above_optimal),
+        "traffic_version_mismatches": sum(1 for r in answers if r.traffic_version_mismatch),
         "queue_ms_mean": _mean([r.queue_ms for r in answers]),
         "expansions_mean": _mean([r.expansions for r in answers]),
     }
@@ -593,6 +609,8 @@ async def _one_request(
         timings = plan.get("timings") or {}
         rec.server_total_ms = _opt_float(timings.get("total_ms"))
         rec.queue_ms = _opt_float(timings.get("queue_ms"))
+        tv = plan.get("traffic_version")
+        rec.traffic_version = int(tv) if isinstance(tv, int) else None
         if plan.get("origin_node") != origin or plan.get("destination_node") != destination:
             rec.route_mismatch = True
         if keep_route:
@@ -624,6 +642,11 @@ def apply_reference(rec: RequestRecord, reference: Reference, plan: dict[str, An
     rec.route_mismatch = rec.route_mismatch or chk["route_mismatch"]
     rec.cost_below_optimal = chk["cost_below_optimal"]
     rec.bound_above_optimal = chk["bound_above_optimal"]
+    expected = reference.expected_version
+    # an answer that never searched (its deadline passed in the queue) names no version
+    rec.traffic_version_mismatch = (
+        expected is not None and rec.traffic_version is not None and rec.traffic_version != expected
+    )
 
 
 def _opt_float(v: Any) -> float | None:
@@ -800,11 +823,18 @@ async def run_loadtest(
     transport: Any = None,
     on_record: Callable[[RequestRecord], None] | None = None,
     on_cell: Callable[[CellResult], None] | None = None,
+    traffic_doc: dict[str, Any] | None = None,
+    admin_token: str | None = None,
 ) -> LoadTestResult:
     """Run the whole grid; ``result`` (if given) is filled in place as cells complete.
 
     ``transport`` replaces the network transport (tests pass an in-process ASGI transport).
     The client never follows redirects: every request goes to ``config.url``.
+
+    With ``traffic_doc`` and ``admin_token`` the service's live traffic is first cleared and
+    set to exactly this document (``DELETE`` then ``POST /v1/traffic``), and answers that name
+    another ``traffic_version`` are counted (``traffic_version_mismatches``); the reference
+    should then hold the same document's costs.
     """
     import httpx
 
@@ -838,6 +868,17 @@ async def run_loadtest(
                 result.server["policy"] = resp.json()
         except (httpx.HTTPError, ValueError):
             pass  # the policy is context for the report, not needed for the run
+        if traffic_doc is not None and admin_token is not None:
+            result.server["traffic"] = await _set_traffic(client, traffic_doc, admin_token)
+            if reference is not None:
+                reference.expected_version = result.server["traffic"]["version"]
+        else:
+            try:
+                resp = await client.get("/v1/traffic", timeout=5.0)
+                if resp.status_code == 200:
+                    result.server["traffic"] = _traffic_summary(resp.json())
+            except (httpx.HTTPError, ValueError):
+                pass  # context for the report only
         await _warm_up(client, config, queries)
         for controller, concurrency, deadline_ms in config.cells():
             cell = CellResult(controller, concurrency, deadline_ms)
@@ -847,6 +888,22 @@ async def run_loadtest(
                 on_cell(cell)
     result.finished_at = time.time()
     return result
+
+
+def _traffic_summary(info: dict[str, Any]) -> dict[str, Any]:
+    return {k: v for k, v in info.items() if k != "updates"}
+
+
+async def _set_traffic(client: Any, doc: dict[str, Any], token: str) -> dict[str, Any]:
+    """Make the service's live traffic exactly ``doc``; returns its traffic summary."""
+    headers = {"Authorization": f"Bearer {token}"}
+    resp = await client.delete("/v1/traffic", headers=headers, timeout=30.0)
+    if resp.status_code != 200:
+        raise TargetError(f"DELETE /v1/traffic was refused ({_detail(resp)})")
+    resp = await client.post("/v1/traffic", json=doc, headers=headers, timeout=60.0)
+    if resp.status_code != 200:
+        raise TargetError(f"POST /v1/traffic was refused ({_detail(resp)})")
+    return _traffic_summary(resp.json()["traffic"])
 
 
 # --------------------------------------------------------------------------------------------
@@ -951,10 +1008,19 @@ def markdown_report(summary: dict[str, Any]) -> str:
         notes.append("")
         notes.append(f"Graph check: {gc.get('method')} — {gc.get('ok', gc.get('detail'))}")
     notes += ["", markdown_table(summary), ""]
+    traffic = (summary.get("server") or {}).get("traffic")
+    if traffic and (traffic.get("version") or traffic.get("source")):
+        mism = sum(c.get("traffic_version_mismatches", 0) for c in summary["cells"])
+        notes.append(
+            f"Live traffic: {traffic.get('source') or 'as the service had it'}, cost version "
+            f"{traffic.get('version')} ({traffic.get('active_updates')} updates, "
+            f"{traffic.get('edges_changed', 0):,} edges changed, bound "
+            f"{traffic.get('bound_quality')}); answers on another version: {mism}."
+        )
     if summary.get("reference"):
         notes.append(
             "quality = optimal cost / returned cost, exact costs from scipy.sparse.csgraph."
-            "dijkstra on the same graph (0 when a route exists but none was returned)."
+            "dijkstra on the same graph and costs (0 when a route exists but none was returned)."
         )
     notes.append(
         "Latencies are client-measured (HTTP and client included); 'server p95' and "

@@ -125,6 +125,8 @@ class EdgeMiddleware:
     def _limit(self, scope: Scope) -> int:
         if scope.get("path") == "/v1/policy" and scope.get("method") == "PUT":
             return self.settings.max_policy_bytes
+        if scope.get("path") == "/v1/traffic" and scope.get("method") == "POST":
+            return self.settings.max_traffic_bytes
         return self.settings.max_body_bytes
 
     async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
@@ -264,8 +266,22 @@ def warm_up(state: AppState) -> None:
     if graph.n_nodes:  # builds the snapping k-d tree now, not inside the first request
         graph.snap(float(graph.lat[0]), float(graph.lon[0]), settings.snap_max_m)
     engine = PlanningEngine(graph, planner, steps=settings.steps)
+    from dueroute.service.server.traffic_store import JournalStore, LiveTraffic
+
+    t_traffic = time.perf_counter()
+    traffic = LiveTraffic(
+        graph,
+        landmarks,
+        JournalStore(settings.traffic_state_dir, graph.fingerprint),
+        poll_s=settings.traffic_poll_s,
+        background_nice=19 if settings.worker_nice else 0,
+    )
+    traffic.start()  # replays the journal: the same version and costs as before a restart
+    engine.traffic = traffic
+    state.traffic = traffic
     # Every worker thread runs the warm-up searches at once: threads exist, numba has
     # compiled, and the planner holds one workspace per worker before the first request.
+    t_done_traffic = time.perf_counter()
     searches = sum(
         state.admission.prestart(lambda: _warmup_searches(engine, state, settings.warmup_searches))
     )
@@ -280,6 +296,8 @@ def warm_up(state: AppState) -> None:
         "landmarks_ms": round((t_lm - t_graph) * 1000.0, 1),
         "warmup_ms": round((t_done - t_lm) * 1000.0, 1),
         "warmup_searches": searches,
+        "traffic_version": traffic.current.version,
+        "traffic_replay_ms": round((t_done_traffic - t_traffic) * 1000.0, 1),
     }
     # Collect start-up garbage once and move everything alive now out of the collector's
     # view (gc.freeze), so no full collection of import-time objects stalls a request later.
@@ -430,10 +448,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             content={"detail": f"internal error ({type(exc).__name__}); see the service log"},
         )
 
-    from dueroute.service.server.routes import health, plans, policy
+    from dueroute.service.server.routes import health, plans, policy, traffic
 
     app.include_router(plans.router)
     app.include_router(policy.router)
+    app.include_router(traffic.router)
     app.include_router(health.router)
     app.add_middleware(EdgeMiddleware, settings=settings)
     return app
@@ -462,6 +481,8 @@ async def _shutdown(state: AppState) -> None:
         with contextlib.suppress(asyncio.CancelledError, Exception):
             await task
     state.tasks.clear()
+    if state.traffic is not None:
+        await asyncio.to_thread(state.traffic.stop)
     await asyncio.to_thread(state.admission.shutdown)
 
 

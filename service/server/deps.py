@@ -28,6 +28,7 @@ class AppState:
     policies: PolicyStore
     loop_lag: LoopLag = field(default_factory=LoopLag)
     engine: PlanningEngine | None = None  # set once the graph is loaded and warmed up
+    traffic: Any = None  # service.server.traffic_store.LiveTraffic, set with the engine
     ready: bool = False
     warmup_error: str | None = None
     warmup: dict[str, Any] = field(default_factory=dict)

@@ -41,7 +41,7 @@ def new_plan_id() -> str:
 # Route geometry
 
 
-def route_feature(graph: Any, nodes: Any, edges: Any) -> dict[str, Any] | None:
+def route_feature(graph: Any, nodes: Any, edges: Any, costs: Any = None) -> dict[str, Any] | None:
     """GeoJSON Feature (RFC 7946) for a route given as node and edge indices.
 
     The LineString is the concatenation of ``graph.edge_coords(e)`` for every edge, with the
@@ -54,9 +54,12 @@ def route_feature(graph: Any, nodes: Any, edges: Any) -> dict[str, Any] | None:
         Node indices along the route.
     edges : int[k]
         Edge indices along the route (``edges[i]`` leads from ``nodes[i]`` to ``nodes[i+1]``).
+    costs : planner.traffic.CostVersion, optional
+        The live costs the route was searched on (its ``travel_time_s``); default the graph's.
     """
     if nodes is None or len(nodes) == 0:
         return None
+    times = graph.travel_time_s if costs is None else costs.travel_time_s
     nodes_a = np.asarray(nodes, dtype=np.int64)
     edges_a = np.asarray(edges if edges is not None else [], dtype=np.int64)
     lat, lon = graph.lat, graph.lon
@@ -91,7 +94,7 @@ def route_feature(graph: Any, nodes: Any, edges: Any) -> dict[str, Any] | None:
         "type": "Feature",
         "geometry": {"type": "LineString", "coordinates": coords},
         "properties": {
-            "travel_time_s": float(np.sum(graph.travel_time_s[edges_a])) if edges_a.size else 0.0,
+            "travel_time_s": float(np.sum(times[edges_a])) if edges_a.size else 0.0,
             "length_m": float(np.sum(graph.length_m[edges_a])) if edges_a.size else 0.0,
             "node_ids": np.asarray(graph.osm_id[nodes_a]).tolist(),
             "node_indices": nodes_a.tolist(),
@@ -134,6 +137,8 @@ class PlanJob:
     policy: Any = None
     future: Any = None  # concurrent.futures.Future of the worker run
     graph: Any = None
+    #: the live cost version the search runs on (taken when the search starts), or None
+    costs: Any = None
     improvements: list[dict[str, Any]] = field(default_factory=list)
     #: (int64[k + 1] node indices, int64[k] edge indices) of the incumbent route, or None
     best: tuple[Any, Any] | None = None
@@ -190,7 +195,7 @@ class PlanJob:
         best = self.best
         if best is None or self.graph is None:
             return None
-        return route_feature(self.graph, best[0], best[1])
+        return route_feature(self.graph, best[0], best[1], self.costs)
 
     def timings(self, now_s: float | None = None) -> dict[str, float]:
         now = time.perf_counter() if now_s is None else now_s
@@ -223,12 +228,20 @@ class PlanJob:
             "policy_sha256": self.policy_sha256,
             "deadline_ms": self.deadline_ms,
             "timings": self.timings(),
+            **traffic_fields(self.costs),
         }
+
+
+def traffic_fields(costs: Any) -> dict[str, Any]:
+    """The cost version a plan was searched on (``None`` fields: it never searched)."""
+    if costs is None:
+        return {"traffic_version": None, "bound_quality": None, "bound_note": None}
+    return dict(costs.answer_fields())
 
 
 def _published(entry: dict[str, Any]) -> dict[str, Any]:
     """An improvement as a Plan lists it (the event stream adds a route summary)."""
-    return {k: v for k, v in entry.items() if k != "route"}
+    return {k: v for k, v in entry.items() if k not in ("route", "traffic_version")}
 
 
 def _gap(cost: float | None, bound: float) -> float | None:
@@ -329,6 +342,8 @@ class PlanningEngine:
         self.graph = graph
         self.planner = planner
         self.steps = steps
+        #: live traffic (``service.server.traffic_store.LiveTraffic``); None: base costs only
+        self.traffic: Any = None
 
     def make_controller(self, spec: str, policy: Any) -> Any:
         """A fresh controller for one search (``learned`` without a policy: the fallback)."""
@@ -359,7 +374,11 @@ class PlanningEngine:
                 status = "cancelled"
             else:
                 # a search whose deadline the queue already ate still answers with the
-                # instant route (the session opens the query before it looks at the clock)
+                # instant route (the session opens the query before it looks at the clock).
+                # The newest cost version when the search starts; kept to the end (a new
+                # version is a new snapshot, so publishing one never pauses this search).
+                if self.traffic is not None:
+                    job.costs = self.traffic.current
                 # Deadline counted from arrival: the search ends at job.search_deadline_s.
                 result = plan(
                     self.planner,
@@ -374,6 +393,7 @@ class PlanningEngine:
                     cancel=ticket.cancel,
                     started_at=job.arrival_s,
                     gap_target=job.gap_target,
+                    costs=job.costs,
                 )
                 status = str(result.status)
         except Exception as exc:  # never leave a caller waiting
@@ -392,6 +412,8 @@ class PlanningEngine:
                 "length_m": float(np.sum(self.graph.length_m[edges])),
                 "node_count": int(len(nodes)),
             }
+        if job.costs is not None:
+            entry["traffic_version"] = job.costs.version  # the event stream names it too
         job.best = (nodes, edges)  # one assignment: readers see both or neither
         job.best_cost_s = entry["cost_s"]
         job.best_bound_s = entry["lower_bound_s"] or 0.0
@@ -416,7 +438,7 @@ class PlanningEngine:
 
     def _final(self, job: PlanJob, status: str, result: Any) -> dict[str, Any]:
         if result is not None:
-            feature = route_feature(self.graph, result.route, result.route_edges)
+            feature = route_feature(self.graph, result.route, result.route_edges, job.costs)
             cost = _float_or_none(result.cost_s)
             bound = _float_or_none(result.lower_bound_s)
             if bound is None:
@@ -448,4 +470,5 @@ class PlanningEngine:
             "policy_sha256": job.policy_sha256,
             "deadline_ms": job.deadline_ms,
             "timings": job.timings(),
+            **traffic_fields(job.costs),
         }

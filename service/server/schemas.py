@@ -159,6 +159,15 @@ class Plan(BaseModel):
     policy_sha256: str | None
     deadline_ms: int
     timings: Timings
+    traffic_version: int | None = Field(
+        None, description="live cost version the search ran on (GET /v1/traffic); null: none"
+    )
+    bound_quality: Literal["full", "weakened"] | None = Field(
+        None,
+        description="'weakened': some edges are faster than the costs the landmarks were built "
+        "on, so the bound was lowered to stay proven (see bound_note)",
+    )
+    bound_note: str | None = None
 
 
 class PlanLinks(BaseModel):

@@ -49,9 +49,24 @@ class Settings(BaseSettings):
         default_factory=_default_policy_dir,
         description="directory where uploaded policies and the active-policy pointer persist",
     )
+    traffic_dir: Path | None = Field(
+        default=None,
+        description="directory of the live-traffic journal (accepted POST /v1/traffic "
+        "batches; replicas sharing it converge); unset: 'traffic' beside the policy directory",
+    )
+    traffic_poll_s: float = Field(
+        default=0.2,
+        gt=0,
+        le=10,
+        description="how often the traffic journal is checked for batches other replicas wrote",
+    )
+    max_traffic_bytes: int = Field(
+        default=8_000_000, ge=1024, description="largest POST /v1/traffic body in bytes (413 above)"
+    )
     admin_token: SecretStr | None = Field(
         default=None,
-        description="bearer token for PUT /v1/policy and rollback; unset disables both (404)",
+        description="bearer token for PUT /v1/policy, rollback and POST/DELETE /v1/traffic; "
+        "unset disables them (404)",
     )
     host: str = Field(default="127.0.0.1", description="address to listen on")
     port: int = Field(default=8000, ge=0, le=65535, description="TCP port (0 picks a free one)")
@@ -146,6 +161,13 @@ class Settings(BaseSettings):
         if v is not None and len(v.get_secret_value()) < 8:
             raise ValueError("admin_token must be at least 8 characters (or unset)")
         return v
+
+    @property
+    def traffic_state_dir(self) -> Path:
+        """``traffic_dir``, or ``traffic`` beside the policy directory (same state directory)."""
+        return (
+            self.traffic_dir if self.traffic_dir is not None else self.policy_dir.parent / "traffic"
+        )
 
     @model_validator(mode="after")
     def _consistent(self) -> Settings:

@@ -234,3 +234,22 @@ def test_bench_deadline_bad_arguments(tmp_path: Path, capsys: pytest.CaptureFixt
     assert "--deadlines-ms must be in (0, 60000]" in capsys.readouterr().err
     assert main(["bench", "deadline", str(path), "--controllers", "fast"]) == 2
     assert "fast" in capsys.readouterr().err
+
+
+def test_bench_traffic_smoke(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    """``bench traffic`` on a tiny grid: every batch shape is timed against the reference, and
+    the searches under traffic agree with scipy's optimum (no timing assertions)."""
+    path = grid_graph_file(tmp_path / "grid.npz", side=14)
+    code = main(["bench", "traffic", str(path), "--repeats", "2", "--queries", "6", "--json"])
+    out = capsys.readouterr().out
+    assert code == 0
+    r = json.loads(out)
+    assert r["reference"]["csr_build_ms"] > 0 and r["reference"]["dijkstra_one_to_all_ms"] > 0
+    shapes = {(b["share"], b["shape"]) for b in r["batches"]}
+    assert shapes == {(0.01, "node pairs"), (0.01, "areas"), (0.1, "node pairs"), (0.1, "areas")}
+    for b in r["batches"]:
+        assert b["edges_touched"] >= 1 and b["apply_ms_median"] > 0
+        assert isinstance(b["within_target"], bool)
+    assert r["search"]["mismatches_vs_scipy"] == 0
+    code = main(["bench", "traffic", str(path), "--repeats", "0"])
+    assert code == 2 and "--repeats must be in 1..1000" in capsys.readouterr().err

@@ -142,3 +142,52 @@ def test_bad_arguments_give_one_line_errors(trained, tmp_path, capsys):
     )
     assert rc == 2
     assert "file not found" in capsys.readouterr().err
+
+
+def _traffic_file(graph_path: Path, folder: Path) -> Path:
+    from dueroute.planner.graph import load_graph
+
+    g = load_graph(graph_path)
+    updates = [
+        {"from_node": int(g.tail[e]), "to_node": int(g.head[e]), "factor": 2.5}
+        for e in range(0, g.n_edges, 7)
+    ] + [{"from_node": int(g.tail[3]), "to_node": int(g.head[3]), "closed": True}]
+    path = folder / "traffic.json"
+    path.write_text(json.dumps({"updates": updates}))
+    return path
+
+
+def test_evaluate_and_train_under_traffic(trained, tmp_path, capsys):
+    """``evaluate --traffic``: the optima are scipy's on the changed costs (checked in
+    tests/policies/test_env.py) and the report says which traffic; ``train --traffic`` and
+    ``--traffic-scenarios`` record it in the saved config."""
+    graph_path, policy = trained
+    traffic = _traffic_file(graph_path, tmp_path)
+    out = tmp_path / "report"
+    rc = main(
+        ["evaluate", str(graph_path), "--policy", str(policy), "--queries", "6",
+         "--budgets", "60", "--importance-queries", "0", "--traffic", str(traffic),
+         "--out", str(out), "--no-progress", "--json"]
+    )  # fmt: skip
+    assert rc == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert summary["traffic"]["version"] == 1 and summary["traffic"]["source"] == str(traffic)
+    assert summary["traffic"]["edges_closed"] >= 1
+    assert "Under live traffic" in (out / "results.md").read_text()
+    trained_out = tmp_path / "t.onnx"
+    rc = main(
+        ["train", str(graph_path), "--out", str(trained_out), "--episodes", "4", "--budget",
+         "60", "--steps", "4", "--n-queries", "10", "--learning-starts", "4", "--batch-size",
+         "4", "--eval-every-episodes", "2", "--validation-queries", "3", "--landmarks", "0",
+         "--traffic", str(traffic), "--traffic-scenarios", "2", "--no-progress", "--json"]
+    )  # fmt: skip
+    assert rc == 0
+    config = json.loads(trained_out.with_suffix(".config.json").read_text())
+    assert config["env"]["traffic"] == str(traffic) and config["env"]["traffic_scenarios"] == 2
+    capsys.readouterr()
+    rc = main(
+        ["evaluate", str(graph_path), "--policy", str(policy), "--out", str(tmp_path / "x"),
+         "--traffic", str(tmp_path / "missing.json")]
+    )  # fmt: skip
+    err = capsys.readouterr().err.strip()
+    assert rc == 2 and err.startswith("dueroute: error: traffic file not found")

@@ -193,3 +193,48 @@ def test_greedy_episode_equals_serving_with_the_exported_policy(grid_graph, tmp_
             env.planner, o, d, budget_expansions=150, steps=6, controller=LearnedController(policy)
         )
         assert served.cost_s == final
+
+
+# --------------------------------------------------------------------------------------------
+# Training under live traffic (EnvConfig.traffic / traffic_scenarios)
+
+
+def test_traffic_pool_passes_the_checker_and_draws_scenarios(grid_graph):
+    """check_env with a pool of random scenarios; episodes visit several pool entries and each
+    episode's optimum is scipy ``csgraph.dijkstra`` on that entry's costs."""
+    from scipy.sparse.csgraph import dijkstra
+
+    env = WeightControlEnv(
+        grid_graph, budget_expansions=150, steps=6, n_queries=40, traffic_scenarios=3
+    )
+    assert len(env.cost_pool) == 4 and env.cost_pool[0][0] is None
+    check_env(env, skip_render_check=True)
+    seen = set()
+    for seed in range(12):
+        _, info = env.reset(seed=seed)
+        k = info["traffic_index"]
+        seen.add(k)
+        version = env.cost_pool[k][0]
+        o, d = env.queries[info["query_index"]]
+        costs = None if version is None else version.travel_time_s
+        exact = dijkstra(grid_graph.csr(costs), directed=True, indices=[int(o)])[0, int(d)]
+        assert info["optimal_cost_s"] == pytest.approx(exact, rel=1e-12)
+        assert env.search.costs is version
+    assert len(seen) >= 2
+
+
+def test_traffic_file_applies_to_every_episode(grid_graph, tmp_path):
+    import json
+
+    tail, head = int(grid_graph.tail[0]), int(grid_graph.head[0])
+    doc = {"updates": [{"from_node": tail, "to_node": head, "factor": 3}]}
+    path = tmp_path / "t.json"
+    path.write_text(json.dumps(doc))
+    env = WeightControlEnv(
+        grid_graph, budget_expansions=150, steps=6, n_queries=10, traffic=str(path)
+    )
+    assert len(env.cost_pool) == 1 and env.cost_pool[0][0].version == 1
+    _, info = env.reset(seed=0)
+    assert info["traffic_index"] == 0 and env.search.costs is env.cost_pool[0][0]
+    with pytest.raises(Exception, match="traffic file not found"):
+        WeightControlEnv(grid_graph, n_queries=5, traffic=str(tmp_path / "missing.json"))

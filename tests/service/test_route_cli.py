@@ -109,3 +109,49 @@ def test_route_bad_arguments(graph_file, capsys, argv, message) -> None:
     path, _ = graph_file
     assert main(["route", str(path), *argv]) == 2
     assert message in capsys.readouterr().err
+
+
+def test_route_under_traffic_matches_scipy_on_the_changed_costs(graph_file, tmp_path, capsys):
+    """``--traffic FILE``: the cost is scipy ``csgraph.dijkstra``'s on the changed costs, the
+    answer names the version, and a bad document is one ``dueroute: error:`` line (exit 2)."""
+    from dueroute.planner.traffic import costs_from_document
+
+    path, g = graph_file
+    doc = {
+        "updates": [
+            {"from_node": int(g.tail[e]), "to_node": int(g.head[e]), "factor": 3}
+            for e in range(0, g.n_edges, 3)
+        ]
+        + [{"from_node": 0, "to_node": int(g.head[g.indptr[0]]), "closed": True}]
+    }
+    tfile = tmp_path / "t.json"
+    tfile.write_text(json.dumps(doc))
+    assert main(["route", str(path), "--from", "0", "--to", "143", "--controller", "fixed:1",
+                 "--traffic", str(tfile), "--json"]) == 0  # fmt: skip
+    d = json.loads(capsys.readouterr().out.strip().splitlines()[-1])
+    costs = costs_from_document(g, doc).travel_time_s
+    assert d["traffic_version"] == 1 and d["bound_quality"] in ("full", "weakened")
+    assert d["cost_s"] == pytest.approx(dijkstra(g.csr(costs), indices=0)[143], rel=1e-9)
+    assert d["cost_s"] > dijkstra(g.csr(), indices=0)[143]
+    assert main(["route", str(path), "--from", "0", "--to", "143", "--traffic", str(tfile)]) == 0
+    out = capsys.readouterr().out
+    assert out.startswith(f"traffic {tfile}: version 1, {len(doc['updates'])} updates")
+    bad = tmp_path / "bad.json"
+    bad.write_text(json.dumps({"updates": [{"from_node": 0, "to_node": 1, "factor": -2}]}))
+    assert main(["route", str(path), "--from", "0", "--to", "143", "--traffic", str(bad)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "updates[0].factor: must be a number > 0" in err[0]
+    bad.write_text("{oops")
+    assert main(["route", str(path), "--from", "0", "--to", "143", "--traffic", str(bad)]) == 2
+    assert "not valid JSON (line 1" in capsys.readouterr().err
+    assert main(["route", str(path), "--from", "0", "--to", "1", "--traffic", "nowhere"]) == 2
+    assert "named scenario: rush-hour" in capsys.readouterr().err
+
+
+def test_loadtest_traffic_flags_are_checked(graph_file, tmp_path, capsys):
+    path, _ = graph_file
+    base = ["loadtest", "--graph", str(path), "--out", str(tmp_path / "o")]
+    assert main([*base, "--traffic", "rush-hour"]) == 2
+    assert "--traffic needs --reference" in capsys.readouterr().err
+    assert main([*base, "--admin-token-file", str(tmp_path / "tok")]) == 2
+    assert "--admin-token-file is only used with --traffic" in capsys.readouterr().err
