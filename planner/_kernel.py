@@ -873,50 +873,88 @@ def _tail_of(indptr, e):
 def _tree_route(
     indptr, head, cost, tree_to, tree_from, landmark, li, s, t, state, gen, max_len, out_e, back
 ):
-    """Route s -> landmark li -> t along the landmark's shortest-path trees, its loop cut.
+    """Route s -> landmark li -> t along the landmark's shortest-path trees, cut where the two
+    halves meet.
 
-    ``tree_to[li, v]`` is the edge leaving v on a shortest path v -> li and ``tree_from[li, v]``
-    the edge entering v on a shortest path li -> v (-1 at the landmark and where there is no
-    path). The two halves usually share a stretch next to the landmark (driving to it and back);
-    the route is cut where the walk back from t first meets the first half, which removes that
-    loop (and any other shared stretch). Writes the edges into ``out_e``; returns ``(edge count,
-    cost)``, or ``(-1, inf)`` when a tree does not connect the pair. Marks the first half in the
-    workspace with generation ``gen`` (``SI_PARENT`` = position along it).
+    ``tree_to[li, v]`` is the edge leaving v on a shortest path v -> landmark and
+    ``tree_from[li, v]`` the edge entering v on a shortest path landmark -> v (-1 at the
+    landmark and where there is no path). The first half is walked forwards from s, the second
+    backwards from t, one step each in turn, until one walk reaches a node the other has
+    visited: the route is the first walk up to that node and the second from it, which drops
+    the stretch both halves share (driving towards the landmark and back). Every common node
+    gives a real route no dearer than the full one, and a nearby pair meets after a few steps
+    instead of two walks to a landmark across the map. Writes the edges into ``out_e``;
+    returns ``(edge count, cost)``, or ``(-1, inf)`` when a tree does not connect the pair.
+    Marks visited nodes in the workspace with generation ``gen`` (``SI_FLAGS`` 1 or 2 for the
+    walk, ``SI_PARENT`` its position along it).
     """
     si = state.view(np.int32)
-    n = 0
-    v = s
-    si[v, SI_STAMP] = gen
-    si[v, SI_PARENT] = 0
-    while v != landmark:  # first half: s -> landmark
-        e = tree_to[li, v]
-        if e < 0 or n >= max_len:
-            return -1, _INF  # s does not reach the landmark
-        out_e[n] = e
-        n += 1
-        v = np.int64(head[e])
-        si[v, SI_STAMP] = gen
-        si[v, SI_PARENT] = n
-    m = 0
-    v = t
-    while si[v, SI_STAMP] != gen:  # second half, backwards from t until the first half
-        e = tree_from[li, v]
-        if e < 0 or m >= max_len:
-            return -1, _INF  # the landmark does not reach t
-        back[m] = e
-        m += 1
-        v = _tail_of(indptr, e)
-    cut = si[v, SI_PARENT]  # position of the meeting node along the first half
-    if cut + m > max_len:
+    n1 = 0  # edges walked from s (in out_e)
+    n2 = 0  # edges walked back from t (in back)
+    a = s
+    b = t
+    si[a, SI_STAMP] = gen
+    si[a, SI_FLAGS] = 1
+    si[a, SI_PARENT] = 0
+    if si[b, SI_STAMP] == gen:  # s == t cannot happen (the session answers it), but be safe
+        return 0, 0.0
+    si[b, SI_STAMP] = gen
+    si[b, SI_FLAGS] = 2
+    si[b, SI_PARENT] = 0
+    meet = -1
+    done1 = False
+    done2 = False
+    while meet < 0:
+        if done1 and done2:
+            return -1, _INF  # both walks ended at the landmark without meeting: impossible
+        if not done1:
+            if a == landmark:
+                done1 = True
+            else:
+                e = tree_to[li, a]
+                if e < 0 or n1 >= max_len:
+                    return -1, _INF  # s does not reach the landmark
+                out_e[n1] = e
+                n1 += 1
+                a = np.int64(head[e])
+                if si[a, SI_STAMP] == gen and si[a, SI_FLAGS] == 2:
+                    meet = a
+                    break
+                si[a, SI_STAMP] = gen
+                si[a, SI_FLAGS] = 1
+                si[a, SI_PARENT] = n1
+        if not done2:
+            if b == landmark:
+                done2 = True
+            else:
+                e = tree_from[li, b]
+                if e < 0 or n2 >= max_len:
+                    return -1, _INF  # the landmark does not reach t
+                back[n2] = e
+                n2 += 1
+                b = _tail_of(indptr, e)
+                if si[b, SI_STAMP] == gen and si[b, SI_FLAGS] == 1:
+                    meet = b
+                    break
+                si[b, SI_STAMP] = gen
+                si[b, SI_FLAGS] = 2
+                si[b, SI_PARENT] = n2
+    # the node where the walks met: reached last by the first walk (it was the second's) or by
+    # the second (it was the first's); its mark holds its position along the other walk
+    if si[meet, SI_FLAGS] == 2:
+        p1, p2 = n1, si[meet, SI_PARENT]
+    else:
+        p1, p2 = si[meet, SI_PARENT], n2
+    if p1 + p2 > max_len:
         return -1, _INF
     total = 0.0
-    for i in range(cut):
+    for i in range(p1):
         total += cost[out_e[i]]
-    for i in range(m):
-        e = back[m - 1 - i]
-        out_e[cut + i] = e
+    for i in range(p2):
+        e = back[p2 - 1 - i]
+        out_e[p1 + i] = e
         total += cost[e]
-    return cut + m, total
+    return p1 + p2, total
 
 
 @njit(cache=True, nogil=True)
@@ -1046,10 +1084,23 @@ def open_query(
     :func:`start_query` with the next generation, then the instant route as the incumbent.
 
     The caller has set everything :func:`start_query` needs except ``I_GEN``, which holds the
-    first of the ``INSTANT_GENERATIONS + 1`` generations reserved for this query. Returns
-    ``(instant edge count, instant cost, h_start)``; the instant route's edges are in
+    first of the ``INSTANT_GENERATIONS + 1`` generations reserved for this query. A plain node
+    query may leave the target table to this call: ``I_N_TARGETS = 0`` and the destination in
+    ``I_TNODE`` (one ARRIVAL target; its position and landmark row are filled in here).
+    Returns ``(instant edge count, instant cost, h_start)``; the instant route's edges are in
     ``route_buf`` (count -1: none).
     """
+    if istate[I_N_TARGETS] == 0:
+        t = istate[I_TNODE]
+        istate[I_N_TARGETS] = 1
+        istate[I_TKIND] = ARRIVAL
+        istate[I_TEDGE] = -1
+        fstate[F_T_X] = np.float64(coords[t, 0])
+        fstate[F_T_Y] = np.float64(coords[t, 1])
+        fstate[F_T_Z] = np.float64(coords[t, 2])
+        for li in range(lm.shape[1]):
+            istate[I_TLM + 2 * li] = lm[t, li, LM_TO]
+            istate[I_TLM + 2 * li + 1] = lm[t, li, LM_FROM]
     count = -1
     inst = _INF
     first = istate[I_GEN]

@@ -685,22 +685,16 @@ class Search:
         ist[K.I_GEN] = ws.next_generations(K.INSTANT_GENERATIONS + 1)
         ist[K.I_MODE] = self._mode_code
         fst[K.F_GAP_TARGET] = self.gap_target
-        fst[K.F_T_X : K.F_T_Z + 1] = planner._coords[destination]
-        ist[K.I_N_TARGETS] = 1
-        ist[K.I_TNODE] = destination
-        ist[K.I_TEDGE] = -1
+        ist[K.I_TNODE] = destination  # I_N_TARGETS = 0: the kernel fills in the target
         ws.src_node[0] = origin
-        n_lm = planner.n_landmarks
         ist[K.I_N_ACTIVE] = planner.active_landmarks
-        if n_lm:
-            ist[K.I_TLM : K.I_TLM + 2 * n_lm] = arrays.lm[destination].reshape(-1)
-        count, _, h_start = planner._open_query(ws, arrays)
+        count, instant_cost, h_start = planner._open_query(ws, arrays)
         h_start = float(h_start)
         v = self._v
         v[_V_H_START] = h_start
         if math.isfinite(h_start):
             v[_V_BOUND] = h_start
-        if count >= 0 and not math.isfinite(float(np.sum(arrays.cost[ws.route_buf[:count]]))):
+        if count >= 0 and not math.isfinite(instant_cost):
             count = -1  # the trees' route uses a closed edge (live costs): no instant route
         if ist[K.I_SIZE] == 0 and count < 0:  # nothing to search and no route
             self._finish("no_route", "unreachable")
@@ -710,14 +704,13 @@ class Search:
             nodes = np.empty(count + 1, dtype=np.int64)
             nodes[0] = origin
             nodes[1:] = planner._head[edges]
-            self._install_instant(nodes, edges)
+            self._install_instant(nodes, edges, instant_cost)
         else:
             # no tree connects the pair: search greedily (ANA*'s order) until a first route
             self._greedy_first = True
             ist[K.I_MODE] = K.MODE_ANA
 
-    def _install_instant(self, nodes: np.ndarray, edges: np.ndarray) -> None:
-        cost = float(np.sum(self._arrays.cost[edges]))
+    def _install_instant(self, nodes: np.ndarray, edges: np.ndarray, cost: float) -> None:
         self._route, self._route_edges = nodes, edges
         self._set_cost(cost)
         self._instant_cost = cost
