@@ -232,6 +232,22 @@ class RoadGraph:
         return pts
 
     @cached_property
+    def reverse_edge(self) -> np.ndarray:
+        """int32[m]: the edge that drives edge ``e``'s road the other way, or -1 (one-way).
+
+        The reverse of ``e`` runs from ``head[e]`` to ``tail[e]`` along the same interior
+        geometry in reverse order (see :func:`reverse_edge_pairs`); of several such edges
+        (duplicates) the lowest index is taken.
+        """
+        out = np.full(self.n_edges, -1, dtype=np.int32)
+        e, f = reverse_edge_pairs(self)
+        # pairs are sorted by (e, f): the first pair of each e holds its lowest reverse
+        first = np.ones(e.shape[0], dtype=bool)
+        first[1:] = e[1:] != e[:-1]
+        out[e[first]] = f[first]
+        return out
+
+    @cached_property
     def _snap_tree(self) -> Any:
         from scipy.spatial import cKDTree
 
@@ -284,6 +300,78 @@ class RoadGraph:
             "fingerprint": self.fingerprint,
             "meta": {k: v for k, v in self.meta.items() if k != "road_classes"},
         }
+
+
+def edge_polylines(graph: RoadGraph) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Every edge's full polyline (tail, interior points, head) in one ragged array.
+
+    Returns
+    -------
+    ptr : int64[m + 1]
+        Points of edge ``e`` are ``lat[ptr[e]:ptr[e + 1]]``, from its tail to its head (at
+        least two: the endpoints are included, unlike ``geom_lat``).
+    lat, lon : float64[2 m + k]
+        WGS84 degrees.
+    """
+    m = graph.n_edges
+    inner = np.diff(np.asarray(graph.geom_indptr, dtype=np.int64))
+    ptr = np.zeros(m + 1, dtype=np.int64)
+    np.cumsum(inner + 2, out=ptr[1:])
+    lat = np.empty(int(ptr[-1]), dtype=np.float64)
+    lon = np.empty(int(ptr[-1]), dtype=np.float64)
+    tail, head = np.asarray(graph.tail), np.asarray(graph.head)
+    lat[ptr[:-1]], lon[ptr[:-1]] = graph.lat[tail], graph.lon[tail]
+    lat[ptr[1:] - 1], lon[ptr[1:] - 1] = graph.lat[head], graph.lon[head]
+    # interior point j of edge e sits at ptr[e] + 1 + j; in geom_* it is geom_indptr[e] + j
+    k = int(inner.sum())
+    where = np.arange(k, dtype=np.int64) + np.repeat(ptr[:-1] + 1 - graph.geom_indptr[:-1], inner)
+    lat[where], lon[where] = graph.geom_lat, graph.geom_lon
+    return ptr, lat, lon
+
+
+def reverse_edge_pairs(graph: RoadGraph) -> tuple[np.ndarray, np.ndarray]:
+    """All pairs ``(e, f)`` where edge ``f`` drives edge ``e``'s road the other way.
+
+    ``f`` is a reverse of ``e`` when ``tail[f] == head[e]``, ``head[f] == tail[e]`` and the
+    interior geometry of ``f`` is that of ``e`` in reverse order, point for point (exact
+    equality: both directions of a two-way OSM way share their nodes). Two parallel roads
+    between the same nodes along different geometry are not each other's reverse. A self-loop
+    whose geometry reads the same both ways is its own reverse.
+
+    Returns
+    -------
+    e, f : int64[p]
+        Sorted by ``(e, f)``; an edge may have several reverses (duplicate edges) or none.
+    """
+    n, m = graph.n_nodes, graph.n_edges
+    if m == 0:
+        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
+    tail = np.asarray(graph.tail, dtype=np.int64)
+    head = np.asarray(graph.head, dtype=np.int64)
+    key = tail * n + head
+    order = np.argsort(key, kind="stable")
+    skey = key[order]
+    want = head * n + tail
+    lo = np.searchsorted(skey, want, side="left")
+    cnt = np.searchsorted(skey, want, side="right") - lo
+    e = np.repeat(np.arange(m, dtype=np.int64), cnt)
+    within = np.arange(e.shape[0], dtype=np.int64) - np.repeat(np.cumsum(cnt) - cnt, cnt)
+    f = order[np.repeat(lo, cnt) + within]
+    # same number of interior points, then every point equal to its mirror image
+    gptr = np.asarray(graph.geom_indptr, dtype=np.int64)
+    inner = np.diff(gptr)
+    same = inner[e] == inner[f]
+    e, f = e[same], f[same]
+    lens = inner[e]
+    pair = np.repeat(np.arange(e.shape[0], dtype=np.int64), lens)
+    j = np.arange(pair.shape[0], dtype=np.int64) - np.repeat(np.cumsum(lens) - lens, lens)
+    pe = gptr[e][pair] + j
+    pf = gptr[f + 1][pair] - 1 - j
+    differ = (graph.geom_lat[pe] != graph.geom_lat[pf]) | (graph.geom_lon[pe] != graph.geom_lon[pf])
+    bad = np.bincount(pair[differ], minlength=e.shape[0]) > 0
+    e, f = e[~bad], f[~bad]
+    order2 = np.lexsort((f, e))
+    return e[order2], f[order2]
 
 
 def _unit_vectors(lat: np.ndarray, lon: np.ndarray) -> np.ndarray:
