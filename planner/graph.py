@@ -302,6 +302,23 @@ class RoadGraph:
         }
 
 
+def check_edge_costs(n_edges: int, costs: Any) -> np.ndarray:
+    """``costs`` as float64[n_edges] edge costs in seconds, or :class:`InvalidRequest`.
+
+    Allowed: one number per edge, each ``>= 0`` or ``+inf`` (a closed road); never NaN.
+    """
+    arr = np.asarray(costs)
+    if arr.shape != (n_edges,) or not np.issubdtype(arr.dtype, np.number):
+        raise InvalidRequest(
+            f"road costs must be a numeric array with one entry per edge ({n_edges}), "
+            f"got {arr.dtype}{list(arr.shape)}"
+        )
+    arr = np.asarray(arr, dtype=np.float64)
+    if arr.size and (bool(np.isnan(arr).any()) or float(arr.min()) < 0.0):
+        raise InvalidRequest("road costs must be >= 0 seconds (+inf for a closed road), no NaN")
+    return arr
+
+
 def edge_polylines(graph: RoadGraph) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Every edge's full polyline (tail, interior points, head) in one ragged array.
 

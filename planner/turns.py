@@ -102,6 +102,7 @@ from dueroute.planner.graph import (
     TURN_NO,
     TURN_ONLY,
     RoadGraph,
+    check_edge_costs,
     edge_polylines,
     great_circle_m,
     reverse_edge_pairs,
@@ -484,7 +485,7 @@ class SearchGraph:
         out : float64[A], optional
             Array to write into (reused between cost versions).
         """
-        cost = _check_road_costs(self.graph, road_cost_s)
+        cost = check_edge_costs(self.graph.n_edges, road_cost_s)
         if out is not None and (out.shape != (self.n_arcs,) or out.dtype != np.float64):
             raise InvalidRequest(
                 f"out must be a float64 array of shape ({self.n_arcs},), got "
@@ -501,7 +502,7 @@ class SearchGraph:
 
     def with_costs(self, road_cost_s: np.ndarray) -> SearchGraph:
         """The same search graph over new road costs (shares every structural array)."""
-        cost = _check_road_costs(self.graph, road_cost_s)
+        cost = check_edge_costs(self.graph.n_edges, road_cost_s)
         return dataclasses.replace(self, cost_s=self.arc_costs(cost), road_cost_s=cost)
 
     def _check_edge(self, edge: int) -> int:
@@ -517,19 +518,6 @@ class SearchGraph:
 
 def _readonly(arr: np.ndarray) -> np.ndarray:
     arr.flags.writeable = False
-    return arr
-
-
-def _check_road_costs(graph: RoadGraph, costs: Any) -> np.ndarray:
-    arr = np.asarray(costs)
-    if arr.shape != (graph.n_edges,) or not np.issubdtype(arr.dtype, np.number):
-        raise InvalidRequest(
-            f"road costs must be a numeric array with one entry per edge ({graph.n_edges}), "
-            f"got {arr.dtype}{list(arr.shape)}"
-        )
-    arr = np.asarray(arr, dtype=np.float64)
-    if arr.size and (bool(np.isnan(arr).any()) or float(arr.min()) < 0.0):
-        raise InvalidRequest("road costs must be >= 0 seconds (+inf for a closed road), no NaN")
     return arr
 
 
@@ -572,7 +560,7 @@ def build_search_graph(
         raise InvalidRequest(
             f"turn_costs must be a TurnCosts or None, got {type(turn_costs).__name__}"
         )
-    road_cost = _check_road_costs(graph, graph.travel_time_s if costs is None else costs)
+    road_cost = check_edge_costs(graph.n_edges, graph.travel_time_s if costs is None else costs)
     check_restrictions(graph)
     if turn_costs is not None and turn_costs.is_zero:
         turn_costs = None
