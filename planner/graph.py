@@ -232,6 +232,11 @@ class RoadGraph:
         return pts
 
     @cached_property
+    def reverse_pairs(self) -> tuple[np.ndarray, np.ndarray]:
+        """:func:`reverse_edge_pairs` of this graph (computed once)."""
+        return reverse_edge_pairs(self)
+
+    @cached_property
     def reverse_edge(self) -> np.ndarray:
         """int32[m]: the edge that drives edge ``e``'s road the other way, or -1 (one-way).
 
@@ -240,7 +245,7 @@ class RoadGraph:
         (duplicates) the lowest index is taken.
         """
         out = np.full(self.n_edges, -1, dtype=np.int32)
-        e, f = reverse_edge_pairs(self)
+        e, f = self.reverse_pairs
         # pairs are sorted by (e, f): the first pair of each e holds its lowest reverse
         first = np.ones(e.shape[0], dtype=bool)
         first[1:] = e[1:] != e[:-1]
@@ -319,30 +324,37 @@ def check_edge_costs(n_edges: int, costs: Any) -> np.ndarray:
     return arr
 
 
-def edge_polylines(graph: RoadGraph) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Every edge's full polyline (tail, interior points, head) in one ragged array.
+def edge_polylines(
+    graph: RoadGraph, edges: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Full polylines (tail, interior points, head) of every edge, or of ``edges``, in one
+    ragged array.
 
     Returns
     -------
-    ptr : int64[m + 1]
-        Points of edge ``e`` are ``lat[ptr[e]:ptr[e + 1]]``, from its tail to its head (at
-        least two: the endpoints are included, unlike ``geom_lat``).
-    lat, lon : float64[2 m + k]
+    ptr : int64[k + 1]
+        Points of the i-th edge (edge ``i``, or ``edges[i]``) are ``lat[ptr[i]:ptr[i + 1]]``,
+        from its tail to its head (at least two: the endpoints are included, unlike
+        ``geom_lat``).
+    lat, lon : float64[ptr[-1]]
         WGS84 degrees.
     """
-    m = graph.n_edges
-    inner = np.diff(np.asarray(graph.geom_indptr, dtype=np.int64))
-    ptr = np.zeros(m + 1, dtype=np.int64)
+    gptr = np.asarray(graph.geom_indptr, dtype=np.int64)
+    sel = np.arange(graph.n_edges, dtype=np.int64) if edges is None else np.asarray(edges)
+    inner = np.diff(gptr)[sel]
+    k = sel.shape[0]
+    ptr = np.zeros(k + 1, dtype=np.int64)
     np.cumsum(inner + 2, out=ptr[1:])
     lat = np.empty(int(ptr[-1]), dtype=np.float64)
     lon = np.empty(int(ptr[-1]), dtype=np.float64)
-    tail, head = np.asarray(graph.tail), np.asarray(graph.head)
+    tail, head = np.asarray(graph.tail)[sel], np.asarray(graph.head)[sel]
     lat[ptr[:-1]], lon[ptr[:-1]] = graph.lat[tail], graph.lon[tail]
     lat[ptr[1:] - 1], lon[ptr[1:] - 1] = graph.lat[head], graph.lon[head]
-    # interior point j of edge e sits at ptr[e] + 1 + j; in geom_* it is geom_indptr[e] + j
-    k = int(inner.sum())
-    where = np.arange(k, dtype=np.int64) + np.repeat(ptr[:-1] + 1 - graph.geom_indptr[:-1], inner)
-    lat[where], lon[where] = graph.geom_lat, graph.geom_lon
+    # interior point j of the i-th edge sits at ptr[i] + 1 + j; in geom_* at gptr[sel[i]] + j
+    j = np.arange(int(inner.sum()), dtype=np.int64) - np.repeat(np.cumsum(inner) - inner, inner)
+    src = np.repeat(gptr[:-1][sel], inner) + j
+    dst = np.repeat(ptr[:-1] + 1, inner) + j
+    lat[dst], lon[dst] = graph.geom_lat[src], graph.geom_lon[src]
     return ptr, lat, lon
 
 
@@ -366,11 +378,19 @@ def reverse_edge_pairs(graph: RoadGraph) -> tuple[np.ndarray, np.ndarray]:
     tail = np.asarray(graph.tail, dtype=np.int64)
     head = np.asarray(graph.head, dtype=np.int64)
     key = tail * n + head
-    order = np.argsort(key, kind="stable")
-    skey = key[order]
+    # compiled graphs are in CSR order, sorted by (tail, head): no sort needed then
+    in_order = bool(np.all(key[1:] >= key[:-1]))
+    order = np.arange(m, dtype=np.int64) if in_order else np.argsort(key, kind="stable")
+    skey = key if in_order else key[order]
+    # look the reversed keys up in sorted order (sequential memory access), then unsort
     want = head * n + tail
-    lo = np.searchsorted(skey, want, side="left")
-    cnt = np.searchsorted(skey, want, side="right") - lo
+    by_want = np.argsort(want, kind="stable")
+    lo_sorted = np.searchsorted(skey, want[by_want], side="left")
+    hi_sorted = np.searchsorted(skey, want[by_want], side="right")
+    lo = np.empty(m, dtype=np.int64)
+    cnt = np.empty(m, dtype=np.int64)
+    lo[by_want] = lo_sorted
+    cnt[by_want] = hi_sorted - lo_sorted
     e = np.repeat(np.arange(m, dtype=np.int64), cnt)
     within = np.arange(e.shape[0], dtype=np.int64) - np.repeat(np.cumsum(cnt) - cnt, cnt)
     f = order[np.repeat(lo, cnt) + within]
@@ -387,8 +407,11 @@ def reverse_edge_pairs(graph: RoadGraph) -> tuple[np.ndarray, np.ndarray]:
     differ = (graph.geom_lat[pe] != graph.geom_lat[pf]) | (graph.geom_lon[pe] != graph.geom_lon[pf])
     bad = np.bincount(pair[differ], minlength=e.shape[0]) > 0
     e, f = e[~bad], f[~bad]
-    order2 = np.lexsort((f, e))
-    return e[order2], f[order2]
+    # e is non-decreasing already; f only needs sorting where an edge has several reverses
+    if e.size > 1 and bool(np.any((e[1:] == e[:-1]) & (f[1:] < f[:-1]))):
+        order2 = np.lexsort((f, e))
+        e, f = e[order2], f[order2]
+    return e, f
 
 
 def _unit_vectors(lat: np.ndarray, lon: np.ndarray) -> np.ndarray:

@@ -491,6 +491,11 @@ def test_edge_polylines_match_edge_coords(tiny_graph: RoadGraph) -> None:
     for e in range(tiny_graph.n_edges):
         pts = list(zip(lon[ptr[e] : ptr[e + 1]], lat[ptr[e] : ptr[e + 1]], strict=True))
         assert pts == tiny_graph.edge_coords(e)
+    some = np.array([3, 0, 7, 7, tiny_graph.n_edges - 1])
+    ptr, lat, lon = edge_polylines(tiny_graph, some)
+    for i, e in enumerate(some.tolist()):
+        pts = list(zip(lon[ptr[i] : ptr[i + 1]], lat[ptr[i] : ptr[i + 1]], strict=True))
+        assert pts == tiny_graph.edge_coords(e)
 
 
 def test_reverse_edges_hand_checked_and_brute_force(tiny_graph: RoadGraph) -> None:
