@@ -59,6 +59,13 @@ road edge's cost plus the turn cost of taking it after the arrival (:class:`Turn
   search node. Merging states that have literally the same outgoing arcs never changes which
   drives are possible or what they cost; it keeps the graph small (one-way arrivals at a
   junction all share one state, for example).
+* **Two ways to build the states, one result.** At a junction whose only arrival rule is the
+  U-turn ban (no restriction passes through it, no turn costs, no duplicate reverse edges),
+  arrival ``e``'s future is "every out-edge but ``reverse_edge[e]``", so arrivals are grouped
+  by that one edge directly. Every other expanded node evaluates each (arrival, out-edge)
+  pair -- rules, U-turn, turn class, successor -- and groups arrivals by the exact sequence of
+  these codes (a sort, no hashing). With sparse restrictions and no turn costs almost every
+  junction takes the first way, which is what makes a million-node build take seconds.
 
 The search nodes of one road node are numbered consecutively, in road-node order, so the
 search graph keeps the road graph's memory locality (Hilbert order).
@@ -105,7 +112,6 @@ from dueroute.planner.graph import (
     check_edge_costs,
     edge_polylines,
     great_circle_m,
-    reverse_edge_pairs,
 )
 
 #: Allowed values of ``uturns``.
@@ -219,22 +225,31 @@ def edge_end_headings(
     depart_ok, arrive_ok : bool[m]
         False where the probe point coincides with the node (zero-length edge): no heading.
     """
-    ptr, plat, plon = edge_polylines(graph)
     m = graph.n_edges
-    seg = great_circle_m(plat[:-1], plon[:-1], plat[1:], plon[1:]) if plat.size > 1 else None
-    dist = np.zeros(plat.shape[0], dtype=np.float64)
-    if seg is not None:
+    tail, head = np.asarray(graph.tail), np.asarray(graph.head)
+    lat, lon = np.asarray(graph.lat), np.asarray(graph.lon)
+    # Without interior points the probe point is the far end; only bent edges need distances
+    # along their polylines (a few percent of the edges of a simplified road graph).
+    out_lat, out_lon = lat[head], lon[head]
+    in_lat, in_lon = lat[tail], lon[tail]
+    bent = np.flatnonzero(np.diff(np.asarray(graph.geom_indptr)) > 0)
+    if bent.size:
+        ptr, plat, plon = edge_polylines(graph, bent)
+        seg = great_circle_m(plat[:-1], plon[:-1], plat[1:], plon[1:])
         seg[ptr[1:-1] - 1] = 0.0  # no segment from one edge's head to the next edge's tail
+        dist = np.zeros(plat.shape[0], dtype=np.float64)
         np.cumsum(seg, out=dist[1:])
-    first, last = ptr[:-1], ptr[1:] - 1
-    # dist is non-decreasing over all edges, so one searchsorted finds every probe point
-    out_i = np.clip(np.searchsorted(dist, dist[first] + probe_m, side="left"), first + 1, last)
-    in_i = np.clip(np.searchsorted(dist, dist[last] - probe_m, side="right") - 1, first, last - 1)
-    depart = _bearing_deg(plat[first], plon[first], plat[out_i], plon[out_i])
-    back = _bearing_deg(plat[last], plon[last], plat[in_i], plon[in_i])
-    arrive = np.mod(back + 180.0, 360.0)
-    depart_ok = (plat[out_i] != plat[first]) | (plon[out_i] != plon[first])
-    arrive_ok = (plat[in_i] != plat[last]) | (plon[in_i] != plon[last])
+        first, last = ptr[:-1], ptr[1:] - 1
+        # dist is non-decreasing over all edges, so one searchsorted finds every probe point
+        o = np.clip(np.searchsorted(dist, dist[first] + probe_m, side="left"), first + 1, last)
+        i = np.clip(np.searchsorted(dist, dist[last] - probe_m, side="right") - 1, first, last - 1)
+        out_lat[bent], out_lon[bent] = plat[o], plon[o]
+        in_lat[bent], in_lon[bent] = plat[i], plon[i]
+    t_lat, t_lon, h_lat, h_lon = lat[tail], lon[tail], lat[head], lon[head]
+    depart = _bearing_deg(t_lat, t_lon, out_lat, out_lon)
+    arrive = np.mod(_bearing_deg(h_lat, h_lon, in_lat, in_lon) + 180.0, 360.0)
+    depart_ok = (out_lat != t_lat) | (out_lon != t_lon)
+    arrive_ok = (in_lat != h_lat) | (in_lon != h_lon)
     assert depart.shape == (m,)
     return depart, arrive, depart_ok, arrive_ok
 
@@ -308,8 +323,8 @@ def check_restrictions(graph: RoadGraph) -> None:
         i = int(np.searchsorted(ptr, int(outside[0]), side="right")) - 1
         raise InvalidRequest(f"turn restriction {i} names an edge outside 0..{m - 1}")
     owner = np.repeat(np.arange(r, dtype=np.int64), lens)
-    i = np.flatnonzero(owner[1:] == owner[:-1])  # consecutive positions in one restriction
-    broken = i[np.asarray(graph.head)[seq[i]] != np.asarray(graph.tail)[seq[i + 1]]]
+    pos = np.flatnonzero(owner[1:] == owner[:-1])  # consecutive positions in one restriction
+    broken = pos[np.asarray(graph.head)[seq[pos]] != np.asarray(graph.tail)[seq[pos + 1]]]
     if broken.size:
         j = int(broken[0])
         raise InvalidRequest(
@@ -654,9 +669,9 @@ def _automaton(ptr: np.ndarray, seq: np.ndarray, kind: np.ndarray) -> _Automaton
     for key in keys:
         found: tuple[str, int] = ("e", key[-1])
         for k in range(1, len(key) - 1):
-            j = index.get(key[k:])
-            if j is not None:
-                found = ("d", j)
+            suffix = index.get(key[k:])
+            if suffix is not None:
+                found = ("d", suffix)
                 break
         fail.append(found)
     return _Automaton(keys, index, rules, fail)
@@ -682,8 +697,7 @@ def _expand(
     tptr = np.asarray(graph.turn_indptr, dtype=np.int64)
     tseq = np.asarray(graph.turn_edges, dtype=np.int64)
     tkind = np.asarray(graph.turn_kind, dtype=np.int64)
-    lens = np.diff(tptr)
-    short = np.flatnonzero(lens == 2)
+    short = np.flatnonzero(np.diff(tptr) == 2)
     s_from, s_to, s_kind = tseq[tptr[short]], tseq[tptr[short] + 1], tkind[short]
     no_keys = np.unique(s_from[s_kind == TURN_NO] * m + s_to[s_kind == TURN_NO])
     only_keys = np.unique(s_from[s_kind == TURN_ONLY] * m + s_to[s_kind == TURN_ONLY])
@@ -692,33 +706,44 @@ def _expand(
     deep2 = sorted((k[0] * m + k[1], i) for k, i in auto.index.items() if len(k) == 2)
     deep2_keys = np.array([k for k, _ in deep2], dtype=np.int64)
     deep2_ids = np.array([i for _, i in deep2], dtype=np.int64)
+    rule_edge = np.zeros(m, dtype=bool)  # arrivals with a two-edge rule or a via-way start
+    rule_edge[s_from] = True
+    rule_edge[deep2_keys // m] = True
 
-    # ---- which road nodes need states per arrival
-    owner_last = np.zeros(tseq.shape[0], dtype=bool)
-    owner_last[tptr[1:] - 1] = True
-    expanded = np.zeros(n, dtype=bool)
-    expanded[head[tseq[~owner_last]]] = True  # every node a restriction passes through
-    rev_e, rev_f = reverse_edge_pairs(graph)
-    rev_keys = rev_e * m + rev_f  # sorted, since the pairs are sorted by (e, f)
-    if forbid:
-        has_uturn = np.zeros(n, dtype=bool)
-        has_uturn[head[rev_e]] = True
-        expanded |= junction & has_uturn
+    # ---- reverse edges (U-turns): the lowest one by a gather, duplicates by a lookup
+    rev_e, rev_f = graph.reverse_pairs
+    rev_first = np.asarray(graph.reverse_edge, dtype=np.int64)
+    n_rev = np.bincount(rev_e, minlength=m)
+
+    # ---- road nodes by what their arrival states need
+    #   rule nodes: per-pair evaluation (restrictions pass through, or turn costs apply);
+    #   U-turn nodes: junctions whose only arrival rule is the U-turn ban, grouped at once;
+    #   every other node keeps the one state of the road graph.
+    last_pos = np.zeros(tseq.shape[0], dtype=bool)
+    last_pos[tptr[1:] - 1] = True
+    rule_node = np.zeros(n, dtype=bool)
+    rule_node[head[tseq[~last_pos]]] = True  # every node a restriction passes through
     if turn_costs is not None:
-        expanded |= costed_node & (indeg > 0)
+        rule_node |= costed_node & (indeg > 0)
+    uturn_node = np.zeros(n, dtype=bool)
+    if forbid:
+        uturn_node[head[rev_e]] = True
+        uturn_node &= junction
+        several = np.zeros(n, dtype=bool)  # an arrival with duplicate reverses: per pair
+        several[head[n_rev > 1]] = True
+        rule_node |= uturn_node & several
+        uturn_node &= ~rule_node
+    expanded = rule_node | uturn_node
 
-    # ---- candidate states ("rows"): one per arrival edge, then one per via-way state. Every
-    # expanded node has an arrival edge (a restriction passes through it, or a U-turn or a
-    # turn cost is possible there), so no expanded node needs an arrival-free state.
-    plain_edges = np.flatnonzero(expanded[head])
+    # ---- candidate states at rule nodes: one per arrival edge, then the via-way states
+    plain_edges = np.flatnonzero(rule_node[head])
     n_deep = len(auto.keys)
     deep_last = np.array([k[-1] for k in auto.keys], dtype=np.int64)
     row_last = np.concatenate((plain_edges, deep_last))
     row_v = head[row_last]
     n_plain, n_rows = plain_edges.size, row_last.size
-    deep_row0 = n_plain
 
-    # ---- every (row, out-edge) pair, in road CSR order within a row
+    # every (row, out-edge) pair, in road CSR order within a row
     d = outdeg[row_v]
     pair_ptr = np.zeros(n_rows + 1, dtype=np.int64)
     np.cumsum(d, out=pair_ptr[1:])
@@ -726,33 +751,38 @@ def _expand(
     pair_row = np.repeat(np.arange(n_rows, dtype=np.int64), d)
     pair_f = np.arange(n_pairs, dtype=np.int64) + np.repeat(road_ptr[row_v] - pair_ptr[:-1], d)
     pair_e = row_last[pair_row]
-    pkey = pair_e * m + pair_f
-    plain_pair = pair_row < n_plain
-    ocount = np.where(plain_pair, only_count[pair_e], 0)
-    only_hit = plain_pair & (ocount == 1) & _member(only_keys, pkey)
     allowed = np.ones(n_pairs, dtype=bool)
+    # two-edge rules, only where the arrival has one
+    ruled = np.flatnonzero((pair_row < n_plain) & rule_edge[pair_e])
+    rkey = pair_e[ruled] * m + pair_f[ruled]
+    ocount = only_count[pair_e[ruled]]
+    only_hit = (ocount == 1) & _member(only_keys, rkey)
+    allowed[ruled] = ~_member(no_keys, rkey) & ((ocount == 0) | only_hit)
     if forbid:  # an only_* rule's own `to` stays allowed even if it is the U-turn
-        allowed &= only_hit | ~(junction[row_v[pair_row]] & _member(rev_keys, pkey))
-    allowed &= ~(plain_pair & _member(no_keys, pkey))
-    allowed &= ~plain_pair | (ocount == 0) | only_hit
+        uturn = rev_first[pair_e] == pair_f
+        dup = np.flatnonzero(n_rev[pair_e] > 1)
+        uturn[dup] |= _member(rev_e * m + rev_f, pair_e[dup] * m + pair_f[dup])
+        uturn &= junction[head[pair_e]]
+        uturn[ruled[only_hit]] = False
+        allowed &= ~uturn
     conflicts = int(np.sum(only_count > 1))
     next_deep = np.full(n_pairs, -1, dtype=np.int64)
     if deep2_keys.size:
-        pos = np.minimum(np.searchsorted(deep2_keys, pkey), deep2_keys.size - 1)
-        hit = plain_pair & (deep2_keys[pos] == pkey)
-        next_deep[hit] = deep2_ids[pos[hit]]
+        pos = np.minimum(np.searchsorted(deep2_keys, rkey), deep2_keys.size - 1)
+        hit = deep2_keys[pos] == rkey
+        next_deep[ruled[hit]] = deep2_ids[pos[hit]]
     cls = np.zeros(n_pairs, dtype=np.int8)
     cost_code = np.zeros(_N_COST_CODES, dtype=np.int64)
     class_cost = np.zeros(_N_COST_CODES, dtype=np.float64)
     if turn_costs is not None:
         dep, arr, dep_ok, arr_ok = edge_end_headings(graph, turn_costs.probe_m)
-        turned = costed_node[row_v[pair_row]]
+        turned = np.flatnonzero(costed_node[head[pair_e]])
         angle = _turn_angles(dep, arr, dep_ok, arr_ok, pair_e[turned], pair_f[turned])
         cls[turned] = classify_turns(angle, turn_costs)
         class_cost = turn_costs.class_costs_s
         _, cost_code = np.unique(class_cost, return_inverse=True)
 
-    # ---- via-way states: their rules and successors, in plain Python (few of them)
+    # via-way states: their rules and successors, in plain Python (few of them)
     if n_deep:
         plain_rules = _plain_rules(auto, s_from, s_to, s_kind)
         for i in range(n_deep):
@@ -772,7 +802,7 @@ def _expand(
                     break
                 state = auto.fail[state[1]]
             conflicts += only is not None and not only
-            lo, hi = int(pair_ptr[deep_row0 + i]), int(pair_ptr[deep_row0 + i + 1])
+            lo, hi = int(pair_ptr[n_plain + i]), int(pair_ptr[n_plain + i + 1])
             for p in range(lo, hi):
                 f = int(pair_f[p])
                 if f in banned or (only is not None and f not in only):
@@ -782,49 +812,82 @@ def _expand(
                 nxt = auto.step(("d", i), f)
                 next_deep[p] = nxt[1] if nxt[0] == "d" else -1
 
-    # ---- merge rows with identical futures: same node, same code for every out-edge
+    # merge rows with identical futures: same node, same code for every out-edge
     code = np.where(allowed, 1 + cost_code[cls] + _N_COST_CODES * (next_deep + 1), 0)
-    row_group, group_v, group_rep = _group_rows(row_v, d, pair_ptr, code)
+    row_group, rule_group_v, group_rep = _group_rows(row_v, d, pair_ptr, code)
+
+    # ---- U-turn nodes: arrival e's future is "every out-edge but rev_first[e]", so arrivals
+    # group by that one edge (arrivals without a reverse form one group). Out-edges of a node
+    # are contiguous in CSR order, so one sort key orders the groups by node as well.
+    u_edges = np.flatnonzero(uturn_node[head])
+    u_excl = rev_first[u_edges]
+    u_key = np.where(u_excl >= 0, 2 * u_excl + 1, 2 * road_ptr[head[u_edges]])
+    u_order = np.argsort(u_key, kind="stable")
+    u_sorted = u_key[u_order]
+    u_new = np.ones(u_sorted.size, dtype=bool)
+    u_new[1:] = u_sorted[1:] != u_sorted[:-1]
+    u_row_group = np.empty(u_edges.size, dtype=np.int64)
+    u_row_group[u_order] = np.cumsum(u_new) - 1
+    u_group_v = head[u_edges[u_order[u_new]]]
+    u_group_excl = u_excl[u_order[u_new]]
+
+    # ---- search node ids: states of one road node are consecutive, nodes in order
+    n_rule_groups = rule_group_v.size
+    group_v = np.concatenate((rule_group_v, u_group_v))  # a node is in one part only
     counts = np.where(expanded, 0, 1) + np.bincount(group_v, minlength=n)
     node_states_indptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(counts, out=node_states_indptr[1:])
     n_states = int(node_states_indptr[-1])
     assert n_states < 2**31 - 1, "search node ids must fit int32"
-    # groups come sorted by node, so a group's rank among its node's groups is its position
-    # minus the position of the node's first group
-    g_first = np.searchsorted(group_v, group_v, side="left")
-    group_sid = node_states_indptr[group_v] + (np.arange(group_v.size) - g_first)
-    row_sid = group_sid[row_group]
+    # each part's groups come sorted by node: rank within the node = position minus the
+    # position of the node's first group
+    rule_sid = node_states_indptr[rule_group_v] + (
+        np.arange(n_rule_groups) - np.searchsorted(rule_group_v, rule_group_v, side="left")
+    )
+    u_sid = node_states_indptr[u_group_v] + (
+        np.arange(u_group_v.size) - np.searchsorted(u_group_v, u_group_v, side="left")
+    )
+    row_sid = rule_sid[row_group]
     entry_state = node_states_indptr[head].copy()  # non-expanded heads: their one state
     entry_state[plain_edges] = row_sid[:n_plain]
-    deep_sid = row_sid[deep_row0 : deep_row0 + n_deep]
+    entry_state[u_edges] = u_sid[u_row_group]
+    deep_sid = row_sid[n_plain : n_plain + n_deep]
 
-    # ---- arcs: representative rows of the groups, then the one state of every other node
+    # ---- arcs, in three runs each sorted by search node: rule-node groups (their first
+    # row's allowed pairs), U-turn-node groups, the one state of every other node
     rep_d = d[group_rep]
     rep_pairs = np.arange(int(rep_d.sum()), dtype=np.int64) + np.repeat(
         pair_ptr[group_rep] - (np.cumsum(rep_d) - rep_d), rep_d
     )
-    rep_tail = np.repeat(group_sid, rep_d)
+    rep_tail = np.repeat(rule_sid, rep_d)
     keep = allowed[rep_pairs]
     rep_pairs, rep_tail = rep_pairs[keep], rep_tail[keep]
-    f_exp = pair_f[rep_pairs]
-    nd = next_deep[rep_pairs]
-    head_exp = entry_state[f_exp]
+    f_rule = pair_f[rep_pairs]
+    head_rule = entry_state[f_rule]
     if n_deep:
-        head_exp = np.where(nd >= 0, deep_sid[np.maximum(nd, 0)], head_exp)
-    turn_exp = class_cost[cls[rep_pairs]]
+        nd = next_deep[rep_pairs]
+        head_rule = np.where(nd >= 0, deep_sid[np.maximum(nd, 0)], head_rule)
+    turn_rule = class_cost[cls[rep_pairs]]
+
+    u_d = outdeg[u_group_v]
+    f_u = np.arange(int(u_d.sum()), dtype=np.int64) + np.repeat(
+        road_ptr[u_group_v] - (np.cumsum(u_d) - u_d), u_d
+    )
+    tail_u = np.repeat(u_sid, u_d)
+    keep = f_u != np.repeat(u_group_excl, u_d)
+    f_u, tail_u = f_u[keep], tail_u[keep]
+
     f_one = np.flatnonzero(~expanded[tail])
     tail_one = node_states_indptr[tail[f_one]]
-    arc_tail = np.concatenate((rep_tail, tail_one))
-    order = np.argsort(arc_tail, kind="stable")  # two sorted runs: a merge
-    road_edge = np.concatenate((f_exp, f_one))[order]
-    arc_head = np.concatenate((head_exp, entry_state[f_one]))[order]
-    turn_cost = np.concatenate((turn_exp, np.zeros(f_one.size)))[order]
+    arc_tail = np.concatenate((rep_tail, tail_u, tail_one))
+    order = np.argsort(arc_tail, kind="stable")  # three sorted runs: a merge
+    road_edge = np.concatenate((f_rule, f_u, f_one))[order]
+    arc_head = np.concatenate((head_rule, entry_state[f_u], entry_state[f_one]))[order]
+    turn_cost = np.concatenate((turn_rule, np.zeros(f_u.size + f_one.size)))[order]
     indptr = np.zeros(n_states + 1, dtype=np.int64)
     np.cumsum(np.bincount(arc_tail, minlength=n_states), out=indptr[1:])
     node_road = np.repeat(np.arange(n, dtype=np.int32), counts)
 
-    road_edge32 = _readonly(road_edge.astype(np.int32))
     turn_cost = _readonly(turn_cost)
     info.update(
         search_nodes=n_states,
@@ -832,8 +895,9 @@ def _expand(
         size_ratio=n_states / max(n, 1),
         junctions=int(junction.sum()),
         expanded_nodes=int(expanded.sum()),
+        rule_nodes=int(rule_node.sum()),
         via_way_states=n_deep,
-        candidate_states=n_rows,
+        candidate_states=n_rows + u_edges.size,
         only_conflicts=conflicts,
     )
     return SearchGraph(
@@ -848,7 +912,7 @@ def _expand(
         uturns=uturns,
         turn_costs=turn_costs,
         info=info,
-        mapped_road_edge=road_edge32,
+        mapped_road_edge=_readonly(road_edge.astype(np.int32)),
         mapped_node_road=_readonly(node_road),
         mapped_node_states_indptr=_readonly(node_states_indptr),
     )
@@ -873,7 +937,8 @@ def _group_rows(
     """Group candidate states by (node, code of every out-edge): exact, no hashing.
 
     All rows of one node have the same number of out-edges ``d``, so rows are grouped per
-    value of ``d`` with a lexicographic sort of the ``(node, code...)`` matrix.
+    value of ``d`` with a lexicographic sort of ``(node, codes)``; when a row's codes fit one
+    int64 they are packed into it (two sort keys instead of ``d + 1``).
 
     Returns
     -------
@@ -886,26 +951,26 @@ def _group_rows(
     """
     n_rows = row_v.shape[0]
     row_group = np.empty(n_rows, dtype=np.int64)
+    bits = max(1, int(code.max()).bit_length()) if code.size else 1
     batch_v: list[np.ndarray] = []
     batch_rep: list[np.ndarray] = []
     offset = 0
     for deg in np.unique(d).tolist():
         rows = np.flatnonzero(d == deg)
-        codes = code[pair_ptr[rows][:, None] + np.arange(deg)] if deg else None
-        keys = [row_v[rows]]
-        if codes is not None:
-            keys += [codes[:, j] for j in range(deg)]
-        order = np.lexsort(keys[::-1])  # primary key: the node
+        codes = code[pair_ptr[rows][:, None] + np.arange(deg)]
+        if deg * bits <= 62:
+            packed = np.zeros(rows.size, dtype=np.int64)
+            for j in range(deg):
+                packed |= codes[:, j] << (bits * j)
+            codes = packed[:, None]
+        keys = [codes[:, j] for j in range(codes.shape[1])]
+        order = np.lexsort((*keys[::-1], row_v[rows]))  # primary key: the node
         rs = rows[order]
         new = np.ones(rs.size, dtype=bool)
         if rs.size > 1:
-            same = row_v[rs[1:]] == row_v[rs[:-1]]
-            if codes is not None:
-                c = codes[order]
-                same &= np.all(c[1:] == c[:-1], axis=1)
-            new[1:] = ~same
-        gid = np.cumsum(new) - 1
-        row_group[rs] = offset + gid
+            c = codes[order]
+            new[1:] = (row_v[rs[1:]] != row_v[rs[:-1]]) | np.any(c[1:] != c[:-1], axis=1)
+        row_group[rs] = offset + np.cumsum(new) - 1
         batch_v.append(row_v[rs[new]])
         batch_rep.append(rs[new])
         offset += int(new.sum())

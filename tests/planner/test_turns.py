@@ -126,8 +126,9 @@ def path_edges(g: RoadGraph, *nodes: int) -> list[int]:
 
 
 def random_road_graph(seed: int, *, max_side: int = 4, n_restrictions: int | None = None):
-    """A random lattice road network with bends, parallel roads, one-ways, a rare self-loop,
-    and random restrictions (random drives of 2-4 edges, so they include U-turns)."""
+    """A random lattice road network with bends, parallel roads, duplicate roads, one-ways, a
+    rare self-loop, and random restrictions (random drives of 2-4 edges, so they include
+    U-turns)."""
     rng = np.random.default_rng(seed)
     rows, cols = int(rng.integers(2, max_side + 1)), int(rng.integers(2, max_side + 1))
     nodes = [(45.0 + 0.01 * i, 7.0 + 0.01 * j) for i in range(rows) for j in range(cols)]
@@ -157,6 +158,8 @@ def random_road_graph(seed: int, *, max_side: int = 4, n_restrictions: int | Non
         u = rng.random()
         t, h = (a, b) if rng.random() < 0.5 else (b, a)
         roads.append((t, h, u < 0.7, pts))
+        if rng.random() < 0.05:  # the same road twice (duplicate ways): several reverses
+            roads.append((t, h, u < 0.7 or rng.random() < 0.5, pts))
         if rng.random() < 0.08:  # a parallel road along another line
             (la, lo), (lb, lob) = nodes[a], nodes[b]
             roads.append(
