@@ -203,13 +203,13 @@ def _angle(u: np.ndarray, v: np.ndarray) -> np.ndarray:
 
 
 @njit(cache=True, nogil=True)
-def _angle3(ux, uy, uz, vx, vy, vz):  # type: ignore[no-untyped-def]
+def _angle3(ux, uy, uz, vx, vy, vz):
     dx, dy, dz = vx - ux, vy - uy, vz - uz
     return 2.0 * math.asin(min(1.0, 0.5 * math.sqrt(dx * dx + dy * dy + dz * dz)))
 
 
 @njit(cache=True, nogil=True)
-def _nearest_on_arcs(q, a, b, cand, out):  # type: ignore[no-untyped-def]
+def _nearest_on_arcs(q, a, b, cand, out):
     """Index into ``cand`` of the arc ``a[s] -> b[s]`` nearest to ``q`` (ties: lowest ``s``).
 
     ``q`` float64[3]; ``a``, ``b`` float64[S, 3] unit vectors; ``cand`` int64[k] arc ids (may
