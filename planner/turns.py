@@ -21,7 +21,8 @@ legal when
   :func:`~dueroute.planner.graph.reverse_edge_pairs`). U-turns at dead ends (one neighbour)
   are always allowed, and so are U-turns at the other nodes with two neighbours, where the
   road merely goes on (a road's end or a change of its tags). ``uturns="allow"`` allows every
-  U-turn that no restriction bans.
+  U-turn that no restriction bans. An ``only_*`` restriction whose ``to`` is the U-turn
+  (``only_u_turn``) allows it: the sign names it explicitly.
 
 A drive starts at a road node by any of its out-edges (no arrival, so no rule about the
 arrival applies) or at a point on an edge (then it "arrived" by that edge).
@@ -38,14 +39,16 @@ road edge's cost plus the turn cost of taking it after the arrival (:class:`Turn
   Dijkstra or A* search does) never visits a node twice, and a U-turn ``u -> v -> u`` visits
   ``u`` twice, so the shortest legal drive costs what the shortest path costs and the path the
   search returns is legal. (Walks with U-turns remain paths of the identity search graph;
-  only its shortest paths are guaranteed legal -- which is all a search returns.)
+  only its shortest paths are guaranteed legal -- which is all a search returns. The one
+  exception is a "route" from a node back to itself, which a search answers without
+  searching.)
 * **Otherwise the graph is expanded edge-based at the nodes where the arrival matters**:
   junctions when U-turns are forbidden there, every node a restriction passes through (the
   head of its ``from`` and ``via`` edges), and every node but the two-neighbour ones when
-  turn costs are set. Such a node gets one candidate state per arrival edge, whose arcs are its allowed
-  turns: not the U-turn (at a junction, unless allowed), no banned turn, only the ``to`` edge
-  under an ``only_*`` restriction. Every other node keeps one state (all out-edges, no turn
-  cost), as in the road graph.
+  turn costs are set. Such a node gets one candidate state per arrival edge, whose arcs are
+  its allowed turns: not the U-turn (at a junction, unless allowed), no banned turn, only the
+  ``to`` edge under an ``only_*`` restriction. Every other node keeps one state (all
+  out-edges, no turn cost), as in the road graph.
 * **Via-way restrictions** need to remember more than the last edge: after ``from, via1`` the
   drive may be on its way into ``from, via1, via2, to``. The arrival states are therefore the
   states of a pattern-matching automaton over road edges (Aho & Corasick 1975) whose patterns
@@ -140,11 +143,11 @@ class TurnCosts:
     left_s: float = 0.0
     #: Penalty for a right turn (clockwise beyond ``straight_max_deg``), seconds.
     right_s: float = 0.0
-    #: Penalty for a U-turn (a turn sharper than ``uturn_min_deg``), seconds.
+    #: Penalty for a U-turn (a turn at least ``uturn_min_deg`` sharp), seconds.
     uturn_s: float = 0.0
     #: A turn within +-this angle is straight and free, degrees (30: common practice).
     straight_max_deg: float = 30.0
-    #: A turn sharper than this angle is a U-turn, degrees.
+    #: A turn at least this sharp is a U-turn, degrees (150: our choice, not a standard).
     uturn_min_deg: float = 150.0
     #: Headings are measured to the first polyline point at least this far along the edge, m.
     probe_m: float = 15.0
