@@ -231,6 +231,27 @@ class RoadGraph:
         return pts
 
     @cached_property
+    def reverse_pairs(self) -> tuple[np.ndarray, np.ndarray]:
+        """:func:`reverse_edge_pairs` of this graph (computed once)."""
+        return reverse_edge_pairs(self)
+
+    @cached_property
+    def reverse_edge(self) -> np.ndarray:
+        """int32[m]: the edge that drives edge ``e``'s road the other way, or -1 (one-way).
+
+        The reverse of ``e`` runs from ``head[e]`` to ``tail[e]`` along the same interior
+        geometry in reverse order (see :func:`reverse_edge_pairs`); of several such edges
+        (duplicates) the lowest index is taken.
+        """
+        out = np.full(self.n_edges, -1, dtype=np.int32)
+        e, f = self.reverse_pairs
+        # pairs are sorted by (e, f): the first pair of each e holds its lowest reverse
+        first = np.ones(e.shape[0], dtype=bool)
+        first[1:] = e[1:] != e[:-1]
+        out[e[first]] = f[first]
+        return out
+
+    @cached_property
     def _snap_tree(self) -> Any:
         from scipy.spatial import cKDTree
 
@@ -283,6 +304,113 @@ class RoadGraph:
             "fingerprint": self.fingerprint,
             "meta": {k: v for k, v in self.meta.items() if k != "road_classes"},
         }
+
+
+def check_edge_costs(n_edges: int, costs: Any) -> np.ndarray:
+    """``costs`` as float64[n_edges] edge costs in seconds, or :class:`InvalidRequest`.
+
+    Allowed: one number per edge, each ``>= 0`` or ``+inf`` (a closed road); never NaN.
+    """
+    arr = np.asarray(costs)
+    if arr.shape != (n_edges,) or not np.issubdtype(arr.dtype, np.number):
+        raise InvalidRequest(
+            f"road costs must be a numeric array with one entry per edge ({n_edges}), "
+            f"got {arr.dtype}{list(arr.shape)}"
+        )
+    arr = np.asarray(arr, dtype=np.float64)
+    if arr.size and (bool(np.isnan(arr).any()) or float(arr.min()) < 0.0):
+        raise InvalidRequest("road costs must be >= 0 seconds (+inf for a closed road), no NaN")
+    return arr
+
+
+def edge_polylines(
+    graph: RoadGraph, edges: np.ndarray | None = None
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Full polylines (tail, interior points, head) of every edge, or of ``edges``, in one
+    ragged array.
+
+    Returns
+    -------
+    ptr : int64[k + 1]
+        Points of the i-th edge (edge ``i``, or ``edges[i]``) are ``lat[ptr[i]:ptr[i + 1]]``,
+        from its tail to its head (at least two: the endpoints are included, unlike
+        ``geom_lat``).
+    lat, lon : float64[ptr[-1]]
+        WGS84 degrees.
+    """
+    gptr = np.asarray(graph.geom_indptr, dtype=np.int64)
+    sel = np.arange(graph.n_edges, dtype=np.int64) if edges is None else np.asarray(edges)
+    inner = np.diff(gptr)[sel]
+    k = sel.shape[0]
+    ptr = np.zeros(k + 1, dtype=np.int64)
+    np.cumsum(inner + 2, out=ptr[1:])
+    lat = np.empty(int(ptr[-1]), dtype=np.float64)
+    lon = np.empty(int(ptr[-1]), dtype=np.float64)
+    tail, head = np.asarray(graph.tail)[sel], np.asarray(graph.head)[sel]
+    lat[ptr[:-1]], lon[ptr[:-1]] = graph.lat[tail], graph.lon[tail]
+    lat[ptr[1:] - 1], lon[ptr[1:] - 1] = graph.lat[head], graph.lon[head]
+    # interior point j of the i-th edge sits at ptr[i] + 1 + j; in geom_* at gptr[sel[i]] + j
+    j = np.arange(int(inner.sum()), dtype=np.int64) - np.repeat(np.cumsum(inner) - inner, inner)
+    src = np.repeat(gptr[:-1][sel], inner) + j
+    dst = np.repeat(ptr[:-1] + 1, inner) + j
+    lat[dst], lon[dst] = graph.geom_lat[src], graph.geom_lon[src]
+    return ptr, lat, lon
+
+
+def reverse_edge_pairs(graph: RoadGraph) -> tuple[np.ndarray, np.ndarray]:
+    """All pairs ``(e, f)`` where edge ``f`` drives edge ``e``'s road the other way.
+
+    ``f`` is a reverse of ``e`` when ``tail[f] == head[e]``, ``head[f] == tail[e]`` and the
+    interior geometry of ``f`` is that of ``e`` in reverse order, point for point (exact
+    equality: both directions of a two-way OSM way share their nodes). Two parallel roads
+    between the same nodes along different geometry are not each other's reverse. A self-loop
+    whose geometry reads the same both ways is its own reverse.
+
+    Returns
+    -------
+    e, f : int64[p]
+        Sorted by ``(e, f)``; an edge may have several reverses (duplicate edges) or none.
+    """
+    n, m = graph.n_nodes, graph.n_edges
+    if m == 0:
+        return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
+    tail = np.asarray(graph.tail, dtype=np.int64)
+    head = np.asarray(graph.head, dtype=np.int64)
+    key = tail * n + head
+    # compiled graphs are in CSR order, sorted by (tail, head): no sort needed then
+    in_order = bool(np.all(key[1:] >= key[:-1]))
+    order = np.arange(m, dtype=np.int64) if in_order else np.argsort(key, kind="stable")
+    skey = key if in_order else key[order]
+    # look the reversed keys up in sorted order (sequential memory access), then unsort
+    want = head * n + tail
+    by_want = np.argsort(want, kind="stable")
+    lo_sorted = np.searchsorted(skey, want[by_want], side="left")
+    hi_sorted = np.searchsorted(skey, want[by_want], side="right")
+    lo = np.empty(m, dtype=np.int64)
+    cnt = np.empty(m, dtype=np.int64)
+    lo[by_want] = lo_sorted
+    cnt[by_want] = hi_sorted - lo_sorted
+    e = np.repeat(np.arange(m, dtype=np.int64), cnt)
+    within = np.arange(e.shape[0], dtype=np.int64) - np.repeat(np.cumsum(cnt) - cnt, cnt)
+    f = order[np.repeat(lo, cnt) + within]
+    # same number of interior points, then every point equal to its mirror image
+    gptr = np.asarray(graph.geom_indptr, dtype=np.int64)
+    inner = np.diff(gptr)
+    same = inner[e] == inner[f]
+    e, f = e[same], f[same]
+    lens = inner[e]
+    pair = np.repeat(np.arange(e.shape[0], dtype=np.int64), lens)
+    j = np.arange(pair.shape[0], dtype=np.int64) - np.repeat(np.cumsum(lens) - lens, lens)
+    pe = gptr[e][pair] + j
+    pf = gptr[f + 1][pair] - 1 - j
+    differ = (graph.geom_lat[pe] != graph.geom_lat[pf]) | (graph.geom_lon[pe] != graph.geom_lon[pf])
+    bad = np.bincount(pair[differ], minlength=e.shape[0]) > 0
+    e, f = e[~bad], f[~bad]
+    # e is non-decreasing already; f only needs sorting where an edge has several reverses
+    if e.size > 1 and bool(np.any((e[1:] == e[:-1]) & (f[1:] < f[:-1]))):
+        order2 = np.lexsort((f, e))
+        e, f = e[order2], f[order2]
+    return e, f
 
 
 def _unit_vectors(lat: np.ndarray, lon: np.ndarray) -> np.ndarray:

@@ -477,3 +477,89 @@ def test_cli_info_and_plot(
     ]
     assert cli_main([*argv, "--json"]) == 0
     assert json.loads(capsys.readouterr().out)["segments"] < result["segments"]
+
+
+# ---------------------------------------------------------------------------------------------
+# edge geometry helpers
+
+
+def test_edge_polylines_match_edge_coords(tiny_graph: RoadGraph) -> None:
+    """edge_polylines holds, per edge, exactly the points edge_coords lists (hand-checked)."""
+    from dueroute.planner.graph import edge_polylines
+
+    ptr, lat, lon = edge_polylines(tiny_graph)
+    for e in range(tiny_graph.n_edges):
+        pts = list(zip(lon[ptr[e] : ptr[e + 1]], lat[ptr[e] : ptr[e + 1]], strict=True))
+        assert pts == tiny_graph.edge_coords(e)
+    some = np.array([3, 0, 7, 7, tiny_graph.n_edges - 1])
+    ptr, lat, lon = edge_polylines(tiny_graph, some)
+    for i, e in enumerate(some.tolist()):
+        pts = list(zip(lon[ptr[i] : ptr[i + 1]], lat[ptr[i] : ptr[i + 1]], strict=True))
+        assert pts == tiny_graph.edge_coords(e)
+
+
+def test_reverse_edges_hand_checked_and_brute_force(tiny_graph: RoadGraph) -> None:
+    """Hand-checked on the tiny graph: the bent two-way 1-4 street's directions reverse each
+    other, the one-way 5 -> 6 has none, and the bent one-way service road 0 -> 1 is not the
+    reverse of the primary 1 -> 0 (other geometry). On random graphs, reverse_edge_pairs equals
+    a plain double loop over all edge pairs."""
+    from dueroute.planner.graph import build_graph, reverse_edge_pairs
+
+    g = tiny_graph
+
+    def edge(t: int, h: int, cls: str | None = None) -> int:
+        classes = g.meta["road_classes"]
+        return next(
+            e
+            for e in range(g.n_edges)
+            if g.tail[e] == t
+            and g.head[e] == h
+            and (cls is None or classes[g.road_class[e]] == cls)
+        )
+
+    assert g.reverse_edge[edge(1, 4)] == edge(4, 1)
+    assert g.reverse_edge[edge(4, 1)] == edge(1, 4)
+    assert g.reverse_edge[edge(5, 6)] == -1
+    assert g.reverse_edge[edge(0, 1, "service")] == -1
+    assert g.reverse_edge[edge(1, 0)] == edge(0, 1, "primary")
+
+    rng = np.random.default_rng(3)
+    for _ in range(20):
+        n, m = 6, 30
+        tail, head = rng.integers(0, n, m), rng.integers(0, n, m)
+        inner = rng.integers(0, 3, m)
+        pts = rng.choice(np.array([0.0, 0.001, 0.002]), size=(int(inner.sum()), 2))
+        gptr = np.concatenate(([0], np.cumsum(inner)))
+        r = build_graph(
+            lat=45 + rng.random(n) * 0.01,
+            lon=7 + rng.random(n) * 0.01,
+            osm_id=np.arange(n),
+            tail=tail,
+            head=head,
+            length_m=np.ones(m),
+            speed_kph=np.full(m, 30.0),
+            road_class=np.zeros(m, dtype=np.int8),
+            speed_source=np.zeros(m, dtype=np.int8),
+            geom_indptr=gptr,
+            geom_lat=45 + pts[:, 0],
+            geom_lon=7 + pts[:, 1],
+        )
+
+        geom = [
+            list(
+                zip(
+                    r.geom_lat[r.geom_indptr[e] : r.geom_indptr[e + 1]].tolist(),
+                    r.geom_lon[r.geom_indptr[e] : r.geom_indptr[e + 1]].tolist(),
+                    strict=True,
+                )
+            )
+            for e in range(m)
+        ]
+        want = [
+            (e, f)
+            for e in range(m)
+            for f in range(m)
+            if r.tail[f] == r.head[e] and r.head[f] == r.tail[e] and geom[f] == geom[e][::-1]
+        ]
+        e_, f_ = reverse_edge_pairs(r)
+        assert list(zip(e_.tolist(), f_.tolist(), strict=True)) == want
