@@ -1087,8 +1087,8 @@ def open_query(
     first of the ``INSTANT_GENERATIONS + 1`` generations reserved for this query. A plain node
     query may leave the target table to this call: ``I_N_TARGETS = 0`` and the destination in
     ``I_TNODE`` (one ARRIVAL target; its position and landmark row are filled in here).
-    Returns ``(instant edge count, instant cost, h_start)``; the instant route's edges are in
-    ``route_buf`` (count -1: none).
+    Returns ``(instant edge count, instant cost, h_start, source index, target index)``; the
+    instant route's edges are in ``route_buf`` (count -1: none).
     """
     if istate[I_N_TARGETS] == 0:
         t = istate[I_TNODE]
@@ -1103,9 +1103,11 @@ def open_query(
             istate[I_TLM + 2 * li + 1] = lm[t, li, LM_FROM]
     count = -1
     inst = _INF
+    src_i = -1
+    tgt_i = -1
     first = istate[I_GEN]
     if lm.shape[1] > 0:
-        count, inst, _, _ = instant_route(
+        count, inst, src_i, tgt_i = instant_route(
             indptr,
             head,
             cost,
@@ -1124,7 +1126,7 @@ def open_query(
     h_start = start_query(coords, lm, state, heap, istate, fstate, src_node, src_g)
     if count >= 0:
         fstate[F_INCUMBENT] = inst
-    return count, inst, h_start
+    return count, inst, h_start, src_i, tgt_i
 
 
 @njit(cache=True, nogil=True)

@@ -816,12 +816,19 @@ def load_or_build_landmarks(
 ) -> Landmarks:
     """Landmarks stored beside the graph, built (and saved) when missing or stale.
 
+    For a graph with turn restrictions they are built on the graph the search runs on, its
+    search graph of legal drives (``planner.endpoints.planning_graph``), and stored as
+    ``<graph>.turns.landmarks.npz``.
+
     The file is ``path`` or ``<graph>.landmarks.npz``. A file built for another version of the
     graph (fingerprint differs) or with another count or method is rebuilt and replaced; a
     corrupt file raises :class:`CorruptGraphFile` (delete it, or pass ``rebuild=True``). A graph
     that was never saved (``graph.path is None``) and no ``path`` gives landmarks in memory, and
     so does a folder we may not write to (``meta["not_saved"]`` says why).
     """
+    from dueroute.planner.endpoints import planning_graph
+
+    graph = planning_graph(graph)  # a graph with turn rules is searched as its search graph
     target = Path(path) if path is not None else None
     if target is None and graph.path is not None:
         target = landmarks_path(graph.path)

@@ -262,8 +262,12 @@ def _encode(name: str, value: Any) -> float:
 class PlanResult:
     """Answer of one search (see :data:`STATUSES` for ``status``).
 
-    ``route`` holds node indices (int64[k + 1]) and ``route_edges`` edge indices (int64[k], so
-    parallel edges are unambiguous); both are ``None`` when no route was found.
+    ``route`` holds road node indices (int64[k + 1]) and ``route_edges`` road edge indices
+    (int64[k], so parallel edges are unambiguous) of the edges driven in full; both are ``None``
+    when no route was found. A route from or to a point on a road adds the partial edges
+    ``route_start`` / ``route_end`` (``planner.endpoints.PartialEdge``); a route between two
+    points on the same edge is one partial edge and no full edge. ``origin`` / ``destination``
+    are ``None`` for a snapped point (``origin_snap`` / ``destination_snap``).
     ``cost_s`` / ``gap`` are ``None`` when no route was found; ``lower_bound_s`` is ``None`` only
     for ``no_route``. ``stopped_by`` is one of :data:`STOP_REASONS`; ``instant_cost_s`` the cost
     of the instant route the search started from (``None`` when there was none);
@@ -271,8 +275,8 @@ class PlanResult:
     """
 
     status: str
-    origin: int
-    destination: int
+    origin: int | None
+    destination: int | None
     route: np.ndarray | None
     route_edges: np.ndarray | None
     cost_s: float | None
@@ -296,6 +300,12 @@ class PlanResult:
     #: wall time spent expanding (inside the kernel); ``elapsed_ms - kernel_ms`` is the rest:
     #: opening the query, the instant route, decision steps, reading routes back
     kernel_ms: float = 0.0
+    #: partial edges at the route's ends (a route from or to a point on a road)
+    route_start: Any = None
+    route_end: Any = None
+    #: the snapped points (``planner.snap.RoadSnap``) when the route starts or ends at one
+    origin_snap: Any = None
+    destination_snap: Any = None
     extra: dict[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
@@ -325,11 +335,28 @@ class PlanResult:
             "weight_capped": self.weight_capped,
             "gap_target": self.gap_target,
             "kernel_ms": self.kernel_ms,
+            "route_start": None if self.route_start is None else self.route_start.to_dict(),
+            "route_end": None if self.route_end is None else self.route_end.to_dict(),
+            "origin_point": None if self.origin_snap is None else _point(self.origin_snap),
+            "destination_point": None
+            if self.destination_snap is None
+            else _point(self.destination_snap),
             "improvements": [i.to_dict() for i in self.improvements],
             "weights": [asdict(w) for w in self.weights],
         }
         out.update(self.extra)
         return out
+
+
+def _point(snap: Any) -> dict[str, Any]:
+    """A snapped point as answers give it: where it is, how far the query was, which edge."""
+    return {
+        "lat": snap.lat,
+        "lon": snap.lon,
+        "distance_m": snap.distance_m,
+        "edge": snap.edge,
+        "query": {"lat": snap.query_lat, "lon": snap.query_lon},
+    }
 
 
 def _json_num(x: Any) -> Any:

@@ -74,6 +74,15 @@ import numpy as np
 
 from dueroute.planner import _kernel as K
 from dueroute.planner.controllers import Controller, make_controller
+from dueroute.planner.endpoints import (
+    Ends,
+    RoadRoute,
+    assemble,
+    direct_route,
+    resolve,
+    search_graph_for,
+    target_row,
+)
 from dueroute.planner.errors import InvalidRequest, NodeNotFound
 from dueroute.planner.features import compute_features
 from dueroute.planner.graph import RoadGraph
@@ -95,6 +104,7 @@ from dueroute.planner.results import (
     WeightStep,
     gap_of,
 )
+from dueroute.planner.snap import RoadSnap
 
 #: Safety cap when neither a deadline nor a budget is given (see the module docstring).
 UNBOUNDED_BUDGET_PER_NODE = 20
@@ -195,7 +205,8 @@ def _readonly(a: np.ndarray, dtype: Any) -> np.ndarray:
 class _Arrays:
     """What differs between searches on base costs and on a live cost version."""
 
-    cost: np.ndarray
+    cost: np.ndarray  #: per kernel edge (arc)
+    road_cost: np.ndarray  #: per road edge (partial edges at the ends)
     lm: np.ndarray
     tree_to: np.ndarray
     tree_from: np.ndarray
@@ -217,20 +228,29 @@ class Planner:
         (and a greedy first route instead of the instant one).
     active_landmarks : int
         Landmarks evaluated per node (the best for each query's origin and destination).
+
+    A graph with turn restrictions is searched as its search graph of legal drives
+    (``planner.turns``, built once per graph by ``planner.endpoints.search_graph_for``); its
+    landmarks must then be built on that graph (``planner.endpoints.planning_graph``).
     """
 
     def __init__(
         self, graph: RoadGraph, landmarks: Any = None, active_landmarks: int = ACTIVE_LANDMARKS
     ) -> None:
         self.graph = graph
-        n = graph.n_nodes
+        self.search_graph, kg = search_graph_for(graph)
+        #: the graph the kernel searches: ``graph`` itself, or one node per search state
+        self.kernel_graph = kg
+        n = kg.n_nodes
         self.n_nodes = n
-        self._indptr = _readonly(graph.indptr, np.int64)
-        self._head = _readonly(graph.head, np.int32)
-        self._cost = _readonly(graph.travel_time_s, np.float64)
-        coords, self._gc_margin = K.node_coords(graph.lat, graph.lon)
+        self._indptr = _readonly(kg.indptr, np.int64)
+        self._head = _readonly(kg.head, np.int32)
+        self._cost = _readonly(kg.travel_time_s, np.float64)
+        self._road_cost = _readonly(graph.travel_time_s, np.float64)
+        xyz, self._gc_margin, self._centre = K.sphere_points(kg.lat, kg.lon)
+        coords = np.ascontiguousarray(xyz, dtype=np.float32)
         self._coords = _readonly(coords if n else np.zeros((1, 3)), np.float32)
-        self._component = np.asarray(graph.component)
+        self._component = np.asarray(kg.component)
         self._gc_scale = (1.0 - 1e-9) / float(graph.max_speed_mps)
         self._lm_unit = 0.0
         if landmarks is None:
@@ -242,7 +262,7 @@ class Planner:
         else:
             check_graph = getattr(landmarks, "check_graph", None)
             if check_graph is not None:  # landmarks of another graph give wrong bounds
-                check_graph(graph)
+                check_graph(kg)
             lm = np.asarray(landmarks.lm)
             if lm.ndim != 3 or lm.shape[0] != n or lm.shape[2] != 2:
                 raise InvalidRequest(
@@ -271,6 +291,7 @@ class Planner:
         self.active_landmarks = min(int(active_landmarks), self.n_landmarks)
         self._arrays = _Arrays(
             cost=self._cost,
+            road_cost=self._road_cost,
             lm=self._lm,
             tree_to=self._tree_to,
             tree_from=self._tree_from,
@@ -290,6 +311,9 @@ class Planner:
         t[K.F_RUNAWAY_MIN] = RUNAWAY_MIN
         self._ftemplate = t
         self._entry: dict[str, Any] = {}  # compiled entry points (see _call)
+        # arc costs of recent cost versions (turn rules: one gather per version, not per query)
+        self._version_arrays: dict[int, tuple[Any, _Arrays]] = {}
+        self._version_lock = threading.Lock()
         self._dag: tuple[np.ndarray, np.ndarray] | None = None
         self._dag_lock = threading.Lock()
         self._pool: list[_Workspace] = []
@@ -301,8 +325,8 @@ class Planner:
             if self._dag is None:
                 comp = self._component.astype(np.int64)
                 n_comp = int(comp.max()) + 1 if comp.size else 1
-                tail_c = comp[np.asarray(self.graph.tail, dtype=np.int64)]
-                head_c = comp[np.asarray(self.graph.head, dtype=np.int64)]
+                tail_c = comp[np.asarray(self.kernel_graph.tail, dtype=np.int64)]
+                head_c = comp[np.asarray(self.kernel_graph.head, dtype=np.int64)]
                 keep = tail_c != head_c
                 pairs = np.unique(np.stack((tail_c[keep], head_c[keep]), axis=1), axis=0)
                 dindptr = np.zeros(n_comp + 1, dtype=np.int64)
@@ -328,29 +352,53 @@ class Planner:
         return int(_call(K.run, self._entry, "run", args))
 
     def _open_query(
-        self, ws: _Workspace, arrays: _Arrays | None = None
-    ) -> tuple[int, float, float]:
+        self,
+        ws: _Workspace,
+        arrays: _Arrays | None = None,
+        src_node: np.ndarray | None = None,
+        src_g: np.ndarray | None = None,
+    ) -> tuple[int, float, float, int, int]:
         a = self._arrays if arrays is None else arrays
         args: tuple[Any, ...] = (self._indptr, self._head, a.cost, self._coords, a.lm)
         args += (a.lm_nodes, a.tree_to, a.tree_from, ws.state, ws.heap, ws.istate, ws.fstate)
-        args += (ws.src_node, ws.src_g, ws.route_buf)
-        count, cost, h_start = _call(K.open_query, self._entry, "open_query", args)
-        return int(count), float(cost), float(h_start)
+        args += (
+            ws.src_node if src_node is None else src_node,
+            ws.src_g if src_g is None else src_g,
+            ws.route_buf,
+        )
+        count, cost, h_start, src_i, tgt_i = _call(K.open_query, self._entry, "open_query", args)
+        return int(count), float(cost), float(h_start), int(src_i), int(tgt_i)
 
     def arrays_for(self, costs: Any) -> _Arrays:
         """The cost and landmark arrays a search on live ``costs`` uses (``planner.traffic``
         ``CostVersion``), with the scalars that keep its bound proven: the chord bound at the
         version's top speed (used whenever the ALT term is weakened), the landmarks rebuilt for
         the version if it has them, and the landmark slack plus the version's total saving R
-        (see ``planner/traffic.py``)."""
+        (see ``planner/traffic.py``). Under turn rules the arc costs are the road costs
+        gathered onto the arcs plus the turn costs, computed once per version."""
         if costs is None:
             return self._arrays
-        cost = _readonly(costs.travel_time_s, np.float64)
-        if cost.shape != self._cost.shape:
+        key = id(costs)
+        with self._version_lock:
+            hit = self._version_arrays.get(key)
+            if hit is not None and hit[0] is costs:
+                return hit[1]
+        arrays = self._arrays_for(costs)
+        with self._version_lock:
+            if len(self._version_arrays) >= 8:  # a few recent versions are all that run
+                self._version_arrays.pop(next(iter(self._version_arrays)))
+            self._version_arrays[key] = (costs, arrays)  # holding it keeps the id unique
+        return arrays
+
+    def _arrays_for(self, costs: Any) -> _Arrays:
+        road = _readonly(costs.travel_time_s, np.float64)
+        if road.shape != self._road_cost.shape:
             raise InvalidRequest(
-                f"cost version {getattr(costs, 'version', '?')} has {cost.shape[0]} edge costs; "
-                f"this graph has {self._cost.shape[0]} edges"
+                f"cost version {getattr(costs, 'version', '?')} has {road.shape[0]} edge costs; "
+                f"this graph has {self._road_cost.shape[0]} edges"
             )
+        sg = self.search_graph
+        cost = road if sg.identity else _readonly(sg.arc_costs(road), np.float64)
         lms = getattr(costs, "landmarks", None)
         if lms is not None and self.n_landmarks:
             if np.asarray(lms.lm).shape != self._lm.shape:
@@ -369,6 +417,7 @@ class Planner:
         chord = self.use_chord or extra > 0.0
         return _Arrays(
             cost=cost,
+            road_cost=road,
             lm=lm,
             tree_to=tree_to,
             tree_from=tree_from,
@@ -387,8 +436,8 @@ class Planner:
 
     def start(
         self,
-        origin: int,
-        destination: int,
+        origin: int | RoadSnap,
+        destination: int | RoadSnap,
         deadline_ms: float | None = None,
         budget_expansions: int | None = None,
         steps: int = DEFAULT_STEPS,
@@ -402,8 +451,10 @@ class Planner:
 
         Parameters
         ----------
-        origin, destination : int
-            Node indices (``NodeNotFound`` when outside ``0..n_nodes-1``).
+        origin, destination : int or planner.snap.RoadSnap
+            Road node indices (``NodeNotFound`` when outside ``0..n_nodes-1``), or points
+            snapped onto roads (``planner.snap.snap_to_road``): the route then starts and ends
+            at the points, with the partial edges' costs.
         deadline_ms : float, optional
             Wall-clock contract, counted from ``started_at``; ``0 < deadline_ms <= 60000``.
         budget_expansions : int, optional
@@ -426,8 +477,9 @@ class Planner:
         """
         t_arrival = time.perf_counter() if started_at is None else float(started_at)
         g = self.graph
-        origin = g.check_node(origin)
-        destination = g.check_node(destination)
+        origin = origin if isinstance(origin, RoadSnap) else g.check_node(origin)
+        if not isinstance(destination, RoadSnap):
+            destination = g.check_node(destination)
         deadline_ms, budget_expansions, steps = validate_contract(
             deadline_ms, budget_expansions, steps
         )
@@ -570,8 +622,8 @@ class Search:
     def __init__(
         self,
         planner: Planner,
-        origin: int,
-        destination: int,
+        origin: int | RoadSnap,
+        destination: int | RoadSnap,
         *,
         deadline_ms: float | None,
         budget_expansions: int | None,
@@ -618,6 +670,8 @@ class Search:
         self._stopped_by = "proof"
         self._route: np.ndarray | None = None
         self._route_edges: np.ndarray | None = None
+        self._road: RoadRoute | None = None
+        self._ends: Ends | None = None
         self._cost: float | None = None
         self._instant_cost: float | None = None
         #: kernel improvement count whose route self._route holds (0: the instant route)
@@ -641,22 +695,31 @@ class Search:
         v[_V_WEIGHT] = 1.0
         v[_V_LEFT] = -1.0
 
-        comp = planner._component
-        if origin == destination:
-            self._route = np.array([origin], dtype=np.int64)
-            self._route_edges = np.zeros(0, dtype=np.int64)
-            self._set_cost(0.0)
-            self._finish("optimal", "proof")
-            return
-        if costs is not None and getattr(costs, "component", None) is not None:
-            unreachable = not costs.may_reach(origin, destination)
+        if isinstance(origin, int) and isinstance(destination, int):
+            if origin == destination:
+                self._set_route(
+                    RoadRoute(
+                        np.array([origin], dtype=np.int64),
+                        np.zeros(0, dtype=np.int64),
+                        None,
+                        None,
+                        0.0,
+                    )
+                )
+                self._finish("optimal", "proof")
+                return
+            fast = planner.search_graph.identity
         else:
-            unreachable = comp[origin] != comp[destination] and not _reachable_by_labels(
-                planner, origin, destination
-            )
-        if unreachable:
-            self._finish("no_route", "unreachable")
-            return
+            fast = False
+        if fast:
+            if self._unreachable_nodes(int(origin), int(destination)):  # type: ignore[arg-type]
+                self._finish("no_route", "unreachable")
+                return
+        else:
+            self._ends = resolve(planner.search_graph, self._arrays.road_cost, origin, destination)
+            if self._ends_unreachable(self._ends):
+                self._finish("no_route", "unreachable")
+                return
         ws = planner._acquire()
         self._ws = ws
         self._open(ws, origin, destination)
@@ -668,11 +731,47 @@ class Search:
             self._ws = None
             self.planner._release(ws)
 
+    def _unreachable_nodes(self, origin: int, destination: int) -> bool:
+        planner = self.planner
+        costs = self.costs
+        if costs is not None and getattr(costs, "component", None) is not None:
+            return not costs.may_reach(origin, destination)
+        comp = planner._component
+        return bool(comp[origin] != comp[destination]) and not _reachable_by_labels(
+            planner, origin, destination
+        )
+
+    def _ends_unreachable(self, ends: Ends) -> bool:
+        if ends.directs:
+            return False
+        if not ends.sources or not ends.targets:
+            return True
+        planner = self.planner
+        costs = self.costs
+        road = np.asarray(planner.search_graph.node_road)
+        for src in ends.sources:
+            for tg in ends.targets:
+                if costs is not None and getattr(costs, "component", None) is not None:
+                    if costs.may_reach(int(road[src.state]), int(road[tg.state])):
+                        return False
+                elif not self._unreachable_kernel(src.state, tg.state):
+                    return False
+        return True
+
+    def _unreachable_kernel(self, a: int, b: int) -> bool:
+        comp = self.planner._component
+        return bool(comp[a] != comp[b]) and not _reachable_by_labels(self.planner, a, b)
+
     def _set_cost(self, cost: float) -> None:
         self._cost = cost
         self._v[_V_INCUMBENT] = cost
 
-    def _open(self, ws: _Workspace, origin: int, destination: int) -> None:
+    def _set_route(self, rr: RoadRoute) -> None:
+        self._road = rr
+        self._route, self._route_edges = rr.nodes, rr.edges
+        self._set_cost(rr.cost_s)
+
+    def _open(self, ws: _Workspace, origin: Any, destination: Any) -> None:
         planner = self.planner
         ist, fst = ws.istate, ws.fstate
         ist[: K.I_TLM] = 0
@@ -685,34 +784,80 @@ class Search:
         ist[K.I_GEN] = ws.next_generations(K.INSTANT_GENERATIONS + 1)
         ist[K.I_MODE] = self._mode_code
         fst[K.F_GAP_TARGET] = self.gap_target
-        ist[K.I_TNODE] = destination  # I_N_TARGETS = 0: the kernel fills in the target
-        ws.src_node[0] = origin
         ist[K.I_N_ACTIVE] = planner.active_landmarks
-        count, instant_cost, h_start = planner._open_query(ws, arrays)
-        h_start = float(h_start)
+        ends = self._ends
+        if ends is None:  # a node to a node on the road graph: the kernel fills in the target
+            ist[K.I_TNODE] = destination
+            ws.src_node[0] = origin
+            ws.src_g[0] = 0.0
+            src_node, src_g = ws.src_node, ws.src_g
+        else:
+            src_node, src_g = self._set_ends(ws, ends)
+        count, instant_cost, h_start, src_i, tgt_i = planner._open_query(
+            ws, arrays, src_node, src_g
+        )
         v = self._v
         v[_V_H_START] = h_start
         if math.isfinite(h_start):
             v[_V_BOUND] = h_start
         if count >= 0 and not math.isfinite(instant_cost):
             count = -1  # the trees' route uses a closed edge (live costs): no instant route
-        if ist[K.I_SIZE] == 0 and count < 0:  # nothing to search and no route
-            self._finish("no_route", "unreachable")
-            return
+        best: RoadRoute | None = None
         if count >= 0:
-            edges = ws.route_buf[:count].copy()
-            nodes = np.empty(count + 1, dtype=np.int64)
-            nodes[0] = origin
-            nodes[1:] = planner._head[edges]
-            self._install_instant(nodes, edges, instant_cost)
+            arcs = ws.route_buf[:count].copy()
+            states = np.empty(count + 1, dtype=np.int64)
+            states[0] = src_node[src_i]
+            states[1:] = planner._head[arcs]
+            best = self._road_route(states, arcs, max(src_i, 0), max(tgt_i, 0))
+        if ends is not None:
+            for d in ends.directs:
+                if best is None or d.cost < best.cost_s:
+                    best = direct_route(ends, d)
+        if best is not None:
+            self._install_instant(best)
+        elif ist[K.I_SIZE] == 0:  # nothing to search and no route
+            self._finish("no_route", "unreachable")
         else:
             # no tree connects the pair: search greedily (ANA*'s order) until a first route
             self._greedy_first = True
             ist[K.I_MODE] = K.MODE_ANA
 
-    def _install_instant(self, nodes: np.ndarray, edges: np.ndarray, cost: float) -> None:
-        self._route, self._route_edges = nodes, edges
-        self._set_cost(cost)
+    def _set_ends(self, ws: _Workspace, ends: Ends) -> tuple[np.ndarray, np.ndarray]:
+        """Write the target table, the target's position and landmark row; the sources."""
+        planner = self.planner
+        ist, fst = ws.istate, ws.fstate
+        ist[K.I_N_TARGETS] = len(ends.targets)
+        for k, tg in enumerate(ends.targets):
+            ist[K.I_TNODE + k] = tg.state
+            ist[K.I_TKIND + k] = tg.kind
+            ist[K.I_TEDGE + k] = tg.arc
+            fst[K.F_TCOST + k] = tg.exit_cost
+        xyz, _, _ = K.sphere_points(
+            np.array([ends.target_lat]), np.array([ends.target_lon]), planner._centre
+        )
+        fst[K.F_T_X : K.F_T_Z + 1] = np.asarray(xyz[0], dtype=np.float32)
+        a = self._arrays
+        n_lm = planner.n_landmarks
+        if n_lm:
+            ist[K.I_TLM : K.I_TLM + 2 * n_lm] = target_row(a.lm, a.lm_unit, ends.targets)
+        src_node = np.array([src.state for src in ends.sources], dtype=np.int64)
+        src_g = np.array([src.g0 for src in ends.sources], dtype=np.float64)
+        return src_node, src_g
+
+    def _road_route(self, states: np.ndarray, arcs: np.ndarray, src: int, tgt: int) -> RoadRoute:
+        """A kernel path (from source ``src`` to target ``tgt``) as a road route."""
+        a = self._arrays
+        ends = self._ends
+        if ends is None:
+            cost = float(np.sum(a.cost[arcs]))
+            return RoadRoute(states, arcs, None, None, cost)
+        return assemble(
+            self.planner.search_graph, ends, states, arcs, a.cost, a.road_cost, src, tgt
+        )
+
+    def _install_instant(self, rr: RoadRoute) -> None:
+        cost = rr.cost_s
+        self._set_route(rr)
         self._instant_cost = cost
         ws = self._ws
         assert ws is not None
@@ -839,12 +984,18 @@ class Search:
             bound = None
         elif status == "optimal" and cost is not None:
             bound = cost
+        rr = self._road
+        o, d = self.origin, self.destination
         return PlanResult(
             status=status,
-            origin=self.origin,
-            destination=self.destination,
+            origin=None if isinstance(o, RoadSnap) else int(o),
+            destination=None if isinstance(d, RoadSnap) else int(d),
             route=self._route,
             route_edges=self._route_edges,
+            route_start=None if rr is None else rr.start,
+            route_end=None if rr is None else rr.end,
+            origin_snap=o if isinstance(o, RoadSnap) else None,
+            destination_snap=d if isinstance(d, RoadSnap) else None,
             cost_s=cost,
             lower_bound_s=bound,
             gap=None if cost is None or bound is None else gap_of(cost, bound),
@@ -962,16 +1113,21 @@ class Search:
         if best < 0 or found == self._route_read:
             return
         planner = self.planner
-        nodes, edges = K.extract_route(ws.state, best, planner.n_nodes)
-        if nodes.shape[0] == 0:  # cannot happen: parent pointers always lead back
+        states, arcs = K.extract_route(ws.state, best, planner.n_nodes)
+        if states.shape[0] == 0:  # cannot happen: parent pointers always lead back
             raise RuntimeError("internal error: route extraction failed")
-        cost = float(np.sum(self._arrays.cost[edges]))
-        self._route, self._route_edges = nodes, edges
-        self._set_cost(cost)
+        src = 0
+        ends = self._ends
+        if ends is not None:  # the source the path starts from (the cheapest of equal ones)
+            first = int(states[0])
+            cands = [i for i, x in enumerate(ends.sources) if x.state == first]
+            src = min(cands, key=lambda i: ends.sources[i].g0) if cands else 0
+        rr = self._road_route(states, arcs, src, max(0, int(ws.istate[K.I_BEST_TARGET])))
+        self._set_route(rr)
         self._route_read = found
         self._v[_V_INSTANT] = 0.0
-        if cost < ws.fstate[K.F_INCUMBENT]:
-            ws.fstate[K.F_INCUMBENT] = cost  # prune with the real route cost
+        if rr.cost_s < ws.fstate[K.F_INCUMBENT]:
+            ws.fstate[K.F_INCUMBENT] = rr.cost_s  # prune with the real route cost
 
     def _on_improved(self, ws: _Workspace) -> None:
         self._route_from_kernel(ws)
@@ -1101,8 +1257,8 @@ def planner_for(graph_or_planner: RoadGraph | Planner) -> Planner:
 
 def plan(
     graph_or_planner: RoadGraph | Planner,
-    origin: int,
-    destination: int,
+    origin: int | RoadSnap,
+    destination: int | RoadSnap,
     *,
     deadline_ms: float | None = None,
     budget_expansions: int | None = None,
@@ -1120,8 +1276,8 @@ def plan(
     Parameters
     ----------
     graph_or_planner : RoadGraph or Planner
-    origin, destination : int
-        Node indices.
+    origin, destination : int or planner.snap.RoadSnap
+        Road node indices or points snapped onto roads.
     deadline_ms, budget_expansions : optional
         The contract (at most one; see the module docstring when neither is given).
     controller : str or Controller

@@ -85,8 +85,8 @@ def register(sub: Any) -> argparse.ArgumentParser:
     return p
 
 
-def parse_endpoint(graph: Any, text: str, what: str) -> int:
-    """A node index, or ``LAT,LON`` snapped to the nearest road node."""
+def parse_endpoint(graph: Any, text: str, what: str) -> Any:
+    """A node index, or ``LAT,LON`` snapped to the nearest point on a road."""
     raw = text.strip()
     if "," in raw:
         parts = raw.split(",")
@@ -98,7 +98,9 @@ def parse_endpoint(graph: Any, text: str, what: str) -> int:
             raise InvalidRequest(
                 f"--{what} {text!r}: expected a node index or LAT,LON in degrees (e.g. 48.1,11.5)"
             ) from None
-        return int(graph.snap(lat, lon))
+        from dueroute.planner.snap import snap_to_road
+
+        return snap_to_road(graph, lat, lon)
     try:
         node = int(raw)
     except ValueError:
@@ -204,8 +206,15 @@ def _fmt_s(x: float | None) -> str:
     return f"{x:,.1f} s"
 
 
+def _end(d: dict[str, Any], which: str) -> str:
+    point = d.get(f"{which}_point")
+    if point is None:
+        return str(d[f"{which}_node"])
+    return f"({point['lat']:.6f}, {point['lon']:.6f}; {point['distance_m']:.0f} m off)"
+
+
 def _format(d: dict[str, Any]) -> str:
-    head = f"{d['origin_node']} -> {d['destination_node']}: {d['status']}"
+    head = f"{_end(d, 'origin')} -> {_end(d, 'destination')}: {d['status']}"
     if d["cost_s"] is None:
         return f"{head}; {d['expansions']:,} expansions in {d['elapsed_ms']:.2f} ms"
     nodes = d["node_indices"] or []

@@ -55,7 +55,8 @@ def test_route_single_query_json(graph_file, capsys) -> None:
 
 
 def test_route_queries_csv_and_coordinates(graph_file, tmp_path, capsys) -> None:
-    """A queries CSV gives one JSON line per query; LAT,LON endpoints snap to the nearest node."""
+    """A queries CSV gives one JSON line per query; a LAT,LON endpoint snaps onto the nearest
+    road (here exactly onto node 7: a route of cost 0 to it)."""
     path, g = graph_file
     q = tmp_path / "q.csv"
     q.write_text("origin,destination\n0,143\n5,5\n\n17,100\n")
@@ -72,7 +73,8 @@ def test_route_queries_csv_and_coordinates(graph_file, tmp_path, capsys) -> None
         main(["route", str(path), "--from", f"{lat},{lon}", "--to", "7", "--deadline-ms", "50"])
         == 0
     )
-    assert "7 -> 7: optimal" in capsys.readouterr().out
+    out = capsys.readouterr().out
+    assert "0 m off) -> 7: optimal; cost 0" in out
 
 
 @pytest.mark.parametrize(
