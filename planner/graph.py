@@ -281,6 +281,11 @@ class RoadGraph:
             "max_speed_kph": float(np.max(self.speed_kph)) if self.n_edges else None,
             "edges_by_class": {c: int(k) for c, k in zip(classes, counts, strict=False) if k},
             "edges_with_tagged_speed": int(np.sum(np.asarray(self.speed_source) == 0)),
+            "turn_restrictions": {
+                "in_graph": self.n_restrictions,
+                "no": int(np.sum(np.asarray(self.turn_kind) == TURN_NO)),
+                "only": int(np.sum(np.asarray(self.turn_kind) == TURN_ONLY)),
+            },
             "fingerprint": self.fingerprint,
             "meta": {k: v for k, v in self.meta.items() if k != "road_classes"},
         }
