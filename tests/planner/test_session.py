@@ -5,7 +5,6 @@ from __future__ import annotations
 import math
 import threading
 import time
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -16,9 +15,9 @@ from scipy.sparse.csgraph import dijkstra
 from dueroute.planner.errors import InvalidRequest, NodeNotFound
 from dueroute.planner.graph import build_graph, great_circle_m
 from dueroute.planner.session import Improvement, Planner, PlanResult, plan
+from tests.conftest import OSM_DIR
 from tests.planner.test_kernel import exact_landmarks, grid_graph, random_graph
 
-OSM_DIR = Path(__file__).resolve().parents[3] / "shared" / "data" / "osm"
 REL = 1e-9
 
 
