@@ -323,10 +323,8 @@ def compile_ways(
     endpoint = _endpoints(tail, head, n_all, keep_nodes)
 
     # 5. chains, over the raw segments in CSR order by tail
-    csr = np.argsort(tail, kind="stable")
-    out_deg = np.bincount(tail, minlength=n_all)
-    ptr = np.zeros(n_all + 1, dtype=np.int64)
-    np.cumsum(out_deg, out=ptr[1:])
+    csr, ptr = _order_by_tail(tail, n_all)
+    out_deg = np.diff(ptr)
     c_head, c_len, c_way = head[csr], raw_len[csr], raw_way[csr]
     del head, raw_len, raw_way, csr
     starts = np.flatnonzero(endpoint).astype(np.int64)
@@ -485,27 +483,76 @@ def _drop_rings(
     return alive & ~ring, int(np.sum(ring[tail]))
 
 
+@njit(cache=True, nogil=True)
+def _through_nodes(tail, head, n):  # pragma: no cover - numba
+    """bool[n]: nodes that fail every endpoint rule of osmnx (no self-loop, segments in and
+    out, exactly two neighbours with degree 2 or 4), in O(segments)."""
+    m = tail.shape[0]
+    out_deg = np.zeros(n, np.int64)
+    in_deg = np.zeros(n, np.int64)
+    for e in range(m):
+        out_deg[tail[e]] += 1
+        in_deg[head[e]] += 1
+    start = np.zeros(n + 1, np.int64)
+    for v in range(n):
+        start[v + 1] = start[v] + out_deg[v] + in_deg[v]
+    fill = start[:-1].copy()
+    neighbour = np.empty(2 * m, tail.dtype)
+    for e in range(m):
+        t, h = tail[e], head[e]
+        neighbour[fill[t]] = h
+        fill[t] += 1
+        neighbour[fill[h]] = t
+        fill[h] += 1
+    through = np.zeros(n, np.bool_)
+    for v in range(n):
+        d = out_deg[v] + in_deg[v]
+        if (d != 2 and d != 4) or out_deg[v] == 0 or in_deg[v] == 0:
+            continue
+        a = neighbour[start[v]]
+        b = -1
+        ok = True
+        for j in range(start[v], start[v + 1]):
+            x = neighbour[j]
+            if x == v:
+                ok = False  # a self-loop
+                break
+            if x != a:
+                if b == -1:
+                    b = x
+                elif x != b:
+                    ok = False  # a third neighbour
+                    break
+        through[v] = ok and b != -1 and a != v
+    return through
+
+
+@njit(cache=True, nogil=True)
+def _order_by_tail(tail, n):  # pragma: no cover - numba
+    """Stable counting sort of segments by tail: ``(order, ptr)`` of the CSR."""
+    m = tail.shape[0]
+    ptr = np.zeros(n + 1, np.int64)
+    for e in range(m):
+        ptr[tail[e] + 1] += 1
+    for v in range(n):
+        ptr[v + 1] += ptr[v]
+    fill = ptr[:-1].copy()
+    order = np.empty(m, np.int64)
+    for e in range(m):
+        order[fill[tail[e]]] = e
+        fill[tail[e]] += 1
+    return order, ptr
+
+
 def _endpoints(
     tail: np.ndarray, head: np.ndarray, n_nodes: int, keep_nodes: np.ndarray | None
 ) -> np.ndarray:
-    """Step 4: bool[n] graph nodes by osmnx's endpoint rule (plus ``keep_nodes``)."""
-    out_deg = np.bincount(tail, minlength=n_nodes)
-    in_deg = np.bincount(head, minlength=n_nodes)
-    t64, h64 = tail.astype(np.int64), head.astype(np.int64)
-    pair = unique_sorted(np.minimum(t64, h64) * np.int64(n_nodes) + np.maximum(t64, h64))
-    del t64, h64
-    lo, hi = pair // n_nodes, pair % n_nodes
-    n_neigh = np.bincount(lo, minlength=n_nodes) + np.bincount(hi, minlength=n_nodes)
-    n_neigh -= np.bincount(lo[lo == hi], minlength=n_nodes)  # a self-pair counted twice
-    self_loop = np.zeros(n_nodes, dtype=bool)
-    self_loop[lo[lo == hi]] = True
-    deg = out_deg + in_deg
-    endpoint = (
-        self_loop | (out_deg == 0) | (in_deg == 0) | ~((n_neigh == 2) & ((deg == 2) | (deg == 4)))
-    )
+    """Step 4: bool[n] graph nodes by osmnx's endpoint rule (plus ``keep_nodes``); nodes
+    without segments are not graph nodes."""
+    endpoint = ~_through_nodes(tail, head, n_nodes)
     if keep_nodes is not None:
         endpoint |= np.asarray(keep_nodes, dtype=bool)
-    endpoint &= deg > 0
+    endpoint &= (np.bincount(tail, minlength=n_nodes) + np.bincount(head, minlength=n_nodes)) > 0
     return endpoint
 
 
@@ -547,7 +594,9 @@ def component_filter(
             f"unknown component rule {rule!r}; allowed: {', '.join(COMPONENT_RULES)}"
         )
     m = int(tail.shape[0])
-    adj = csr_matrix((np.ones(m, dtype=np.int8), (tail, head)), shape=(n, n))
+    order, ptr = _order_by_tail(np.asarray(tail), n)
+    adj = csr_matrix((np.ones(m, dtype=np.int8), np.asarray(head)[order], ptr), shape=(n, n))
+    del order
     n_comp, labels = connected_components(adj, directed=True, connection="strong")
     sizes = np.bincount(labels, minlength=n_comp) if n else np.zeros(0, dtype=np.int64)
     report: dict[str, Any] = {"components": int(n_comp), "rule": rule}

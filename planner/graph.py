@@ -414,7 +414,9 @@ def build_graph(
     rank[perm] = np.arange(n)
     tail, head = rank[tail], rank[head]
 
-    order = np.lexsort((head, tail))  # CSR order: by tail, then head
+    # CSR order: by tail, then head, input order among parallel edges (one stable sort of a
+    # combined key: the same order as lexsort((head, tail)), in less time)
+    order = np.argsort(tail * np.int64(max(n, 1)) + head, kind="stable")
     counts = np.bincount(tail, minlength=n)
     indptr = np.zeros(n + 1, dtype=np.int64)
     np.cumsum(counts, out=indptr[1:])

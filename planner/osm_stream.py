@@ -31,6 +31,7 @@ segments are kept; ``meta["clipped"]`` counts the missing nodes and the ways cut
 
 from __future__ import annotations
 
+import contextlib
 import io
 import re
 import tempfile
@@ -109,10 +110,13 @@ def _apply(source: Path, kind: str, compression: str | None, entities: Any, *han
     writer = handlers[-1]
     try:
         osmium.apply(osmium.io.Reader(_file(source, kind, compression), entities), *handlers)
-    except (RuntimeError, ValueError, OSError) as exc:
-        raise NotAMapFile(f"{source}: cannot parse the {KIND_NAME[kind]} ({exc})") from exc
-    finally:
         writer.close()
+    except (RuntimeError, ValueError, OSError) as exc:
+        with contextlib.suppress(RuntimeError, OSError):
+            writer.close()
+        if isinstance(exc, OSError) or "write" in str(exc).lower():
+            raise InvalidRequest(f"cannot write the importer's scratch files ({exc})") from exc
+        raise NotAMapFile(f"{source}: cannot parse the {KIND_NAME[kind]} ({exc})") from exc
 
 
 def _blocks(path: Path) -> Iterator[bytes]:
@@ -454,7 +458,12 @@ def import_osm(
             "(dueroute graph import --importer osmnx)"
         )
     step = on_step or (lambda _: None)
-    with tempfile.TemporaryDirectory(dir=work_dir, prefix="dueroute-import-") as tmp:
+    try:
+        scratch_dir = tempfile.TemporaryDirectory(dir=work_dir, prefix="dueroute-import-")
+    except OSError as exc:
+        where = work_dir if work_dir is not None else tempfile.gettempdir()
+        raise InvalidRequest(f"cannot create scratch files in {where}: {exc}") from exc
+    with scratch_dir as tmp:
         scratch = Path(tmp)
         step("reading ways")
         src = read_ways(path, kind, compression, scratch)

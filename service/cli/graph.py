@@ -144,6 +144,10 @@ def cmd_import(args: argparse.Namespace) -> int:
         )
     kind, _ = sniff(source)
     importer = choose_importer(kind, args.importer)
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InvalidRequest(f"cannot write {out}: {exc.strerror or exc}") from exc
     started = time.perf_counter()
     steps = IMPORT_STEPS[importer]
     with progress(total=len(steps) + 1, desc="graph import", unit="step", disable=None) as bar:

@@ -18,9 +18,12 @@ def test_bench_import_json_smoke(
     osmnx imports of the same XML are the same graph (fingerprint), and so are the PBF and XML
     imports; the targets are judged on the measured run."""
     monkeypatch.setenv("DUEROUTE_DATA_DIR", str(tmp_path))
-    assert main(["bench", "import", "--size", "tiny", "--reference-size", "tiny", "--json"]) == 0
+    argv = ["bench", "import", "--size", "tiny", "--reference-size", "tiny", "--repeat", "2"]
+    assert main([*argv, "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
     runs = report["runs"]
+    assert len(runs[0]["nodes_per_s_all"]) == 2 and runs[0]["same_graph_every_repeat"]
+    assert runs[0]["nodes_per_s"] == max(runs[0]["nodes_per_s_all"])
     assert [(r["importer"], r["format"]) for r in runs] == [
         ("osmium", "pbf"),
         ("osmium", "pbf"),
@@ -39,3 +42,4 @@ def test_bench_import_json_smoke(
     assert "target peak memory per output node" in text and "ru_maxrss" in text
     assert "same graph (fingerprint): yes" in text
     assert main(["bench", "import", "--seed", "-1"]) == 2
+    assert main(["bench", "import", "--repeat", "0"]) == 2
