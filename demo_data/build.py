@@ -2,10 +2,12 @@
 
 ``demo_graph_path("demo")`` returns the path of a compiled ``.npz`` graph, building it the
 first time: generate the region (:mod:`demo_data.generate`), write it as OSM XML, import that
-through the same osmnx path as real data (:func:`planner.osm_import.import_map`), save.
-The ``large`` size skips the XML: :func:`compile_region` compiles the generated ways directly
-with the same drivable filter, the same one-way rules, the same node simplification rule as
-osmnx and the same tags-to-speed rules (:func:`planner.speeds.edge_speed`).
+through the same streaming importer as real data (:func:`planner.osm_stream.import_osm`,
+every component kept: the generated region is complete, and its one-way dead ends are part
+of the design), save. The ``large`` size skips the file: :func:`compile_region` hands the
+generated ways to the importer's own compile step (:func:`planner.compile_ways.
+compile_ways`). Both give the graph the osmnx importer gives (tests check it bit for bit on
+``tiny``; on ``demo`` it has the fingerprint the shipped policy was trained on).
 
 Cache
 -----
@@ -46,7 +48,6 @@ from dueroute.planner.errors import InvalidRequest
 from dueroute.planner.graph import (
     FORMAT_VERSION,
     RoadGraph,
-    build_graph,
     great_circle_m,
     save_graph,
 )
@@ -54,7 +55,7 @@ from dueroute.planner.graph import (
 #: Environment variable naming the cache directory.
 DATA_DIR_ENV = "DUEROUTE_DATA_DIR"
 
-#: Sizes built through OSM XML + osmnx; larger ones are compiled directly.
+#: Sizes built through OSM XML + the streaming importer; larger ones are compiled directly.
 OSM_SIZES = ("tiny", "demo")
 
 
@@ -157,7 +158,7 @@ def build_demo_graph(
 ) -> RoadGraph:
     """Generate and compile one size of the demo region (not cached; see demo_graph_path).
 
-    ``tiny`` and ``demo`` go through OSM XML and :func:`planner.osm_import.import_map`;
+    ``tiny`` and ``demo`` go through OSM XML and :func:`planner.osm_stream.import_osm`;
     other sizes through :func:`compile_region`. ``meta`` gains ``generator`` (size, seed,
     version, scenario digest, timings) and ``places`` (name, kind, lat, lon and the node of
     the largest strongly connected component nearest to each place centre).
@@ -166,7 +167,7 @@ def build_demo_graph(
 
     timings: dict[str, float] = {}
     via_osm = size in OSM_SIZES
-    steps = ["generate", "write OSM XML", "import with osmnx"] if via_osm else ["generate"]
+    steps = ["generate", "write OSM XML", "import"] if via_osm else ["generate"]
     steps.append("compile" if not via_osm else "locate places")
     bar = tqdm(total=len(steps), desc=f"demo region '{size}'", disable=not progress, unit="step")
     try:
@@ -177,7 +178,7 @@ def build_demo_graph(
         timings["generate_s"] = time.perf_counter() - t0
         bar.update(1)
         if via_osm:
-            from dueroute.planner.osm_import import import_map
+            from dueroute.planner.osm_stream import import_osm
 
             with tempfile.TemporaryDirectory(dir=work_dir, prefix="demo-build-") as tmp:
                 xml = Path(tmp) / f"{size}.osm"
@@ -187,8 +188,8 @@ def build_demo_graph(
                 timings["write_osm_s"] = time.perf_counter() - t0
                 bar.update(1)
                 t0 = time.perf_counter()
-                bar.set_postfix_str(steps[2] + " (the slow step)")
-                graph = import_map(xml, name=region.name)
+                bar.set_postfix_str(steps[2])
+                graph = import_osm(xml, name=region.name, components="all", work_dir=tmp)
                 timings["import_s"] = time.perf_counter() - t0
                 bar.update(1)
             source = {"source": f"demo_data generator ({size}) via OSM XML", "osm_bytes": xml_bytes}
@@ -257,173 +258,69 @@ def place_nodes(graph: RoadGraph) -> dict[str, int]:
 
 
 # --------------------------------------------------------------------------------------------
-# Direct compile (no XML, no osmnx) for sizes too big for a networkx graph in memory
-
-#: ``oneway`` values meaning one-way, and the subset meaning "against the node order"
-#: (the values osmnx 2 uses, see ``osmnx.graph._add_paths``).
-_ONEWAY_VALUES = frozenset({"yes", "true", "1", "-1", "reverse", "T", "F"})
-_REVERSED_VALUES = frozenset({"-1", "reverse", "T"})
+# Direct compile (no map file) for sizes too big to write and read back in a test
 
 
 def compile_region(
     region: RegionMap, *, spatial_order: bool = True, progress: bool = False
 ) -> RoadGraph:
-    """Compile generated ways into a :class:`RoadGraph` without XML or osmnx.
+    """Compile generated ways into a :class:`RoadGraph` without writing a map file.
 
-    Follows the import pipeline step by step: the drivable filter
-    (:func:`planner.osm_import.way_drop_reason`), osmnx's one-way rules, great-circle lengths
-    per segment on coordinates rounded as in the XML, osmnx's simplification rule (a node is
-    kept if it is a dead end, a self-loop, only entered or only left, or does not have exactly
-    two neighbours with degree 2 or 4), tag merging along a simplified edge, and
-    :func:`planner.speeds.edge_speed`. On the ``tiny`` size it gives the same node and edge
-    counts as the osmnx import (checked in the tests).
+    The ways go through :func:`planner.compile_ways.compile_ways`, the same code the streaming
+    importer uses on a real file: the drivable filter (:func:`planner.osm_rules.
+    way_drop_reason`), osmnx's one-way rules, great-circle lengths on coordinates rounded as
+    in the map file, osmnx's simplification rule, tag merging along a merged edge and
+    :func:`planner.speeds.edge_speed`. Way ids are the ones :func:`demo_data.generate.
+    write_osm` gives (1, 2, ... in ``region.ways`` order), node ids likewise, so the graph
+    equals the import of the written file (checked in the tests). Every component is kept.
     """
-    from dueroute.planner.osm_import import way_drop_reason
-    from dueroute.planner.speeds import ROAD_CLASSES, edge_speed, road_class_index
+    from dueroute.planner.compile_ways import compile_ways
+    from dueroute.planner.osm_rules import WAY_TAGS, way_direction, way_drop_reason
+    from dueroute.planner.speeds import ROAD_CLASSES
 
-    lat_all, lon_all = region.lat, region.lon
-    ways = [w for w in region.ways if way_drop_reason(w.tags) is None]
-    dropped = len(region.ways) - len(ways)
-    # directed raw edges, each remembering its way
-    tails: list[np.ndarray] = []
-    heads: list[np.ndarray] = []
-    wids: list[np.ndarray] = []
-    for wi, w in enumerate(ways):
-        nodes = np.asarray(w.nodes, dtype=np.int64)
-        oneway = w.tags.get("oneway") in _ONEWAY_VALUES or w.tags.get("junction") == "roundabout"
-        if oneway and w.tags.get("oneway") in _REVERSED_VALUES:
-            nodes = nodes[::-1]
-        tails.append(nodes[:-1])
-        heads.append(nodes[1:])
-        wids.append(np.full(len(nodes) - 1, wi, dtype=np.int64))
-        if not oneway:
-            tails.append(nodes[1:])
-            heads.append(nodes[:-1])
-            wids.append(np.full(len(nodes) - 1, wi, dtype=np.int64))
-    tail = np.concatenate(tails)
-    head = np.concatenate(heads)
-    way_of = np.concatenate(wids)
-    # drop nodes no drivable way uses; renumber 0..n-1
-    used = np.unique(np.concatenate([tail, head]))
-    remap = np.full(region.n_nodes, -1, dtype=np.int64)
-    remap[used] = np.arange(len(used))
-    tail, head = remap[tail], remap[head]
-    lat, lon = lat_all[used], lon_all[used]
-    n = len(used)
-    seg_len = great_circle_m(lat[tail], lon[tail], lat[head], lon[head])
-
-    # osmnx endpoint rule
-    out_deg = np.bincount(tail, minlength=n)
-    in_deg = np.bincount(head, minlength=n)
-    pairs = np.unique(
-        np.concatenate([np.column_stack([tail, head]), np.column_stack([head, tail])]), axis=0
+    decisions: dict[tuple[tuple[str, str], ...], tuple[bool, int, int]] = {}
+    attrs: dict[tuple[Any, Any], int] = {}
+    keep: list[int] = []
+    direction: list[int] = []
+    attr: list[int] = []
+    for i, w in enumerate(region.ways):
+        key = tuple((k, w.tags[k]) for k in WAY_TAGS if k in w.tags)
+        if key not in decisions:
+            tags = dict(key)
+            a = attrs.setdefault((tags.get("highway"), tags.get("maxspeed")), len(attrs))
+            decisions[key] = (way_drop_reason(tags) is None, way_direction(tags), a)
+        ok, d, a = decisions[key]
+        if ok:
+            keep.append(i)
+            direction.append(d)
+            attr.append(a)
+    lengths = np.array([len(region.ways[i].nodes) for i in keep], dtype=np.int64)
+    way_ptr = np.zeros(len(keep) + 1, dtype=np.int64)
+    np.cumsum(lengths, out=way_ptr[1:])
+    way_node = np.fromiter(
+        (k for i in keep for k in region.ways[i].nodes), dtype=np.int64, count=int(way_ptr[-1])
     )
-    n_neigh = np.bincount(pairs[:, 0], minlength=n)
-    self_loop = np.zeros(n, dtype=bool)
-    self_loop[tail[tail == head]] = True
-    deg = out_deg + in_deg
-    endpoint = (
-        self_loop | (out_deg == 0) | (in_deg == 0) | ~((n_neigh == 2) & ((deg == 2) | (deg == 4)))
+    cw = compile_ways(
+        node_lat=region.lat,
+        node_lon=region.lon,
+        node_osm_id=np.arange(1, region.n_nodes + 1, dtype=np.int64),  # write_osm's node ids
+        way_id=np.array(keep, dtype=np.int64) + 1,  # write_osm's way ids
+        way_ptr=way_ptr,
+        way_node=way_node,
+        way_direction=np.array(direction, dtype=np.int8),
+        way_attr=np.array(attr, dtype=np.int32),
+        attrs=list(attrs),
     )
-    # CSR of raw out-edges
-    order = np.argsort(tail, kind="stable")
-    ptr = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(out_deg, out=ptr[1:])
-    e_head = head[order]
-    e_way = way_of[order]
-    e_len = seg_len[order]
-
-    new_tail: list[int] = []
-    new_head: list[int] = []
-    new_len: list[float] = []
-    speeds: list[float] = []
-    sources: list[int] = []
-    classes: list[int] = []
-    gptr: list[int] = [0]
-    glat: list[float] = []
-    glon: list[float] = []
-    tags_cache: dict[tuple[int, ...], tuple[float, int, int]] = {}
-    ptr_l = ptr.tolist()
-    head_l = e_head.tolist()
-    way_l = e_way.tolist()
-    len_l = e_len.tolist()
-    endpoint_l = endpoint.tolist()
-    lat_l, lon_l = lat.tolist(), lon.tolist()
-    from tqdm import tqdm
-
-    starts = np.nonzero(endpoint)[0].tolist()
-    for u in tqdm(
-        starts, desc="simplify", unit="node", disable=not progress, mininterval=0.5, leave=False
-    ):
-        for e in range(ptr_l[u], ptr_l[u + 1]):
-            prev, v = u, head_l[e]
-            length = len_l[e]
-            wset = {way_l[e]}
-            interior: list[int] = []
-            while not endpoint_l[v] and v != u:
-                # a through node: continue along the out-edge that does not turn back
-                nxt = -1
-                for f in range(ptr_l[v], ptr_l[v + 1]):
-                    if head_l[f] != prev:
-                        nxt = f
-                        break
-                if nxt < 0:
-                    break
-                interior.append(v)
-                prev, v = v, head_l[nxt]
-                length += len_l[nxt]
-                wset.add(way_l[nxt])
-            if v == u:
-                continue  # a loop back to the start: osmnx makes a self-loop, the importer drops it
-            key = tuple(sorted(wset))
-            if key not in tags_cache:
-                highways = sorted({ways[k].tags["highway"] for k in key})
-                maxspeeds = sorted(
-                    {ways[k].tags["maxspeed"] for k in key if "maxspeed" in ways[k].tags}
-                )
-                hw: Any = highways[0] if len(highways) == 1 else highways
-                ms: Any = (
-                    None if not maxspeeds else maxspeeds[0] if len(maxspeeds) == 1 else maxspeeds
-                )
-                sp, src = edge_speed(hw, ms)
-                tags_cache[key] = (sp, src, road_class_index(highways))
-            sp, src, cls = tags_cache[key]
-            new_tail.append(u)
-            new_head.append(v)
-            new_len.append(length)
-            speeds.append(sp)
-            sources.append(src)
-            classes.append(cls)
-            glat.extend(lat_l[k] for k in interior)
-            glon.extend(lon_l[k] for k in interior)
-            gptr.append(len(glat))
-    # keep only nodes that are edge endpoints after simplification
-    t = np.array(new_tail, dtype=np.int64)
-    h = np.array(new_head, dtype=np.int64)
-    keep_nodes = np.unique(np.concatenate([t, h]))
-    remap2 = np.full(n, -1, dtype=np.int64)
-    remap2[keep_nodes] = np.arange(len(keep_nodes))
     meta = {
         "name": region.name,
         "importer": "dueroute.demo_data.build.compile_region",
-        "dropped": {"ways_not_drivable": dropped},
+        "dropped": {
+            "ways_not_drivable": len(region.ways) - len(keep),
+            "self_loops": cw.counts["self_loops"],
+            "ring_segments": cw.counts["ring_segments"],
+        },
         "file_nodes": region.n_nodes,
         "file_ways": len(region.ways),
         "road_classes": list(ROAD_CLASSES),
     }
-    return build_graph(
-        lat=lat[keep_nodes],
-        lon=lon[keep_nodes],
-        osm_id=used[keep_nodes] + 1,  # the ids write_osm would give these nodes
-        tail=remap2[t],
-        head=remap2[h],
-        length_m=np.array(new_len, dtype=np.float64),
-        speed_kph=np.array(speeds, dtype=np.float32),
-        road_class=np.array(classes, dtype=np.int8),
-        speed_source=np.array(sources, dtype=np.int8),
-        geom_indptr=np.array(gptr, dtype=np.int64),
-        geom_lat=np.array(glat, dtype=np.float64),
-        geom_lon=np.array(glon, dtype=np.float64),
-        meta=meta,
-        spatial_order=spatial_order,
-    )
+    return cw.to_graph(meta=meta, spatial_order=spatial_order)

@@ -45,7 +45,7 @@ from dueroute.planner.graph import EARTH_RADIUS_M
 
 #: Bump whenever the generator or ``region.toml`` changes what is generated: it keys the
 #: build cache (``demo_data.build``), so stale cached graphs are rebuilt.
-GENERATOR_VERSION = "2"
+GENERATOR_VERSION = "3"
 
 #: Sizes defined in the scenario file, smallest first.
 SIZES = ("tiny", "demo", "large")
@@ -1329,6 +1329,34 @@ def write_osm(region: RegionMap, out: str | Path | IO[bytes]) -> int:
     else:
         out.write(data)
     return len(data)
+
+
+def write_pbf(region: RegionMap, out: str | Path) -> int:
+    """Write ``region`` as OSM PBF; returns the number of bytes written.
+
+    The objects, ids, tags and coordinates are exactly those of :func:`write_osm`: libosmium
+    converts that XML (held in memory) to PBF, without object metadata (versions,
+    timestamps), so the same region always gives the same bytes.
+    """
+    import osmium
+
+    out = Path(out)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    lat, lon = region.lat, region.lon
+    header = osmium.io.Header()
+    header.set("generator", "dueroute-demo")
+    header.add_box(
+        osmium.osm.Box(float(lon.min()), float(lat.min()), float(lon.max()), float(lat.max()))
+    )
+    tmp = out.with_name(out.name + ".tmp")
+    tmp.unlink(missing_ok=True)
+    writer = osmium.SimpleWriter(osmium.io.File(str(tmp), "pbf,add_metadata=false"), header=header)
+    try:
+        osmium.apply(osmium.io.Reader(osmium.io.FileBuffer(osm_bytes(region), "osm")), writer)
+    finally:
+        writer.close()
+    tmp.replace(out)
+    return out.stat().st_size
 
 
 def osm_bytes(region: RegionMap) -> bytes:

@@ -1,8 +1,10 @@
 """Fixtures shared by every test package.
 
 ``osm_dir``
-    Folder of the real OpenStreetMap test extracts (``<repo>/../shared/data/osm``); tests that
-    take it are skipped when the folder is absent. The extracts are never copied into the repo.
+    Folder of the real OpenStreetMap test extracts (``shared/data/osm`` beside the repository
+    or beside one of its parent folders, as for a git worktree under ``../wt/``; or
+    ``$DUEROUTE_TEST_OSM_DIR``); tests that take it are skipped when the folder is absent. The
+    extracts are never copied into the repo.
 ``tiny_graph``
     A hand-made 10-node road graph (see :func:`make_tiny_graph`) with one-way streets, a
     parallel edge, interior geometry and three strongly connected components.
@@ -10,6 +12,7 @@
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
 
 import numpy as np
@@ -19,7 +22,19 @@ from dueroute.planner.graph import RoadGraph, build_graph, great_circle_m
 from dueroute.planner.speeds import ROAD_CLASSES, SPEED_SOURCE_DEFAULT
 
 REPO_ROOT = Path(__file__).resolve().parents[1]
-OSM_DIR = REPO_ROOT.parent / "shared" / "data" / "osm"
+
+
+def _find_osm_dir() -> Path:
+    if os.environ.get("DUEROUTE_TEST_OSM_DIR"):
+        return Path(os.environ["DUEROUTE_TEST_OSM_DIR"])
+    for parent in REPO_ROOT.parents:
+        candidate = parent / "shared" / "data" / "osm"
+        if candidate.is_dir():
+            return candidate
+    return REPO_ROOT.parent / "shared" / "data" / "osm"
+
+
+OSM_DIR = _find_osm_dir()
 OSM_EXTRACTS = ("west-oakland.osm.bz2", "aguascalientes.osm.bz2")
 
 

@@ -33,7 +33,8 @@ def tiny_osm(tiny_region, tmp_path_factory) -> Path:
 
 @pytest.fixture(scope="module")
 def tiny_graph(tiny_osm):
-    return import_map(tiny_osm)
+    """The osmnx import of the tiny region, every component kept (as the demo build does)."""
+    return import_map(tiny_osm, components="all")
 
 
 @pytest.fixture(scope="module")
@@ -156,9 +157,15 @@ def test_tiny_imports_through_osmnx_with_realistic_structure(tiny_graph):
 
 
 def test_direct_compile_matches_osmnx_import(tiny_region, tiny_graph):
-    """compile_region (used for the large size) agrees with the osmnx import on the same ways:
-    same nodes, edge count, total length and travel time (osmnx is the reference)."""
+    """compile_region (used for the large size) agrees with the osmnx import on the same ways
+    (osmnx is the reference): the same graph bit for bit (fingerprint over indptr, head and
+    travel times; geometry, classes, speed sources), and the way ids write_osm gives."""
     direct = compile_region(tiny_region)
+    assert direct.fingerprint == tiny_graph.fingerprint
+    for name in ("osm_id", "geom_indptr", "geom_lat", "geom_lon", "road_class", "speed_source"):
+        assert np.array_equal(getattr(direct, name), getattr(tiny_graph, name)), name
+    assert np.array_equal(direct.way_indptr, tiny_graph.way_indptr)
+    assert np.array_equal(direct.way_id, tiny_graph.way_id)
     assert direct.n_nodes == tiny_graph.n_nodes
     assert direct.n_edges == tiny_graph.n_edges
     assert np.array_equal(np.sort(direct.osm_id), np.sort(tiny_graph.osm_id))
@@ -304,12 +311,37 @@ def test_cli_generate_osm_and_npz(tmp_path, monkeypatch, capsys):
     assert main(["graph", "generate", "--size", "tiny", "-o", str(npz), "--json"]) == 0
     result = json.loads(capsys.readouterr().out)
     assert load_graph(npz).n_nodes == result["nodes"] > 0
+    pbf = tmp_path / "t.osm.pbf"
+    assert main(["graph", "generate", "--size", "tiny", "-o", str(pbf), "--json"]) == 0
+    result = json.loads(capsys.readouterr().out)
+    assert result["format"] == "pbf" and pbf.stat().st_size == result["bytes"]
+
+
+def test_pbf_holds_the_same_objects_as_the_xml(tiny_region, tiny_osm, tmp_path):
+    """write_pbf gives the same nodes, ways and tags as write_osm (both read back with
+    libosmium, the OSM reference library, as OPL text), and the same bytes every time."""
+    import osmium
+
+    from dueroute.demo_data.generate import write_pbf
+
+    def opl(path, fmt):
+        out = tmp_path / f"{path.name}.opl"
+        writer = osmium.SimpleWriter(osmium.io.File(str(out), "opl,add_metadata=false"))
+        osmium.apply(osmium.io.Reader(osmium.io.File(str(path), fmt)), writer)
+        writer.close()
+        return out.read_bytes()
+
+    a, b = tmp_path / "a.osm.pbf", tmp_path / "b.osm.pbf"
+    write_pbf(tiny_region, a)
+    write_pbf(tiny_region, b)
+    assert a.read_bytes() == b.read_bytes()
+    assert opl(a, "pbf") == opl(tiny_osm, "osm")
 
 
 @pytest.mark.parametrize(
     "argv, message",
     [
-        (["--size", "large", "-o", "x.osm"], "not offered as OSM XML"),
+        (["--size", "tiny", "-o", "x.osm", "--format", "pbf"], "must end in .pbf"),
         (["--size", "tiny", "-o", "x.npz", "--format", "osm"], "must end in .osm"),
         (["--size", "tiny", "-o", "x.npz", "--seed", "-3"], "non-negative"),
     ],

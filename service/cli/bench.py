@@ -8,13 +8,15 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from dueroute.service.cli import bench_deadline, bench_search, bench_traffic
+from dueroute.service.cli import bench_deadline, bench_import, bench_search, bench_traffic
 
 
 def register(sub: Any) -> argparse.ArgumentParser:
     """Add the ``bench`` command group and its subcommands; returns the group's parser."""
-    parser = sub.add_parser("bench", help="measure speed as ratios against reference libraries")
+    parser = sub.add_parser(
+        "bench", help="measure speed (and import memory) against references in the same run"
+    )
     bench_sub = parser.add_subparsers(dest="bench_command", required=True, metavar="BENCH")
-    for module in (bench_search, bench_deadline, bench_traffic):
+    for module in (bench_search, bench_deadline, bench_traffic, bench_import):
         module.register(bench_sub)
     return parser

@@ -1,4 +1,4 @@
-"""``dueroute graph generate``: write the fictional demo region as a graph or as OSM XML."""
+"""``dueroute graph generate``: write the fictional demo region as a graph, OSM XML or OSM PBF."""
 
 from __future__ import annotations
 
@@ -12,7 +12,7 @@ from dueroute.planner.errors import InvalidRequest
 from dueroute.service.cli.common import add_out_option, emit
 
 #: Output formats and the file suffix each needs.
-FORMATS = {"npz": ".npz", "osm": ".osm"}
+FORMATS = {"npz": ".npz", "osm": ".osm", "pbf": ".pbf"}
 
 
 def register_generate(graph_subparsers: Any) -> argparse.ArgumentParser:
@@ -21,11 +21,11 @@ def register_generate(graph_subparsers: Any) -> argparse.ArgumentParser:
 
     p = graph_subparsers.add_parser(
         "generate",
-        help="generate the fictional demo region (Veyrand Coast) as a graph or OSM XML",
+        help="generate the fictional demo region (Veyrand Coast) as a graph, OSM XML or PBF",
         description=(
             "Generate the fictional demo region. 'npz' builds the compiled graph (through the "
-            "osmnx importer for tiny/demo, directly for large) and reuses the build cache; "
-            "'osm' writes the OSM XML the importer reads (tiny and demo only)."
+            "streaming importer for tiny/demo, compiled directly for large) and reuses the "
+            "build cache; 'osm' writes the OSM XML and 'pbf' the OSM PBF the importer reads."
         ),
     )
     p.add_argument("--size", choices=SIZES, default="demo", help="region size (default: demo)")
@@ -37,7 +37,8 @@ def register_generate(graph_subparsers: Any) -> argparse.ArgumentParser:
         "--format",
         choices=sorted(FORMATS),
         default=None,
-        help="npz (compiled graph) or osm (OSM XML); default from the OUT suffix, else npz",
+        help="npz (compiled graph), osm (OSM XML) or pbf (OSM PBF); default from the OUT "
+        "suffix (.osm, .pbf), else npz",
     )
     p.add_argument("--json", action="store_true", help="print machine-readable JSON")
     p.set_defaults(func=cmd_generate)
@@ -48,7 +49,7 @@ def cmd_generate(args: argparse.Namespace) -> int:
     out = Path(args.out)
     fmt = args.format
     if fmt is None:
-        fmt = "osm" if out.suffix == ".osm" else "npz"
+        fmt = {".osm": "osm", ".pbf": "pbf"}.get(out.suffix, "npz")
     if out.suffix != FORMATS[fmt]:
         raise InvalidRequest(
             f"output {str(out)!r} does not match --format {fmt}: the file name must end in "
@@ -67,20 +68,15 @@ def generate_to(
     size: str, out: Path, *, fmt: str = "npz", seed: int | None = None, progress: bool = True
 ) -> dict[str, Any]:
     """Write one size of the demo region to ``out``; returns a summary dict."""
-    from dueroute.demo_data.build import OSM_SIZES, demo_graph_path
-    from dueroute.demo_data.generate import default_seed, generate, write_osm
+    from dueroute.demo_data.build import demo_graph_path
+    from dueroute.demo_data.generate import default_seed, generate, write_osm, write_pbf
 
     seed = default_seed() if seed is None else seed
     t0 = time.perf_counter()
     out.parent.mkdir(parents=True, exist_ok=True)
-    if fmt == "osm":
-        if size not in OSM_SIZES:
-            raise InvalidRequest(
-                f"size {size!r} is compiled directly and not offered as OSM XML (an osmnx "
-                f"import of it would not fit in memory); OSM XML sizes: {', '.join(OSM_SIZES)}"
-            )
+    if fmt in ("osm", "pbf"):
         region = generate(size, seed=seed)
-        nbytes = write_osm(region, out)
+        nbytes = write_osm(region, out) if fmt == "osm" else write_pbf(region, out)
         return {
             "size": size,
             "seed": seed,
@@ -112,7 +108,7 @@ def generate_to(
 
 
 def _human(r: dict[str, Any]) -> str:
-    if r["format"] == "osm":
+    if r["format"] in ("osm", "pbf"):
         what = f"{r['osm_nodes']:,} OSM nodes, {r['osm_ways']:,} ways"
     else:
         what = f"{r['nodes']:,} nodes, {r['edges']:,} edges"

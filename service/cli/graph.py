@@ -10,6 +10,7 @@ from typing import Any
 
 import numpy as np
 
+from dueroute.planner.compile_ways import COMPONENT_RULES
 from dueroute.planner.errors import InvalidRequest
 from dueroute.service.cli.common import (
     GRAPH_HELP,
@@ -20,6 +21,21 @@ from dueroute.service.cli.common import (
     progress,
 )
 from dueroute.service.cli.generate import register_generate
+
+#: ``--importer`` choices.
+IMPORTERS = ("auto", "osmium", "osmnx")
+
+#: Progress steps of each importer (the osmium one reports them as it goes).
+IMPORT_STEPS = {
+    "osmium": (
+        "reading ways",
+        "reading nodes",
+        "compiling edges",
+        "mapping turn restrictions",
+        "building graph",
+    ),
+    "osmnx": ("reading map with osmnx",),
+}
 
 #: Output formats ``graph plot`` writes (matplotlib picks the writer from the suffix).
 PLOT_SUFFIXES = (".png", ".svg", ".pdf")
@@ -32,11 +48,36 @@ def register(sub: Any) -> argparse.ArgumentParser:
 
     imp = graph_sub.add_parser(
         "import",
-        help="compile an OSM XML (.osm, .osm.bz2, .xml) or GraphML map into a graph file",
+        help="compile an OSM PBF, OSM XML (.osm, .osm.bz2, .xml) or GraphML map into a graph file",
+        description=(
+            "Compile a map into a graph file. OSM PBF and OSM XML go through the streaming "
+            "osmium importer by default (clipped extracts welcome, turn restrictions read); "
+            "GraphML, and OSM XML with --importer osmnx, through osmnx (the reference)."
+        ),
     )
-    imp.add_argument("source", metavar="SRC", help="map file: OSM XML or osmnx GraphML")
+    imp.add_argument("source", metavar="SRC", help="map file: OSM PBF, OSM XML or osmnx GraphML")
     add_out_option(imp, required=True, metavar="OUT.npz", help="compiled graph to write")
     imp.add_argument("--name", default=None, help="graph name (default: the map file's name)")
+    imp.add_argument(
+        "--importer",
+        choices=IMPORTERS,
+        default="auto",
+        help="auto (default): osmium for PBF and OSM XML, osmnx for GraphML",
+    )
+    imp.add_argument(
+        "--components",
+        choices=COMPONENT_RULES,
+        default="largest",
+        help="keep the largest strongly connected component (default; the others are "
+        "reported) or all",
+    )
+    imp.add_argument(
+        "--road-classes",
+        default=None,
+        metavar="LIST",
+        help="highway classes to keep, comma-separated: 'default' is the drivable set, a "
+        "class adds it, -class removes it (e.g. default,service)",
+    )
     imp.add_argument(
         "--no-spatial-order",
         action="store_true",
@@ -70,17 +111,60 @@ def register(sub: Any) -> argparse.ArgumentParser:
 # import
 
 
+def choose_importer(kind: str, importer: str) -> str:
+    """``osmium`` or ``osmnx`` for a map of ``kind`` (``pbf``, ``osm``, ``graphml``)."""
+    if importer == "auto":
+        return "osmnx" if kind == "graphml" else "osmium"
+    if importer == "osmium" and kind == "graphml":
+        raise InvalidRequest("GraphML is read by the osmnx importer only (--importer osmnx)")
+    if importer == "osmnx" and kind == "pbf":
+        raise InvalidRequest("OSM PBF is read by the osmium importer only (--importer osmium)")
+    return importer
+
+
 def cmd_import(args: argparse.Namespace) -> int:
+    from dueroute.planner.errors import GraphFileNotFound
     from dueroute.planner.graph import save_graph
+    from dueroute.planner.map_files import sniff
     from dueroute.planner.osm_import import import_map
+    from dueroute.planner.osm_rules import parse_road_classes
+    from dueroute.planner.osm_stream import import_osm
 
     out = Path(args.out)
     if out.suffix != ".npz":
         raise InvalidRequest(f"the output must be a .npz file, got {args.out!r}")
+    road_filter = parse_road_classes(args.road_classes)
+    source = Path(args.source)
+    if not source.is_file():
+        raise GraphFileNotFound(
+            f"map file not found: {source}" if not source.is_dir() else f"{source} is a directory"
+        )
+    kind, _ = sniff(source)
+    importer = choose_importer(kind, args.importer)
+    try:
+        out.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise InvalidRequest(f"cannot write {out}: {exc.strerror or exc}") from exc
     started = time.perf_counter()
-    with progress(total=2, desc="graph import", unit="step", disable=None) as bar:
-        bar.set_postfix_str("reading map")
-        graph = import_map(args.source, name=args.name, spatial_order=not args.no_spatial_order)
+    steps = IMPORT_STEPS[importer]
+    with progress(total=len(steps) + 1, desc="graph import", unit="step", disable=None) as bar:
+
+        def on_step(name: str) -> None:
+            if name != steps[0]:
+                bar.update(1)
+            bar.set_postfix_str(name)
+
+        options = {
+            "name": args.name,
+            "spatial_order": not args.no_spatial_order,
+            "components": args.components,
+            "road_filter": road_filter,
+        }
+        if importer == "osmium":
+            graph = import_osm(source, on_step=on_step, work_dir=out.parent, **options)
+        else:
+            on_step(steps[0])
+            graph = import_map(source, **options)
         bar.update(1)
         bar.set_postfix_str("writing graph")
         try:
@@ -90,20 +174,27 @@ def cmd_import(args: argparse.Namespace) -> int:
         bar.update(1)
     elapsed_s = time.perf_counter() - started
     info = graph.info()
+    meta = graph.meta
     result = {
         "source": str(args.source),
         "path": str(out),
         "name": graph.name,
+        "importer": meta.get("importer"),
+        "source_format": meta.get("source_format"),
         "nodes": graph.n_nodes,
         "edges": graph.n_edges,
         "strong_components": info["strong_components"],
         "largest_component_nodes": info["largest_component_nodes"],
         "total_length_km": info["total_length_km"],
         "edges_with_tagged_speed": info["edges_with_tagged_speed"],
-        "dropped": graph.meta.get("dropped", {}),
-        "file_nodes": graph.meta.get("file_nodes"),
-        "file_ways": graph.meta.get("file_ways"),
-        "importer": graph.meta.get("importer"),
+        "file_nodes": meta.get("file_nodes"),
+        "file_ways": meta.get("file_ways"),
+        "read": meta.get("read"),
+        "dropped": meta.get("dropped", {}),
+        "clipped": meta.get("clipped"),
+        "components": meta.get("components"),
+        "restrictions": meta.get("restrictions"),
+        "road_filter": meta.get("road_filter"),
         "elapsed_s": elapsed_s,
     }
     emit(result, args.json, _format_import)
@@ -113,23 +204,80 @@ def cmd_import(args: argparse.Namespace) -> int:
 def _format_import(r: dict[str, Any]) -> str:
     dropped = r["dropped"]
     ways = ", ".join(
-        f"{k.removeprefix('ways_').replace('_', ' ')} {v}"
+        f"{k.removeprefix('ways_').replace('_', ' ')} {v:,}"
         for k, v in dropped.items()
         if k.startswith("ways_") and v
     )
-    return "\n".join(
-        [
-            f"imported {r['source']} -> {r['path']} in {r['elapsed_s']:.2f} s ({r['importer']})",
-            f"  {r['nodes']:,} nodes, {r['edges']:,} directed edges, "
-            f"{r['total_length_km']:,.1f} km of road",
-            f"  {r['strong_components']:,} strongly connected components, "
-            f"largest {r['largest_component_nodes']:,} nodes",
-            f"  file: {r['file_nodes']:,} nodes, {r['file_ways']:,} ways; "
-            f"dropped ways: {ways or 'none'}; self-loop edges dropped: "
-            f"{dropped.get('self_loops', 0)}",
-            f"  speeds: {r['edges_with_tagged_speed']:,} edges from maxspeed tags, "
-            f"{r['edges'] - r['edges_with_tagged_speed']:,} from class defaults",
-        ]
+    read = r.get("read")
+    if read:
+        what = (
+            f"  read: {read['highway_ways']:,} highway ways (ways without a highway tag are not "
+            f"roads and are skipped unread), {read['nodes']:,} of their nodes, "
+            f"{read['restriction_relations']:,} restriction relations"
+        )
+    else:
+        what = f"  read: {r['file_nodes']:,} nodes, {r['file_ways']:,} ways"
+    lines = [
+        f"imported {r['source']} -> {r['path']} in {r['elapsed_s']:.2f} s ({r['importer']})",
+        f"  {r['nodes']:,} nodes, {r['edges']:,} directed edges, "
+        f"{r['total_length_km']:,.1f} km of road",
+        what,
+        f"  dropped ways: {ways or 'none'}; self-loop edges dropped: "
+        f"{dropped.get('self_loops', 0):,}"
+        + (
+            f"; isolated ring segments dropped: {dropped['ring_segments']:,}"
+            if dropped.get("ring_segments")
+            else ""
+        ),
+    ]
+    clipped = r.get("clipped")
+    if clipped:
+        lines.append(
+            f"  clipped extract: {clipped['nodes_missing']:,} referenced nodes missing from the "
+            f"file; {clipped['ways_cut']:,} ways cut there (usable parts kept), "
+            f"{clipped['ways_clipped_away']:,} ways dropped (no segment left), "
+            f"{clipped['segments_dropped']:,} segments dropped"
+            if clipped["nodes_missing"]
+            else "  clipped extract: no (every referenced node is in the file)"
+        )
+    comp = r.get("components")
+    if comp:
+        if comp["rule"] == "largest" and comp["dropped_components"]:
+            lines.append(
+                f"  components: kept the largest strongly connected one ({comp['kept_nodes']:,} "
+                f"nodes); dropped {comp['dropped_components']:,} others with "
+                f"{comp['dropped_nodes']:,} nodes and {comp['dropped_edges']:,} edges "
+                "(--components all keeps them)"
+            )
+        else:
+            lines.append(
+                f"  components: {r['strong_components']:,} strongly connected, largest "
+                f"{r['largest_component_nodes']:,} nodes (rule: {comp['rule']})"
+            )
+    rest = r.get("restrictions")
+    if rest is not None:
+        lines.append("  " + format_restrictions(rest))
+    rf = r.get("road_filter")
+    if rf and not rf.get("default", True):
+        lines.append("  road classes kept: " + ", ".join(rf["highway"]))
+    lines.append(
+        f"  speeds: {r['edges_with_tagged_speed']:,} edges from maxspeed tags, "
+        f"{r['edges'] - r['edges_with_tagged_speed']:,} from class defaults"
+    )
+    return "\n".join(lines)
+
+
+def format_restrictions(rest: dict[str, Any]) -> str:
+    """One line on turn restrictions: read, applied, dropped (by reason and kind)."""
+    if not rest.get("read"):
+        return "turn restrictions: none in the file"
+    kinds = ", ".join(f"{k} {c['applied']}/{c['read']}" for k, c in rest.get("by_kind", {}).items())
+    why = ", ".join(f"{k.replace('_', ' ')} {v}" for k, v in rest.get("dropped", {}).items())
+    return (
+        f"turn restrictions: {rest['read']:,} read from {rest['relations']:,} relations, "
+        f"{rest['applied']:,} applied, {rest['read'] - rest['applied']:,} dropped"
+        + (f" ({why})" if why else "")
+        + (f"; applied/read by kind: {kinds}" if kinds else "")
     )
 
 
@@ -167,7 +315,17 @@ def _format_info(r: dict[str, Any]) -> str:
         )
     dropped = r["meta"].get("dropped")
     if dropped:
-        lines.append("  dropped at import: " + ", ".join(f"{k} {v}" for k, v in dropped.items()))
+        lines.append(
+            "  dropped at import: " + ", ".join(f"{k} {v}" for k, v in dropped.items() if v)
+        )
+    turns = r["turn_restrictions"]
+    rest = r["meta"].get("restrictions")
+    if rest is not None:
+        lines.append("  " + format_restrictions(rest))
+    lines.append(
+        f"  turn restrictions in the graph: {turns['in_graph']:,} edge sequences "
+        f"({turns['no']:,} no_*, {turns['only']:,} only_*)"
+    )
     lines.append(f"  fingerprint {r['fingerprint'][:16]}")
     return "\n".join(lines)
 

@@ -74,13 +74,16 @@ def test_instant_route_for_every_pair_of_the_landmarks_component() -> None:
 
 
 def test_instant_route_on_a_real_street_network() -> None:
-    """The same on a real OpenStreetMap extract (one-way streets, dead ends)."""
+    """The same on a real OpenStreetMap extract (one-way streets, dead ends, turn restrictions):
+    the graph searched is the extract's graph of legal drives, so scipy's optimum on it is the
+    optimum under the turn rules."""
     path = OSM_DIR / "aguascalientes.osm.bz2"
     if not path.is_file():
         pytest.skip(f"real OSM fixture folder absent ({OSM_DIR})")
+    from dueroute.planner.endpoints import planning_graph
     from dueroute.planner.osm_import import import_map
 
-    g = import_map(path)
+    g = planning_graph(import_map(path))
     planner = Planner(g, landmarks=build_landmarks(g, count=8, progress=False))
     nodes = largest_component_nodes(g)
     rng = np.random.default_rng(23)

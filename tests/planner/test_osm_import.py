@@ -19,6 +19,7 @@ from geographiclib.geodesic import Geodesic
 from dueroute.planner.errors import GraphFileNotFound, NoDrivableRoads, NotAMapFile
 from dueroute.planner.graph import RoadGraph, load_graph, save_graph
 from dueroute.planner.osm_import import import_map, way_drop_reason
+from dueroute.planner.osm_stream import import_osm
 from dueroute.planner.speeds import (
     DEFAULT_SPEED_KPH,
     ROAD_CLASSES,
@@ -183,10 +184,20 @@ def _parse_osm(path: Path) -> tuple[dict[int, tuple[float, float]], list[tuple[l
     return nodes, ways
 
 
-@pytest.fixture(scope="module", params=OSM_EXTRACTS)
+IMPORTERS = {"osmnx": import_map, "osmium": import_osm}
+
+
+@pytest.fixture(
+    scope="module",
+    params=[(f, i) for f in OSM_EXTRACTS for i in IMPORTERS],
+    ids=lambda p: f"{p[0].split('.')[0]}-{p[1]}",
+)
 def extract(request: pytest.FixtureRequest, osm_dir: Path) -> tuple[Path, RoadGraph]:
-    path = osm_dir / request.param
-    return path, import_map(path)
+    """Each real extract through each importer, every component kept (the component rule
+    has tests of its own), so the rule checks below see every drivable way."""
+    name, importer = request.param
+    path = osm_dir / name
+    return path, IMPORTERS[importer](path, components="all")
 
 
 def _geodesic_length_m(graph: RoadGraph, edge: int) -> float:
@@ -310,15 +321,26 @@ def test_counts_equal_osmnx(extract: tuple[Path, RoadGraph], tmp_path: Path) -> 
 
 
 def test_meta_records_source_and_drops(extract: tuple[Path, RoadGraph]) -> None:
-    """meta: sha256 (hashlib) of the source, importer version, dropped counts per reason."""
+    """meta: sha256 (hashlib) of the source, importer version, dropped counts per reason
+    (counted again here from the XML read with ElementTree)."""
+    import osmium.version
+
     path, g = extract
     assert g.meta["source_sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
-    assert g.meta["importer"] == f"osmnx {ox.__version__}"
     assert g.meta["name"] == path.name.removesuffix(".osm.bz2")
     dropped = g.meta["dropped"]
     _, ways = _parse_osm(path)
-    no_highway = sum(1 for refs, t in ways if "highway" not in t and len(set(refs)) >= 2)
-    assert dropped["ways_not_a_road"] == no_highway
+    if g.meta["importer"].startswith("osmnx"):
+        assert g.meta["importer"] == f"osmnx {ox.__version__}"
+        no_highway = sum(1 for refs, t in ways if "highway" not in t and len(set(refs)) >= 2)
+        assert dropped["ways_not_a_road"] == no_highway
+    else:  # the streaming importer never reads ways without a highway tag
+        assert g.meta["importer"].startswith(f"osmium {osmium.version.pyosmium_release}")
+        assert g.meta["read"]["highway_ways"] == sum(1 for _, t in ways if "highway" in t)
+    road_ways = [(r, t) for r, t in ways if "highway" in t and len(set(r)) >= 2]
+    for reason in ("not_for_cars", "service_road", "no_car_access"):
+        expected = sum(1 for _, t in road_ways if way_drop_reason(t) == reason)
+        assert dropped[f"ways_{reason}"] == expected, reason
     assert dropped["ways_not_for_cars"] > 0
 
 
@@ -335,7 +357,7 @@ def test_graphml_round_trip(extract: tuple[Path, RoadGraph], tmp_path: Path) -> 
     ox.save_graphml(raw, tmp_path / "raw.graphml")
     ox.save_graphml(_osmnx_drive_graph(path, tmp_path), tmp_path / "drive.graphml")
     for name in ("raw.graphml", "drive.graphml"):
-        h = import_map(tmp_path / name)
+        h = import_map(tmp_path / name, components="all")
         assert (h.n_nodes, h.n_edges) == (g.n_nodes, g.n_edges), name
         assert float(np.sum(h.length_m)) == pytest.approx(float(np.sum(g.length_m)), rel=1e-9)
         assert sorted(h.osm_id.tolist()) == sorted(g.osm_id.tolist())

@@ -5,7 +5,6 @@ from __future__ import annotations
 import math
 import threading
 import time
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -18,9 +17,9 @@ from dueroute.planner.errors import InvalidRequest, NodeNotFound
 from dueroute.planner.graph import build_graph, great_circle_m
 from dueroute.planner.heuristics import build_landmarks
 from dueroute.planner.session import Improvement, Planner, PlanResult, plan
+from tests.conftest import OSM_DIR
 from tests.planner.test_kernel import _drive, _open, grid_graph, random_graph
 
-OSM_DIR = Path(__file__).resolve().parents[3] / "shared" / "data" / "osm"
 REL = 1e-9
 
 
