@@ -492,13 +492,13 @@ class PlanningEngine:
             job.status = final["status"]
             job.finished_s = time.perf_counter()
             job.best = None  # the route is in the JSON now
-        job.done.set()
-        job.notify()
-        if job.on_finish is not None:
+        if job.on_finish is not None:  # accounted before anyone is told it finished
             try:
                 job.on_finish(job)
             except Exception:  # the store's bookkeeping must not undo a published answer
                 log.exception("plan store bookkeeping failed", extra={"plan_id": job.plan_id})
+        job.done.set()
+        job.notify()
         return final
 
     def _final(self, job: PlanJob, status: str, result: Any) -> dict[str, Any]:
