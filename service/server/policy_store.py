@@ -226,9 +226,12 @@ class PolicyStore:
                     "problem": "the file the pointer names is missing",
                 }
             else:
-                try:
+                try:  # the pointer already says so: nothing to write
                     self._activate(
-                        self._file(sha).read_bytes(), source="policy_dir", push_history=False
+                        self._file(sha).read_bytes(),
+                        source="policy_dir",
+                        push_history=False,
+                        persist=False,
                     )
                 except PolicyRejected as exc:
                     damage = {
@@ -271,9 +274,12 @@ class PolicyStore:
                 "history"
             )
         for candidate in candidates:
-            try:
+            try:  # not persisted: the pointer keeps naming the damaged one until an admin acts
                 self._activate(
-                    self._file(candidate).read_bytes(), source="policy_dir", push_history=False
+                    self._file(candidate).read_bytes(),
+                    source="policy_dir",
+                    push_history=False,
+                    persist=False,
                 )
             except (OSError, PolicyRejected):
                 continue
