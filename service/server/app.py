@@ -439,8 +439,10 @@ def finish_openapi(spec: dict[str, Any]) -> None:
       not FastAPI's default list of errors;
     * ``POST /v1/plans`` reads its body itself (strict JSON, see ``json_body``): its request
       body is published from :class:`PlanRequest`;
-    * the event stream is ``text/event-stream``; each event's ``data`` is published as a
-      schema component (``ImprovementEvent``, ``Plan``) under ``x-events``.
+    * the event stream is ``text/event-stream``, each event described with its ``data``
+      shape (``ImprovementEvent``, ``Plan``);
+    * the admin endpoints name their bearer token; a new background plan links to what can
+      be done with its id.
     """
     from dueroute.service.server.schemas import ImprovementEvent, PlanRequest
 
@@ -462,19 +464,46 @@ def finish_openapi(spec: dict[str, Any]) -> None:
         "required": True,
         "content": {"application/json": {"schema": {"$ref": "#/components/schemas/PlanRequest"}}},
     }
+    # OpenAPI links: what a client (or a stateful tester) does with a new plan's id
+    plan_id = {"plan_id": "$response.body#/plan_id"}
+    create["responses"]["202"]["links"] = {
+        name: {"operationId": op, "parameters": plan_id, "description": text}
+        for name, op, text in (
+            ("poll", "get_plan", "the plan as it runs and once it finished"),
+            ("events", "plan_events", "its improvements as Server-Sent Events"),
+            ("cancel", "cancel_plan", "stop it"),
+        )
+    }
     stream = spec["paths"]["/v1/plans/{plan_id}/events"]["get"]["responses"]["200"]
+
+    # One event of the stream (OpenAPI 3.1 has no itemSchema yet: for text/event-stream the
+    # schema describes each event, as OpenAPI 3.2 spells out); data is JSON whose shape
+    # contentSchema gives (JSON Schema 2020-12, section 8.5).
+    def event(kind: str, data_ref: str, id_text: str) -> dict[str, Any]:
+        return {
+            "type": "object",
+            "required": ["event", "id", "data"],
+            "properties": {
+                "event": {"const": kind},
+                "id": {"type": "string", "pattern": "^[0-9]+$", "description": id_text},
+                "data": {
+                    "type": "string",
+                    "contentMediaType": "application/json",
+                    "contentSchema": {"$ref": f"#/components/schemas/{data_ref}"},
+                },
+            },
+        }
+
     stream["content"] = {
         "text/event-stream": {
             "schema": {
-                "type": "string",
-                "description": "Server-Sent Events (WHATWG HTML): `improvement` events "
-                "(id = the improvement's ordinal, data = ImprovementEvent) in the order "
-                "found, then one `final` event (id = the improvement count, data = Plan); "
-                "`: keep-alive` comments every 15 s while nothing happens",
-            },
-            "x-events": {
-                "improvement": {"$ref": "#/components/schemas/ImprovementEvent"},
-                "final": {"$ref": "#/components/schemas/Plan"},
+                "description": "Server-Sent Events (WHATWG HTML): `improvement` events in "
+                "the order found, then one `final` event; `: keep-alive` comments every 15 s "
+                "while nothing happens",
+                "oneOf": [
+                    event("improvement", "ImprovementEvent", "the improvement's ordinal"),
+                    event("final", "Plan", "the number of improvements"),
+                ],
             },
             "example": 'id: 0\nevent: improvement\ndata: {"elapsed_ms":0.4,"expansions":'
             '120,"cost_s":812.5,"lower_bound_s":640.2,"gap":0.212,"weight":2.0,"route":'

@@ -13,7 +13,9 @@ from dueroute.service.server.schemas import Health
 router = APIRouter(tags=["operations"])
 
 
-@router.get("/healthz", response_model=Health, summary="The process is alive")
+@router.get(
+    "/healthz", operation_id="healthz", response_model=Health, summary="The process is alive"
+)
 async def healthz(state: StateDep) -> JSONResponse:
     return JSONResponse(
         {"status": "alive", "detail": {"uptime_s": round(time.time() - state.started_wall, 1)}}
@@ -22,6 +24,7 @@ async def healthz(state: StateDep) -> JSONResponse:
 
 @router.get(
     "/readyz",
+    operation_id="readyz",
     response_model=Health,
     responses={
         503: {
@@ -52,6 +55,7 @@ async def readyz(state: StateDep) -> JSONResponse:
 
 @router.get(
     "/metrics",
+    operation_id="metrics",
     response_class=Response,
     responses={200: {"content": {"text/plain": {"schema": {"type": "string"}}}}},
     summary="Prometheus metrics",

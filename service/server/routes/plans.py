@@ -120,6 +120,7 @@ async def _read_request(request: Request, state: AppState) -> PlanRequest | JSON
 
 @router.post(
     "/v1/plans",
+    operation_id="create_plan",
     response_model=Plan,
     responses=_RESPONSES,
     summary="Plan a route answered by the deadline (or in the background)",
@@ -329,6 +330,7 @@ def _gone(plan_id: str, lookup: Lookup, state: AppState) -> JSONResponse:
 
 @router.get(
     "/v1/plans/{plan_id}",
+    operation_id="get_plan",
     response_model=Plan,
     responses=_GONE,
     summary="The plan: its current best route while running, the final plan when done",
@@ -345,6 +347,7 @@ async def get_plan(plan_id: str, state: StateDep) -> Response:
 
 @router.delete(
     "/v1/plans/{plan_id}",
+    operation_id="cancel_plan",
     response_model=Plan,
     responses=_GONE,
     summary="Cancel a plan: stop its search and answer with its final state",
@@ -379,6 +382,7 @@ def _sse(event: str, data: bytes, event_id: int | None = None) -> bytes:
 
 @router.get(
     "/v1/plans/{plan_id}/events",
+    operation_id="plan_events",
     responses={
         200: {"description": "`improvement` events in order, then one `final` event (the Plan)"},
         **_GONE,

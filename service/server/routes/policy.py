@@ -22,6 +22,7 @@ _ADMIN_RESPONSES: dict[int | str, dict[str, object]] = {
 
 @router.get(
     "/v1/policy",
+    operation_id="get_policy",
     response_model=PolicyInfo,
     summary="The active policy's metadata",
     description="Also the policy a rollback would return to (previous_sha256) and any stored "
@@ -33,6 +34,7 @@ async def get_policy(state: StateDep) -> JSONResponse:
 
 @router.put(
     "/v1/policy",
+    operation_id="put_policy",
     response_model=PolicyInfo,
     responses={
         **_ADMIN_RESPONSES,
@@ -93,6 +95,7 @@ async def put_policy(
 
 @router.post(
     "/v1/policy/rollback",
+    operation_id="rollback_policy",
     response_model=PolicyInfo,
     responses={**_ADMIN_RESPONSES, 409: {"model": ErrorBody, "description": "no earlier policy"}},
     description="Good history entries only: a stored file that fails its sha256 or the "
