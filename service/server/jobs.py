@@ -280,12 +280,19 @@ class PlanJob:
         cost = self.best_cost_s
         bound = self.best_bound_s
         improvements, dropped = self.listed_improvements()
+        status, error = "running", None
+        try:
+            route = self.best_route()
+        except Exception as exc:  # say so: never a running plan that silently lost its route
+            log.exception("building the current route failed", extra={"plan_id": self.plan_id})
+            status, route = "error", None
+            error = f"building the answer failed: {type(exc).__name__}: {exc}"
         return {
             "plan_id": self.plan_id,
-            "status": "running",
+            "status": status,
             "origin_node": self.origin_node,
             "destination_node": self.destination_node,
-            "route": self.best_route(),
+            "route": route,
             "cost_s": cost,
             "lower_bound_s": bound,
             "gap": _gap(cost, bound),
@@ -296,7 +303,7 @@ class PlanJob:
             "policy_sha256": self.policy_sha256,
             "deadline_ms": self.deadline_ms,
             "timings": self.timings(),
-            "error": None,
+            "error": error,
         }
 
     def current_json(self) -> bytes:
