@@ -23,6 +23,7 @@ _FLAGS = {
     "max_body_bytes": "max_body_bytes",
     "background_max": "background_max",
     "background_ttl_s": "background_ttl_s",
+    "on_damaged_policy": "on_damaged_policy",
     "log_level": "log_level",
 }
 
@@ -82,10 +83,23 @@ def register(sub: Any) -> None:
     )
     p.add_argument("--max-body-bytes", type=int, default=None, help="request body limit (16384)")
     p.add_argument(
-        "--background-max", type=int, default=None, help="plans kept at once (default 64)"
+        "--background-max",
+        type=int,
+        default=None,
+        help="plans the plan store holds at once (default 10000)",
     )
     p.add_argument(
-        "--background-ttl-s", type=float, default=None, help="finished plans kept (default 300)"
+        "--background-ttl-s",
+        type=float,
+        default=None,
+        help="seconds a stored plan is kept after it finished (default 300)",
+    )
+    p.add_argument(
+        "--on-damaged-policy",
+        choices=("previous", "refuse"),
+        default=None,
+        help="a damaged stored active policy: start with the newest good one from the "
+        "history and report it (previous, the default), or refuse to start",
     )
     p.add_argument("--log-level", default=None, help="debug, info, warning, error")
     p.add_argument("--plain-logs", action="store_true", help="human-readable instead of JSON logs")
@@ -144,7 +158,7 @@ def run(args: argparse.Namespace) -> int:
 
     from dueroute.demo_data.build import resolve_graph_path
     from dueroute.service.server.app import configure_logging, create_app
-    from dueroute.service.server.policy_store import PolicyRejected
+    from dueroute.service.server.policy_store import PolicyDamaged, PolicyRejected
 
     settings = build_settings(args)
     configure_logging(settings.log_level, settings.log_json)
@@ -156,6 +170,8 @@ def run(args: argparse.Namespace) -> int:
         app = create_app(settings)
     except PolicyRejected as exc:
         raise InvalidRequest(f"policy refused: {'; '.join(exc.problems)}") from None
+    except PolicyDamaged as exc:
+        raise InvalidRequest(str(exc)) from None
     if getattr(args, "check", False):
         report = {
             "settings": settings.model_dump(mode="json"),

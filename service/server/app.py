@@ -17,11 +17,13 @@ import contextlib
 import gc
 import json
 import logging
+import re
 import sys
 import time
 import weakref
 from collections.abc import AsyncIterator, Awaitable, Callable, MutableMapping
 from contextlib import asynccontextmanager
+from pathlib import Path
 from typing import Any
 
 from fastapi import FastAPI, HTTPException, Request
@@ -32,8 +34,10 @@ from starlette.exceptions import HTTPException as StarletteHTTPException
 from dueroute.policies.runtime import DEFAULT_POLICY_PATH
 from dueroute.service.server.admission import Admission
 from dueroute.service.server.deps import AppState
-from dueroute.service.server.jobs import PlanningEngine, PlanStore
+from dueroute.service.server.jobs import PlanningEngine
+from dueroute.service.server.messages import validation_message
 from dueroute.service.server.metrics import ServiceMetrics
+from dueroute.service.server.plan_store import MemoryPlanStore
 from dueroute.service.server.policy_store import PolicyStore
 from dueroute.service.server.settings import Settings, get_settings
 
@@ -46,21 +50,6 @@ Send = Callable[[Message], Awaitable[None]]
 
 #: Shipped default policy (may not exist yet: then ``learned`` uses the fallback controller).
 DEFAULT_POLICY = DEFAULT_POLICY_PATH
-
-_JSON_EXAMPLE = (
-    'send a JSON object such as {"origin": {"node": 0}, "destination": {"node": 1}, '
-    '"deadline_ms": 100}'
-)
-
-# Hints appended to validation messages: what each field allows.
-_ALLOWED = {
-    "origin": 'an object {"node": <index 0..n_nodes-1>} or {"lat": -90..90, "lon": -180..180}',
-    "destination": 'an object {"node": <index 0..n_nodes-1>} or {"lat": -90..90, "lon": -180..180}',
-    "deadline_ms": "an integer number of milliseconds, 1..{max_deadline_ms}",
-    "controller": "one of learned, decreasing, ana, random, fixed:W with W in 1..5",
-    "wait": "true or false",
-}
-
 
 # ------------------------------------------------------------------------------------------
 # Structured logs
@@ -197,50 +186,6 @@ async def _too_large(send: Send, size: int, limit: int) -> None:
 
 
 # ------------------------------------------------------------------------------------------
-# Error shapes
-
-
-def _validation_message(exc: RequestValidationError, settings: Settings) -> str:
-    parts: list[str] = []
-    places: dict[str, tuple[int, str]] = {}
-    for err in exc.errors():
-        loc = [str(p) for p in err.get("loc", ()) if p != "body"]
-        kind = str(err.get("type", ""))
-        if kind == "json_invalid":
-            ctx = err.get("ctx") or {}
-            parts.append(
-                f"the body is not valid JSON ({ctx.get('error', 'parse error')}); {_JSON_EXAMPLE}"
-            )
-            continue
-        # Union members add their class name to the location; keep only field names.
-        loc = [p for p in loc if p not in ("NodeRef", "PointRef") and not p.startswith("function")]
-        where = ".".join(loc) or "body"
-        msg = "field required" if kind == "missing" else str(err.get("msg", "invalid value"))
-        field = next((p for p in loc if p in _ALLOWED), None)
-        if field in ("origin", "destination"):
-            # One line per place, not one per union member: keep the most specific error
-            # (a bad value beats "missing"/"extra" errors, which come from the other member).
-            rank = 1 if kind in ("missing", "extra_forbidden", "model_type", "dict_type") else 0
-            best = places.get(field)
-            if best is None or rank < best[0]:
-                places[field] = (rank, f"{where}: {msg}")
-            continue
-        hint = (
-            _ALLOWED[field].replace("{max_deadline_ms}", str(settings.max_deadline_ms))
-            if field
-            else None
-        )
-        text = f"{where}: {msg}"
-        if hint:
-            text += f" (allowed: {hint})"
-        if text not in parts:
-            parts.append(text)
-    for field, (_, text) in places.items():
-        parts.append(f"{text} (allowed for {field}: {_ALLOWED[field]})")
-    return "; ".join(parts) or "invalid request"
-
-
-# ------------------------------------------------------------------------------------------
 # Warm-up
 
 
@@ -287,7 +232,9 @@ def warm_up(state: AppState) -> None:
     )
     t_done = time.perf_counter()
     state.warmup = {
-        "graph": str(graph.path),
+        # names and fingerprints only: no server paths in public answers
+        "graph": Path(str(graph.path)).name if graph.path is not None else settings.graph,
+        "graph_name": graph.meta.get("name"),
         "nodes": graph.n_nodes,
         "edges": graph.n_edges,
         "graph_fingerprint": graph.fingerprint,
@@ -374,17 +321,23 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     """A new app. ``settings`` default: :func:`get_settings` (environment, validated now)."""
     settings = settings if settings is not None else get_settings()
     metrics = ServiceMetrics()
-    policies = PolicyStore(settings.policy_dir, settings.max_policy_bytes)
-    # Choose the active policy now: a bad --policy file fails the start, loudly.
+    policies = PolicyStore(
+        settings.policy_dir, settings.max_policy_bytes, on_damaged=settings.on_damaged_policy
+    )
+    # Choose the active policy now: a bad --policy file (or, with on_damaged_policy=refuse, a
+    # damaged stored one) fails the start, loudly.
     active = policies.startup(settings.policy, DEFAULT_POLICY if settings.shipped_policy else None)
     metrics.set_policy(active.sha256, active.source, active.fallback_controller)
+    metrics.policy_damaged.set(len(policies.damaged))
     state = AppState(
         settings=settings,
         metrics=metrics,
         admission=Admission(
             settings.workers, settings.min_search_ms, worker_nice=settings.worker_nice
         ),
-        plans=PlanStore(settings.background_max, settings.background_ttl_s),
+        plans=MemoryPlanStore(
+            settings.background_max, settings.background_max_bytes, settings.background_ttl_s
+        ),
         policies=policies,
     )
 
@@ -409,6 +362,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         version="1",
         summary="Best road route by a deadline, with a proven lower bound and gap.",
         lifespan=lifespan,
+        docs_url=None,  # served below from the packaged Swagger UI, not a CDN
+        redoc_url=None,
     )
     app.state.dueroute = state
 
@@ -416,28 +371,23 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     async def _on_validation(request: Request, exc: RequestValidationError) -> JSONResponse:
         if request.url.path == "/v1/plans":
             state.metrics.plans.labels(outcome="rejected").inc()
-        return JSONResponse(status_code=422, content={"detail": _validation_message(exc, settings)})
+        return JSONResponse(
+            status_code=422, content={"detail": validation_message(list(exc.errors()), settings)}
+        )
 
     @app.exception_handler(StarletteHTTPException)
     async def _on_http(request: Request, exc: StarletteHTTPException) -> JSONResponse:
-        if exc.status_code == 400 and request.url.path == "/v1/plans":
-            # FastAPI's answer to a body it cannot decode (e.g. not UTF-8): say what is allowed.
-            if request.url.path == "/v1/plans":
-                state.metrics.plans.labels(outcome="rejected").inc()
-            return JSONResponse(
-                status_code=422,
-                content={"detail": "the body is not valid JSON text (UTF-8); " + _JSON_EXAMPLE},
-            )
         headers = dict(getattr(exc, "headers", None) or {})
         if exc.status_code == 405:
             # One path may be served by several routes (GET and DELETE /v1/plans/{id}): list
             # every method allowed on it (RFC 9110 section 15.5.6), not the first route's only.
-            allowed = sorted(_allowed_methods(app, request.url.path))
+            allowed = sorted(_allowed_methods(routes_table, request.scope.get("path", "")))
             headers["Allow"] = ", ".join(allowed)
             detail = f"method {request.method} is not allowed here; allowed: {', '.join(allowed)}"
             return JSONResponse(status_code=405, content={"detail": detail}, headers=headers)
+        detail = exc.detail if isinstance(exc.detail, str) else json.dumps(exc.detail)
         return JSONResponse(
-            status_code=exc.status_code, content={"detail": exc.detail}, headers=headers or None
+            status_code=exc.status_code, content={"detail": detail}, headers=headers or None
         )
 
     @app.exception_handler(Exception)
@@ -448,23 +398,146 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             content={"detail": f"internal error ({type(exc).__name__}); see the service log"},
         )
 
-    from dueroute.service.server.routes import health, plans, policy, traffic
+    from dueroute.service.server.routes import docs, health, plans, policy, traffic
 
-    app.include_router(plans.router)
-    app.include_router(policy.router)
-    app.include_router(traffic.router)
-    app.include_router(health.router)
+    routers = (plans.router, policy.router, traffic.router, health.router, docs.router)
+    for router in routers:
+        app.include_router(router)
+    docs.mount_assets(app)
+    routes_table = _route_table(app, routers)
+    base_openapi = app.openapi
+
+    def openapi() -> dict[str, Any]:
+        if app.openapi_schema is None:
+            finish_openapi(base_openapi())
+        return app.openapi_schema  # type: ignore[return-value]
+
+    app.openapi = openapi  # type: ignore[method-assign]
     app.add_middleware(EdgeMiddleware, settings=settings)
     return app
 
 
-def _allowed_methods(app: FastAPI, path: str) -> set[str]:
-    methods: set[str] = set()
-    for route in app.routes:
+def _route_table(app: FastAPI, routers: Any) -> list[tuple[Any, set[str]]]:
+    """(path regex, methods) of every route: the app's own and each router's."""
+    table: list[tuple[Any, set[str]]] = []
+    candidates = list(app.router.routes)
+    for router in routers:
+        candidates += list(router.routes)
+    for route in candidates:
         regex = getattr(route, "path_regex", None)
-        if regex is not None and regex.match(path):
-            methods |= set(getattr(route, "methods", None) or ())
+        methods = getattr(route, "methods", None)
+        if regex is not None and methods:
+            table.append((regex, set(methods)))
+    return table
+
+
+def _allowed_methods(table: list[tuple[Any, set[str]]], path: str) -> set[str]:
+    methods: set[str] = set()
+    for regex, route_methods in table:
+        if regex.match(path):
+            methods |= route_methods
     return methods
+
+
+# ------------------------------------------------------------------------------------------
+# The published OpenAPI document: what FastAPI generates, made to match every answer
+
+
+def _component_schemas(model: Any) -> dict[str, Any]:
+    """``model``'s JSON Schema and those it refers to, keyed for ``components.schemas``."""
+    schema = model.model_json_schema(ref_template="#/components/schemas/{model}")
+    defs = schema.pop("$defs", {})
+    return {model.__name__: schema, **defs}
+
+
+def finish_openapi(spec: dict[str, Any]) -> None:
+    """Fix up FastAPI's document in place so that it says what the service sends.
+
+    * every 422 answer is an :class:`ErrorBody` (one message string), as the handler sends,
+      not FastAPI's default list of errors;
+    * ``POST /v1/plans`` reads its body itself (strict JSON, see ``json_body``): its request
+      body is published from :class:`PlanRequest`;
+    * the event stream is ``text/event-stream``, each event described with its ``data``
+      shape (``ImprovementEvent``, ``Plan``);
+    * the admin endpoints name their bearer token; a new background plan links to what can
+      be done with its id.
+    """
+    from dueroute.service.server.schemas import ImprovementEvent, PlanRequest
+
+    schemas = spec.setdefault("components", {}).setdefault("schemas", {})
+    error_ref = {"$ref": "#/components/schemas/ErrorBody"}
+    for ops in spec.get("paths", {}).values():
+        for op in ops.values():
+            invalid = op.get("responses", {}).get("422")
+            if invalid is not None:
+                invalid["content"] = {"application/json": {"schema": error_ref}}
+                if invalid.get("description") == "Validation Error":
+                    invalid["description"] = "a parameter or the body does not match the schema"
+    for name in ("HTTPValidationError", "ValidationError"):
+        schemas.pop(name, None)
+    schemas.update(_component_schemas(PlanRequest))
+    schemas.update(_component_schemas(ImprovementEvent))
+    create = spec["paths"]["/v1/plans"]["post"]
+    create["requestBody"] = {
+        "required": True,
+        "content": {"application/json": {"schema": {"$ref": "#/components/schemas/PlanRequest"}}},
+    }
+    # OpenAPI links: what a client (or a stateful tester) does with a new plan's id
+    plan_id = {"plan_id": "$response.body#/plan_id"}
+    create["responses"]["202"]["links"] = {
+        name: {"operationId": op, "parameters": plan_id, "description": text}
+        for name, op, text in (
+            ("poll", "get_plan", "the plan as it runs and once it finished"),
+            ("events", "plan_events", "its improvements as Server-Sent Events"),
+            ("cancel", "cancel_plan", "stop it"),
+        )
+    }
+    stream = spec["paths"]["/v1/plans/{plan_id}/events"]["get"]["responses"]["200"]
+
+    # One event of the stream (OpenAPI 3.1 has no itemSchema yet: for text/event-stream the
+    # schema describes each event, as OpenAPI 3.2 spells out); data is JSON whose shape
+    # contentSchema gives (JSON Schema 2020-12, section 8.5).
+    def event(kind: str, data_ref: str, id_text: str) -> dict[str, Any]:
+        return {
+            "type": "object",
+            "required": ["event", "id", "data"],
+            "properties": {
+                "event": {"const": kind},
+                "id": {"type": "string", "pattern": "^[0-9]+$", "description": id_text},
+                "data": {
+                    "type": "string",
+                    "contentMediaType": "application/json",
+                    "contentSchema": {"$ref": f"#/components/schemas/{data_ref}"},
+                },
+            },
+        }
+
+    stream["content"] = {
+        "text/event-stream": {
+            "schema": {
+                "description": "Server-Sent Events (WHATWG HTML): `improvement` events in "
+                "the order found, then one `final` event; `: keep-alive` comments every 15 s "
+                "while nothing happens",
+                "oneOf": [
+                    event("improvement", "ImprovementEvent", "the improvement's ordinal"),
+                    event("final", "Plan", "the number of improvements"),
+                ],
+            },
+            "example": 'id: 0\nevent: improvement\ndata: {"elapsed_ms":0.4,"expansions":'
+            '120,"cost_s":812.5,"lower_bound_s":640.2,"gap":0.212,"weight":2.0,"route":'
+            '{"travel_time_s":812.5,"length_m":9120.0,"node_count":88}}\n\n'
+            'id: 1\nevent: final\ndata: {"plan_id":"...","status":"optimal",...}\n\n',
+        }
+    }
+    spec.setdefault("components", {})["securitySchemes"] = {
+        "admin_token": {
+            "type": "http",
+            "scheme": "bearer",
+            "description": "the admin token (DUEROUTE_ADMIN_TOKEN or --admin-token-file)",
+        }
+    }
+    for path, method in (("/v1/policy", "put"), ("/v1/policy/rollback", "post")):
+        spec["paths"][path][method]["security"] = [{"admin_token": []}]
 
 
 async def _shutdown(state: AppState) -> None:
@@ -496,8 +569,18 @@ async def _warm(state: AppState) -> None:
         # serving, so the lag estimate starts afresh.
         state.loop_lag.reset()
     except Exception as exc:  # keep serving /healthz; /readyz reports the reason
-        state.warmup_error = f"{type(exc).__name__}: {exc}"
-        log.error("warm-up failed", extra={"error": state.warmup_error})
+        full = f"{type(exc).__name__}: {exc}"
+        state.warmup_error = public_text(full)
+        log.error("warm-up failed", extra={"error": full})
+
+
+_DIRECTORIES = re.compile(r"(?:~|\.{1,2})?(?:/[^/\s:;'\"(),]+)+/(?=[^/\s:;'\"(),]+)")
+
+
+def public_text(text: str) -> str:
+    """``text`` with directories left out of every file path (``/srv/g/x.npz`` -> ``x.npz``),
+    for answers anyone may read; the log keeps the full text."""
+    return _DIRECTORIES.sub("", text)
 
 
 async def _sweep(state: AppState) -> None:
@@ -505,5 +588,5 @@ async def _sweep(state: AppState) -> None:
     while True:
         await asyncio.sleep(1.0)
         state.plans.expire()
-        state.metrics.background.set(len(state.plans))
+        state.metrics.observe_store(state.plans.stats())
         state.metrics.loop_lag.set(state.loop_lag.estimate_ms() / 1000.0)

@@ -11,8 +11,9 @@ from typing import Annotated, Any
 from fastapi import Depends, HTTPException, Request
 
 from dueroute.service.server.admission import Admission, LoopLag
-from dueroute.service.server.jobs import PlanningEngine, PlanStore
+from dueroute.service.server.jobs import PlanningEngine
 from dueroute.service.server.metrics import ServiceMetrics
+from dueroute.service.server.plan_store import PlanStore
 from dueroute.service.server.policy_store import PolicyStore
 from dueroute.service.server.settings import Settings
 
@@ -30,7 +31,7 @@ class AppState:
     engine: PlanningEngine | None = None  # set once the graph is loaded and warmed up
     traffic: Any = None  # service.server.traffic_store.LiveTraffic, set with the engine
     ready: bool = False
-    warmup_error: str | None = None
+    warmup_error: str | None = None  # why the warm-up failed (a permanent failure)
     warmup: dict[str, Any] = field(default_factory=dict)
     started_wall: float = field(default_factory=time.time)
     tasks: list[asyncio.Task[Any]] = field(default_factory=list)

@@ -1,26 +1,31 @@
 """Planning jobs: one search per plan, answered in place (wait), in the background, or streamed.
 
 A :class:`PlanJob` is written by exactly one worker thread (improvements, then the final plan)
-and read by the event loop. Readers never lock: ``improvements`` only grows (list appends are
-atomic under the GIL) and ``final`` is assigned once, after which the job never changes.
+and read by the event loop. The improvement trace is a bounded ring guarded by a small lock
+(the worker appends, readers copy); the final plan is published once, as a dict for a waiting
+request and as its JSON bytes for everything else, after which the job never changes.
 Event-loop waiters are woken with ``loop.call_soon_threadsafe``.
 
-The :class:`PlanStore` keeps plans for ``GET``/``DELETE``/event streams: at most
-``background_max`` at once, each finished plan forgotten ``background_ttl_s`` after it
-finished; when full, the oldest finished plan makes room, and when every slot holds a running
-plan a new background plan is refused (:class:`StoreFull`).
+Answers list the last ``listed`` improvements and count the ones dropped before them
+(``improvements_dropped``); ``full_trace=true`` lists up to :data:`FULL_TRACE_MAX`. A job that
+fails in any way (the search, the route geometry, the JSON) ends with status ``error`` and an
+``error`` text, never half-finished: :meth:`PlanningEngine.run` never raises.
+
+Where plans are kept between requests is :mod:`service.server.plan_store`.
 """
 
 from __future__ import annotations
 
 import asyncio
 import contextlib
+import itertools
 import json
 import logging
-import secrets
+import math
 import threading
 import time
-from collections import OrderedDict
+from collections import deque
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -33,8 +38,22 @@ from dueroute.service.server.admission import Ticket
 log = logging.getLogger("dueroute.service.jobs")
 
 
-def new_plan_id() -> str:
-    return secrets.token_urlsafe(12)
+#: Improvements a stored plan holds for its event stream while it runs; a reader that falls
+#: further behind than this skips the oldest (the event ids show the gap).
+STREAM_BUFFER = 256
+
+#: The most improvements an answer lists with ``full_trace=true`` (the oldest beyond it are
+#: dropped and counted, so even a full trace is bounded: about 1.3 MB of JSON).
+FULL_TRACE_MAX = 10_000
+
+#: Byte estimates for the plan store's memory bound (measured with ``tracemalloc`` on
+#: CPython 3.11: one held improvement with its route summary is ~700 bytes of Python objects).
+IMPROVEMENT_BYTES = 700
+#: The job object, its ticket, ids, timings and locks.
+PLAN_OVERHEAD_BYTES = 4_096
+#: What a running plan's route is assumed to hold until it finishes and its size is known
+#: (a 2,000-edge route as node and edge arrays plus its geometry as JSON).
+ROUTE_RESERVE_BYTES = 64 * 1024
 
 
 # ------------------------------------------------------------------------------------------
@@ -110,8 +129,11 @@ def improvement_dict(imp: Improvement) -> dict[str, Any]:
 def _float_or_none(v: Any) -> float | None:
     if v is None:
         return None
-    f = float(v)
-    return f if np.isfinite(f) else None
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return None
+    return f if math.isfinite(f) else None
 
 
 # ------------------------------------------------------------------------------------------
@@ -120,7 +142,11 @@ def _float_or_none(v: Any) -> float | None:
 
 @dataclass(eq=False)
 class PlanJob:
-    """One plan: request, progress written by its worker thread, and the final answer."""
+    """One plan: request, progress written by its worker thread, and the final answer.
+
+    ``listed`` is how many of the last improvements an answer lists; ``trace_limit`` how many
+    the job holds (at least ``listed``; more for a stored plan's event stream).
+    """
 
     plan_id: str
     origin_node: int
@@ -139,7 +165,17 @@ class PlanJob:
     graph: Any = None
     #: the live cost version the search runs on (taken when the search starts), or None
     costs: Any = None
-    improvements: list[dict[str, Any]] = field(default_factory=list)
+    kept: bool = False  # held in the plan store (background, or wait=true with keep=true)
+    #: A request waits for the final plan as a dict (wait=true, until it has answered).
+    waiting: bool = False
+    listed: int = 20
+    trace_limit: int = 20
+    #: Every improvement's published fields plus a route summary, oldest first; at most
+    #: ``trace_limit`` are held, ``improvement_count`` counts them all.
+    trace: deque[dict[str, Any]] = field(default_factory=deque)
+    improvement_count: int = 0
+    #: Some improvement came from the search (not only the instant route it opened with).
+    found_by_search: bool = False
     #: (int64[k + 1] node indices, int64[k] edge indices) of the incumbent route, or None
     best: tuple[Any, Any] | None = None
     best_cost_s: float | None = None
@@ -148,13 +184,24 @@ class PlanJob:
     status: str = "running"
     started_s: float | None = None
     search_end_s: float | None = None
+    #: The final plan as a dict, kept only while a waiting request needs it.
     final: dict[str, Any] | None = None
-    finished_wall: float | None = None  # time.monotonic() when final was set (for the TTL)
+    #: The final plan as JSON (what GET, DELETE and the event stream send); set once.
+    final_json: bytes | None = None
+    finished_s: float | None = None  # time.perf_counter() when the final plan was published
+    #: Called once, in the thread that publishes the final plan (the store's accounting).
+    on_finish: Callable[[PlanJob], None] | None = None
     done: threading.Event = field(default_factory=threading.Event)
     _subscribers: list[tuple[asyncio.AbstractEventLoop, asyncio.Event]] = field(
         default_factory=list
     )
     _sub_lock: threading.Lock = field(default_factory=threading.Lock)
+    #: Guards ``trace``, ``improvement_count`` and the publication of the final plan.
+    lock: threading.Lock = field(default_factory=threading.Lock)
+
+    def __post_init__(self) -> None:
+        self.trace_limit = max(self.trace_limit, self.listed)
+        self.trace = deque(self.trace, maxlen=self.trace_limit)
 
     @property
     def cancel(self) -> threading.Event:
@@ -163,7 +210,28 @@ class PlanJob:
 
     @property
     def finished(self) -> bool:
-        return self.final is not None
+        return self.final_json is not None
+
+    # -- written by the worker thread ----------------------------------------------------
+    def add_improvement(self, entry: dict[str, Any]) -> None:
+        with self.lock:
+            self.trace.append(entry)
+            self.improvement_count += 1
+            if entry.get("source") == "search":
+                self.found_by_search = True
+
+    def trace_since(self, after: int) -> tuple[int, list[dict[str, Any]], bool]:
+        """``(first, entries, finished)``: held improvements with ordinal > ``after``.
+
+        ``first`` is the ordinal of ``entries[0]`` (above ``after + 1`` when older ones were
+        dropped); ``finished`` says the final plan was published before the copy, so no
+        improvement can follow these.
+        """
+        with self.lock:
+            held_from = self.improvement_count - len(self.trace)
+            first = max(after + 1, held_from)
+            entries = list(itertools.islice(self.trace, first - held_from, None))
+            return first, entries, self.final_json is not None
 
     # -- notifications (worker thread -> event loop) --------------------------------------
     def subscribe(self) -> asyncio.Event:
@@ -188,8 +256,7 @@ class PlanJob:
         """The status of the best route so far, for an answer given before the search ended."""
         if self.best is None:
             return "not_found"
-        found = any(i.get("source") == "search" for i in self.improvements)
-        return "improved" if found else "instant"
+        return "improved" if self.found_by_search else "instant"
 
     def best_route(self) -> dict[str, Any] | None:
         best = self.best
@@ -207,29 +274,78 @@ class PlanJob:
             "total_ms": (now - self.arrival_s) * 1000.0,
         }
 
+    def listed_improvements(self) -> tuple[list[dict[str, Any]], int]:
+        """The last ``listed`` improvements (published fields) and how many came before them."""
+        with self.lock:
+            entries = list(self.trace)[-self.listed :] if self.listed else []
+            count = self.improvement_count
+        return [_published(e) for e in entries], count - len(entries)
+
+    def release_final(self) -> None:
+        """The waiting request has answered: keep only the JSON from now on."""
+        with self.lock:
+            self.waiting = False
+            self.final = None
+
     def current(self) -> dict[str, Any]:
         """The plan as it stands: the final plan once finished, else the current best."""
         if self.final is not None:
             return self.final
+        if self.final_json is not None:
+            return dict(json.loads(self.final_json))
         cost = self.best_cost_s
         bound = self.best_bound_s
+        improvements, dropped = self.listed_improvements()
+        status, error = "running", None
+        try:
+            route = self.best_route()
+        except Exception as exc:  # say so: never a running plan that silently lost its route
+            log.exception("building the current route failed", extra={"plan_id": self.plan_id})
+            status, route = "error", None
+            error = f"building the answer failed: {type(exc).__name__}: {exc}"
         return {
             "plan_id": self.plan_id,
-            "status": "running",
+            "status": status,
             "origin_node": self.origin_node,
             "destination_node": self.destination_node,
-            "route": self.best_route(),
+            "route": route,
             "cost_s": cost,
             "lower_bound_s": bound,
             "gap": _gap(cost, bound),
-            "improvements": [_published(i) for i in self.improvements],
+            "improvements": improvements,
+            "improvements_dropped": dropped,
             "expansions": self.expansions,
             "controller": self.controller,
             "policy_sha256": self.policy_sha256,
             "deadline_ms": self.deadline_ms,
             "timings": self.timings(),
             **traffic_fields(self.costs),
+            "error": error,
         }
+
+    def current_json(self) -> bytes:
+        """:meth:`current` as JSON (the published bytes once finished: no re-encoding)."""
+        final_json = self.final_json
+        if final_json is not None:
+            return final_json
+        return dumps(self.current())
+
+    def estimated_bytes(self) -> int:
+        """What this plan holds, for the plan store's memory bound.
+
+        Running: the fixed parts, a full trace ring and :data:`ROUTE_RESERVE_BYTES`. Finished:
+        the fixed parts, the held trace and the final plan's JSON (the dict is dropped once no
+        request waits for it).
+        """
+        final_json = self.final_json
+        if final_json is None:
+            return PLAN_OVERHEAD_BYTES + self.trace_limit * IMPROVEMENT_BYTES + ROUTE_RESERVE_BYTES
+        return PLAN_OVERHEAD_BYTES + len(self.trace) * IMPROVEMENT_BYTES + len(final_json)
+
+
+def reserve_bytes(trace_limit: int) -> int:
+    """:meth:`PlanJob.estimated_bytes` of a running plan holding up to ``trace_limit``."""
+    return PLAN_OVERHEAD_BYTES + trace_limit * IMPROVEMENT_BYTES + ROUTE_RESERVE_BYTES
 
 
 def traffic_fields(costs: Any) -> dict[str, Any]:
@@ -254,73 +370,6 @@ def _gap(cost: float | None, bound: float) -> float | None:
 
 def dumps(obj: Any) -> bytes:
     return json.dumps(obj, separators=(",", ":"), allow_nan=False).encode()
-
-
-# ------------------------------------------------------------------------------------------
-# Store
-
-
-class StoreFull(Exception):
-    def __init__(self, message: str, retry_after_s: int) -> None:
-        super().__init__(message)
-        self.retry_after_s = retry_after_s
-
-
-class PlanStore:
-    """Bounded plan store with a TTL for finished plans (event-loop thread only)."""
-
-    def __init__(self, max_plans: int, ttl_s: float) -> None:
-        self.max_plans = max_plans
-        self.ttl_s = ttl_s
-        self._plans: OrderedDict[str, PlanJob] = OrderedDict()  # insertion order = age
-        self.expired_total = 0
-        self.evicted_total = 0
-
-    def __len__(self) -> int:
-        return len(self._plans)
-
-    def get(self, plan_id: str) -> PlanJob | None:
-        self.expire()
-        return self._plans.get(plan_id)
-
-    def expire(self, now_wall: float | None = None) -> int:
-        """Forget finished plans older than the TTL; returns how many went."""
-        now = time.monotonic() if now_wall is None else now_wall
-        gone = [
-            pid
-            for pid, job in self._plans.items()
-            if job.finished_wall is not None and now - job.finished_wall >= self.ttl_s
-        ]
-        for pid in gone:
-            del self._plans[pid]
-        self.expired_total += len(gone)
-        return len(gone)
-
-    def reserve(self, *, required: bool, now_s: float) -> bool:
-        """Make room for one plan; ``required`` (background) raises :class:`StoreFull`."""
-        self.expire()
-        if len(self._plans) < self.max_plans:
-            return True
-        for pid, job in self._plans.items():  # oldest first
-            if job.finished:
-                del self._plans[pid]
-                self.evicted_total += 1
-                return True
-        if not required:
-            return False
-        soonest = min(j.search_deadline_s for j in self._plans.values())
-        raise StoreFull(
-            f"the plan store is full: all {self.max_plans} slots hold running background plans; "
-            "retry when one finishes, cancel one with DELETE /v1/plans/{plan_id}, or use "
-            "wait=true",
-            retry_after_s=max(1, int(np.ceil(max(0.0, soonest - now_s)))),
-        )
-
-    def add(self, job: PlanJob) -> None:
-        self._plans[job.plan_id] = job
-
-    def running(self) -> int:
-        return sum(1 for j in self._plans.values() if not j.finished)
 
 
 # ------------------------------------------------------------------------------------------
@@ -359,17 +408,19 @@ class PlanningEngine:
         return make_controller(spec)
 
     def run(self, job: PlanJob, ticket: Ticket) -> dict[str, Any]:
-        """Search until the job's search deadline, the optimum, or cancellation; set ``final``.
+        """Search until the job's search deadline, the optimum, or cancellation; publish it.
 
         Runs on a worker thread, through :func:`dueroute.planner.session.plan` (the one search
-        loop); each improvement records its route for the current-best view. Never raises: a
-        failure is logged and the job ends ``no_route`` with an ``error`` field, so no caller
-        waits forever.
+        loop); each improvement records its route for the current-best view. Never raises:
+        any failure (search, route geometry, JSON) is logged and the job ends with status
+        ``error`` and an ``error`` text saying what failed, so no caller or stream waits
+        forever and the worker is free for the next plan.
         """
-        job.started_s = ticket.started_s if ticket.started_s is not None else time.perf_counter()
-        result = None
-        error: str | None = None
         try:
+            job.started_s = (
+                ticket.started_s if ticket.started_s is not None else time.perf_counter()
+            )
+            result = None
             if ticket.cancel.is_set():
                 status = "cancelled"
             else:
@@ -396,11 +447,10 @@ class PlanningEngine:
                     costs=job.costs,
                 )
                 status = str(result.status)
-        except Exception as exc:  # never leave a caller waiting
+        except Exception as exc:
             log.exception("search failed", extra={"plan_id": job.plan_id})
-            status = "no_route"
-            error = f"{type(exc).__name__}: {exc}"
-        return self.finish(job, status, result, error)
+            return self.fail(job, f"the search failed: {type(exc).__name__}: {exc}")
+        return self.finish(job, status, result)
 
     def _record(self, job: PlanJob, imp: Improvement) -> None:
         """Called in the search thread on every improvement (counts against the deadline)."""
@@ -418,25 +468,82 @@ class PlanningEngine:
         job.best_cost_s = entry["cost_s"]
         job.best_bound_s = entry["lower_bound_s"] or 0.0
         job.expansions = entry["expansions"]
-        job.improvements.append(entry)
+        job.add_improvement(entry)
         job.notify()
 
-    def finish(
-        self, job: PlanJob, status: str, result: Any, error: str | None = None
-    ) -> dict[str, Any]:
-        """Publish the final plan (once) and wake every waiter."""
+    def finish(self, job: PlanJob, status: str, result: Any) -> dict[str, Any]:
+        """Build and publish the final plan; a failure while building it ends in ``error``."""
+        if job.finished:
+            return job.current()
         job.search_end_s = time.perf_counter()
-        final = self._final(job, status, result)
-        if error is not None:
-            final["error"] = error
-        job.final = final
-        job.status = final["status"]
-        job.finished_wall = time.monotonic()
+        try:
+            final = self._final(job, status, result)
+            body = dumps(final)
+        except Exception as exc:
+            log.exception("building the final plan failed", extra={"plan_id": job.plan_id})
+            return self.fail(job, f"building the answer failed: {type(exc).__name__}: {exc}")
+        return self._publish(job, final, body)
+
+    def fail(self, job: PlanJob, error: str) -> dict[str, Any]:
+        """Publish a final plan with status ``error`` (touches neither graph nor route)."""
+        if job.finished:
+            return job.current()
+        if job.search_end_s is None:
+            job.search_end_s = time.perf_counter()
+        improvements, dropped = job.listed_improvements()
+        final = {
+            "plan_id": job.plan_id,
+            "status": "error",
+            "origin_node": job.origin_node,
+            "destination_node": job.destination_node,
+            "route": None,
+            "cost_s": None,
+            "lower_bound_s": _float_or_none(job.best_bound_s) or 0.0,
+            "gap": None,
+            "improvements": [
+                {k: _float_or_none(v) if k != "expansions" else v for k, v in i.items()}
+                for i in improvements
+            ],
+            "improvements_dropped": dropped,
+            "expansions": int(job.expansions),
+            "controller": job.controller,
+            "policy_sha256": job.policy_sha256,
+            "deadline_ms": job.deadline_ms,
+            "timings": job.timings(),
+            **traffic_fields(job.costs),
+            "error": error,
+        }
+        try:
+            body = dumps(final)
+        except ValueError:  # a non-finite number slipped into the improvements: list none
+            final["improvements"] = []
+            final["improvements_dropped"] = job.improvement_count
+            body = dumps(final)
+        return self._publish(job, final, body)
+
+    def _publish(self, job: PlanJob, final: dict[str, Any], body: bytes) -> dict[str, Any]:
+        with job.lock:
+            if job.final_json is not None:  # published already (never twice)
+                return job.current()
+            # A finished plan's stream replays what its answer lists: trim the ring to that.
+            while len(job.trace) > job.listed:
+                job.trace.popleft()
+            job.final = final if job.waiting else None  # only a waiting request needs the dict
+            job.final_json = body
+            job.status = final["status"]
+            job.finished_s = time.perf_counter()
+            job.best = None  # the route is in the JSON now
+        if job.on_finish is not None:  # accounted before anyone is told it finished
+            try:
+                job.on_finish(job)
+            except Exception:  # the store's bookkeeping must not undo a published answer
+                log.exception("plan store bookkeeping failed", extra={"plan_id": job.plan_id})
         job.done.set()
         job.notify()
         return final
 
     def _final(self, job: PlanJob, status: str, result: Any) -> dict[str, Any]:
+        limit = job.listed
         if result is not None:
             feature = route_feature(self.graph, result.route, result.route_edges, job.costs)
             cost = _float_or_none(result.cost_s)
@@ -444,14 +551,16 @@ class PlanningEngine:
             if bound is None:
                 bound = job.best_bound_s
             gap = _float_or_none(result.gap)
-            improvements = [improvement_dict(i) for i in result.improvements]
+            listed = list(result.improvements[-limit:]) if limit else []
+            improvements = [improvement_dict(i) for i in listed]
+            dropped = len(result.improvements) - len(listed)
             expansions = int(result.expansions)
         else:
             feature = job.best_route()
             cost = job.best_cost_s
             bound = job.best_bound_s
             gap = _gap(cost, bound)
-            improvements = [_published(i) for i in job.improvements]
+            improvements, dropped = job.listed_improvements()
             expansions = job.expansions
         if feature is None and status not in ("cancelled", "no_route", "not_found"):
             status = "not_found"
@@ -465,10 +574,12 @@ class PlanningEngine:
             "lower_bound_s": bound,
             "gap": gap if feature is not None else None,
             "improvements": improvements,
+            "improvements_dropped": dropped,
             "expansions": expansions,
             "controller": job.controller,
             "policy_sha256": job.policy_sha256,
             "deadline_ms": job.deadline_ms,
             "timings": job.timings(),
             **traffic_fields(job.costs),
+            "error": None,
         }

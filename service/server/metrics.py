@@ -44,8 +44,8 @@ class ServiceMetrics:
         r = self.registry
         self.plans = Counter(
             "dueroute_plans",
-            "Plan requests by outcome (optimal, improved, instant, no_route, not_found, cancelled, shed, "
-            "rejected)",
+            "Plan requests by outcome (optimal, improved, instant, no_route, not_found, "
+            "cancelled, error, shed, store_full, rejected, not_ready, accepted_background)",
             ["outcome"],
             registry=r,
         )
@@ -103,6 +103,30 @@ class ServiceMetrics:
             "dueroute_queued_plans", "Admitted plans waiting for a worker", registry=r
         )
         self.background = Gauge("dueroute_stored_plans", "Plans held in the plan store", registry=r)
+        self.store_bytes = Gauge(
+            "dueroute_plan_store_bytes",
+            "The plan store's byte estimate of what its plans hold",
+            registry=r,
+        )
+        self.store_running = Gauge(
+            "dueroute_plan_store_running", "Stored plans still running", registry=r
+        )
+        self.store_expired = Gauge(
+            "dueroute_plan_store_expired",
+            "Stored plans forgotten after their time to live, since start",
+            registry=r,
+        )
+        self.store_refusals = Counter(
+            "dueroute_plan_store_refusals",
+            "Plans refused (503) because the plan store was full, by the limit reached",
+            ["limit"],
+            registry=r,
+        )
+        self.policy_damaged = Gauge(
+            "dueroute_policy_damaged_files",
+            "Stored policy files that failed their sha256 or validity check at start-up",
+            registry=r,
+        )
         self.policy_swaps = Counter(
             "dueroute_policy_changes",
             "Policy swaps and rollbacks by result",
@@ -116,6 +140,12 @@ class ServiceMetrics:
         self.policy.info(
             {"sha256": sha256 or "", "source": source, "fallback_controller": fallback or ""}
         )
+
+    def observe_store(self, stats: dict[str, float | int]) -> None:
+        self.background.set(stats["plans"])
+        self.store_bytes.set(stats["bytes"])
+        self.store_running.set(stats["running"])
+        self.store_expired.set(stats["expired_total"])
 
     def render(self) -> bytes:
         return generate_latest(self.registry)

@@ -12,9 +12,12 @@ from pydantic import (
     BaseModel,
     BeforeValidator,
     ConfigDict,
+    Discriminator,
     Field,
+    Strict,
     StrictBool,
     StrictInt,
+    Tag,
 )
 
 from dueroute.planner import limits
@@ -28,8 +31,12 @@ MAX_DEADLINE_MS = int(limits.MAX_DEADLINE_MS)
 CONTROLLER_PATTERN = r"^(learned|decreasing|ana|random|fixed:([1-4](\.[0-9]+)?|5(\.0+)?))$"
 
 PlanStatus = Literal[
-    "running", "optimal", "improved", "instant", "no_route", "not_found", "cancelled"
+    "running", "optimal", "improved", "instant", "no_route", "not_found", "cancelled", "error"
 ]
+
+#: How many of the last improvements a plan lists without ``full_trace`` (settings may change
+#: it); the published default.
+DEFAULT_IMPROVEMENTS_LISTED = 20
 
 
 def _whole_number(v: Any) -> Any:
@@ -53,12 +60,39 @@ class NodeRef(BaseModel):
 class PointRef(BaseModel):
     """A WGS84 point; the service snaps it to the nearest road node."""
 
-    model_config = ConfigDict(extra="forbid")
-    lat: float = Field(..., ge=-90.0, le=90.0, allow_inf_nan=False)
-    lon: float = Field(..., ge=-180.0, le=180.0, allow_inf_nan=False)
+    # strict: a JSON number only ("47.13" and true are refused, 47 is 47.0)
+    model_config = ConfigDict(extra="forbid", strict=True)
+    lat: float = Field(..., ge=-90.0, le=90.0, allow_inf_nan=False, description="degrees north")
+    lon: float = Field(..., ge=-180.0, le=180.0, allow_inf_nan=False, description="degrees east")
 
 
-Place = NodeRef | PointRef
+def place_kind(value: Any) -> str | None:
+    """Which kind of place an object is, by its keys: ``node``, ``point`` or None (neither or
+    both), so a bad place gets the errors of the one kind it meant, not of both."""
+    if isinstance(value, NodeRef):
+        return "node"
+    if isinstance(value, PointRef):
+        return "point"
+    if not isinstance(value, dict):
+        return None
+    by_node = "node" in value
+    by_point = "lat" in value or "lon" in value
+    if by_node != by_point:
+        return "node" if by_node else "point"
+    return None
+
+
+#: The error type of a place that is neither kind (see ``app._validation_message``).
+PLACE_ERROR = "place_kind"
+
+Place = Annotated[
+    Annotated[NodeRef, Tag("node")] | Annotated[PointRef, Tag("point")],
+    Discriminator(
+        place_kind,
+        custom_error_type=PLACE_ERROR,
+        custom_error_message="a place is an object with either node, or lat and lon",
+    ),
+]
 
 
 class PlanRequest(BaseModel):
@@ -95,7 +129,7 @@ class PlanRequest(BaseModel):
     wait: StrictBool = Field(
         True, description="true: answer with the plan; false: 202 and run in the background"
     )
-    gap_target: float = Field(
+    gap_target: Annotated[float, Strict()] = Field(  # a JSON number (true/"0.1" refused)
         default=0.0,
         ge=0.0,
         lt=1.0,
@@ -103,6 +137,16 @@ class PlanRequest(BaseModel):
         description="relative gap tolerance, like a MIP solver's: the search stops as soon as "
         "(cost - bound) / cost is at or below it and answers at once (0: search until the "
         "deadline or the proof)",
+    )
+    keep: StrictBool = Field(
+        False,
+        description="wait=true only: also keep the answered plan in the plan store for GET "
+        "(background plans are always kept); refused with 503 when the store is full",
+    )
+    full_trace: StrictBool = Field(
+        False,
+        description="list every improvement (at most 10000, the oldest beyond that are "
+        "dropped and counted) instead of the last few",
     )
 
 
@@ -127,15 +171,29 @@ class RouteFeature(BaseModel):
 
 
 class Improvement(BaseModel):
-    elapsed_ms: float
-    expansions: int
-    cost_s: float
-    lower_bound_s: float
-    gap: float
+    """A new best route found by the search."""
+
+    elapsed_ms: float = Field(description="since the request arrived")
+    expansions: int = Field(description="node expansions so far")
+    cost_s: float = Field(description="travel time of the new route")
+    lower_bound_s: float = Field(description="proven lower bound on the optimum at that moment")
+    gap: float = Field(description="(cost_s - lower_bound_s) / cost_s")
     weight: float | None = Field(description="weight in force (null for the instant route)")
     source: Literal["instant", "search"] = Field(
         description="instant: the route every search starts from; search: found by the search"
     )
+
+
+class RouteSummary(BaseModel):
+    travel_time_s: float
+    length_m: float
+    node_count: int
+
+
+class ImprovementEvent(Improvement):
+    """The data of an ``improvement`` event of ``GET /v1/plans/{plan_id}/events``."""
+
+    route: RouteSummary | None = Field(None, description="the new route in brief")
 
 
 class Timings(BaseModel):
@@ -145,15 +203,29 @@ class Timings(BaseModel):
 
 
 class Plan(BaseModel):
+    """A plan: the best route found, its proven bound and gap, and how the search went."""
+
     plan_id: str
-    status: PlanStatus
+    status: PlanStatus = Field(
+        description="running; optimal (proven); improved (the deadline or gap target came "
+        "first: the best route the search found); instant (the deadline came first: the route "
+        "every search opens with); no_route (proven unreachable); not_found (the deadline came "
+        "before any route); cancelled (DELETE, with the best route so far); error (the plan "
+        "failed: see error)"
+    )
     origin_node: int
     destination_node: int
     route: RouteFeature | None
     cost_s: float | None
     lower_bound_s: float
     gap: float | None
-    improvements: list[Improvement]
+    improvements: list[Improvement] = Field(
+        description="the last improvements, oldest first (all of them, up to 10000, with "
+        "full_trace=true)"
+    )
+    improvements_dropped: int = Field(
+        description="how many earlier improvements are not listed", ge=0
+    )
     expansions: int
     controller: str
     policy_sha256: str | None
@@ -168,6 +240,7 @@ class Plan(BaseModel):
         "on, so the bound was lowered to stay proven (see bound_note)",
     )
     bound_note: str | None = None
+    error: str | None = Field(description="what failed, for status error; else null")
 
 
 class PlanLinks(BaseModel):
@@ -182,26 +255,66 @@ class PlanAccepted(BaseModel):
 
 
 class ErrorBody(BaseModel):
-    detail: Any = Field(description="what was wrong and what is allowed")
+    detail: str = Field(description="what was wrong and what is allowed")
+
+
+class PolicyRefused(BaseModel):
+    """A policy upload that was refused: every problem, and the same text joined."""
+
+    detail: str
+    problems: list[str]
+
+
+class PolicyDamage(BaseModel):
+    """A file in the policy directory that failed its check at start-up."""
+
+    file: str = Field(description="its name inside the policy directory")
+    sha256: str | None = Field(description="the policy the file should hold")
+    problem: str
+    action: str = Field(description="what the service did about it")
+    was_active: bool = Field(description="the pointer named it as the active policy")
+
+
+class TrainedOn(BaseModel):
+    graph_name: str | None
+    graph_fingerprint: str | None
+    created_utc: str | None
+    training_config: Any = None
 
 
 class PolicyInfo(BaseModel):
     """Metadata of a policy (the active one, or one checked in a dry run)."""
 
-    model_config = ConfigDict(extra="allow")
     sha256: str | None
-    active: bool = True
-    dry_run: bool = False
-    source: str = Field(description="where it came from: 'file', 'upload', 'none'")
-    fallback_controller: str | None = Field(
-        None, description="controller used for 'learned' while no policy is active"
+    active: bool
+    dry_run: bool
+    source: str = Field(
+        description="where it came from: 'file:NAME' (--policy), 'upload', 'rollback', "
+        "'policy_dir' (persisted), 'default:NAME' (shipped), 'none'"
     )
-    schema_version: Any = None
+    fallback_controller: str | None = Field(
+        description="controller used for 'learned' while no policy is active"
+    )
+    activated_at: str | None
+    previous_sha256: str | None = Field(
+        description="the policy POST /v1/policy/rollback would re-activate (null: none)"
+    )
+    damaged: list[PolicyDamage] = Field(
+        description="stored policy files found damaged at start-up (empty: none)"
+    )
+    size_bytes: int | None = None
+    schema_version: int | None = None
     feature_names: list[str] | None = None
     weights: list[float] | None = None
-    trained_on: Any = None
-    activated_at: str | None = None
-    previous_sha256: str | None = None
+    action_kind: str | None = None
+    action_meanings: list[str] | None = None
+    initial_weight: float | None = None
+    contract_expansions: int | None = None
+    decision_steps: int | None = None
+    graph_fingerprint: str | None = None
+    graph_name: str | None = None
+    created_utc: str | None = None
+    trained_on: TrainedOn | None = None
 
 
 class Health(BaseModel):
@@ -210,7 +323,13 @@ class Health(BaseModel):
 
 
 RESPONSES_4XX: dict[int | str, dict[str, Any]] = {
+    400: {
+        "model": ErrorBody,
+        "description": "the body is not readable JSON: syntax, encoding, a duplicate key, "
+        "nesting deeper than 16, or a number literal longer than 40 characters",
+    },
     404: {"model": ErrorBody, "description": "unknown node, point off the network, unknown id"},
     413: {"model": ErrorBody, "description": "request body too large"},
+    415: {"model": ErrorBody, "description": "Content-Type is not application/json"},
     422: {"model": ErrorBody, "description": "body does not match the schema"},
 }

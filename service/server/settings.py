@@ -10,6 +10,7 @@ from __future__ import annotations
 import os
 from functools import lru_cache
 from pathlib import Path
+from typing import Literal
 
 from pydantic import Field, SecretStr, field_validator, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
@@ -62,6 +63,13 @@ class Settings(BaseSettings):
     )
     max_traffic_bytes: int = Field(
         default=8_000_000, ge=1024, description="largest POST /v1/traffic body in bytes (413 above)"
+    )
+    on_damaged_policy: Literal["previous", "refuse"] = Field(
+        default="previous",
+        description="when the stored active policy fails its sha256 or validity check at "
+        "start-up: 'previous' starts with the newest good policy of its history and reports "
+        "the damage on /v1/policy, /readyz and a metric; 'refuse' stops the start with a "
+        "message naming the file",
     )
     admin_token: SecretStr | None = Field(
         default=None,
@@ -130,12 +138,28 @@ class Settings(BaseSettings):
         default=limits.DEFAULT_STEPS, ge=1, le=1000, description="decision steps per search"
     )
     background_max: int = Field(
-        default=64,
+        default=10_000,
         ge=1,
-        description="plans kept at once (running background plans + finished ones)",
+        description="plans the plan store holds at once (background plans and wait=true "
+        "plans with keep=true, running or finished); when full, new ones get 503",
+    )
+    background_max_bytes: int = Field(
+        default=256 * 1024 * 1024,
+        ge=1024 * 1024,
+        description="bound on the plan store's byte estimate of what its plans hold; when "
+        "reached, new stored plans get 503",
     )
     background_ttl_s: float = Field(
-        default=300.0, gt=0, description="a finished plan is forgotten this long after it finished"
+        default=300.0,
+        gt=0,
+        description="a stored plan is kept this long after it finished (never dropped earlier)",
+    )
+    improvements_listed: int = Field(
+        default=20,
+        ge=0,
+        le=1000,
+        description="how many of the last improvements a plan lists (full_trace=true: all, "
+        "up to 10000); the count of earlier ones is in improvements_dropped",
     )
     warmup_searches: int = Field(
         default=3,

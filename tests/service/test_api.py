@@ -105,7 +105,7 @@ def test_no_route_and_same_node(make_client, tiny_graph_path):
         (body(0, 3, controller="greedy"), 422, "one of learned, decreasing"),
         (body(0, 3, wait="yes"), 422, "true or false"),
         ({"origin": {"node": 0}, "deadline_ms": 5}, 422, "destination: field required"),
-        ([1, 2, 3], 422, "valid dictionary"),
+        ([1, 2, 3], 422, "the body must be a JSON object, not an array"),
     ],
 )
 def test_bad_input_says_what_is_allowed(make_client, tiny_graph_path, payload, status, words):
@@ -117,12 +117,13 @@ def test_bad_input_says_what_is_allowed(make_client, tiny_graph_path, payload, s
 
 
 def test_malformed_json_and_huge_body(make_client, tiny_graph_path):
-    """Status codes from RFC 9110 (413 Content Too Large) and the API contract (422)."""
+    """Status codes from RFC 9110 (400 Bad Request for a syntax error, 413 Content Too
+    Large)."""
     client = make_client(tiny_graph_path, max_body_bytes=1024)
     r = client.post(
         PLAN, content=b'{"origin": {"node": 0', headers={"content-type": "application/json"}
     )
-    assert r.status_code == 422 and "not valid JSON" in r.json()["detail"]
+    assert r.status_code == 400 and "not valid JSON" in r.json()["detail"]
     r = client.post(PLAN, content=b"x" * 5000, headers={"content-type": "application/json"})
     assert r.status_code == 413 and "limit for this endpoint is 1024 bytes" in r.json()["detail"]
 
@@ -152,6 +153,18 @@ def _events(text: str) -> list[tuple[str, dict]]:
     return out
 
 
+def _improvement_ids(text: str) -> list[int]:
+    """The ``id`` field of every improvement event of a text/event-stream body."""
+    ids = []
+    for block in text.strip().split("\n\n"):
+        fields = dict(
+            line.split(": ", 1) for line in block.splitlines() if line and not line.startswith(":")
+        )
+        if fields.get("event") == "improvement":
+            ids.append(int(fields["id"]))
+    return ids
+
+
 def test_background_plan_poll_stream_and_final(make_client, grid_graph_path):
     """SSE framing per the WHATWG HTML 'Server-sent events' section; improvements must arrive
     in the order found (costs strictly decreasing, elapsed non-decreasing), then ``final``."""
@@ -167,7 +180,8 @@ def test_background_plan_poll_stream_and_final(make_client, grid_graph_path):
     assert current["status"] in ("running", "optimal", "improved", "instant")
     with client.stream("GET", url + "/events") as resp:
         assert resp.headers["content-type"].startswith("text/event-stream")
-        events = _events(resp.read().decode())
+        text = resp.read().decode()
+        events = _events(text)
     kinds = [k for k, _ in events]
     assert kinds[-1] == "final" and set(kinds[:-1]) <= {"improvement"}
     improvements = [d for k, d in events if k == "improvement"]
@@ -177,7 +191,13 @@ def test_background_plan_poll_stream_and_final(make_client, grid_graph_path):
     assert all(a > b for a, b in zip(costs, costs[1:], strict=False))
     assert [i["elapsed_ms"] for i in improvements] == sorted(i["elapsed_ms"] for i in improvements)
     assert costs[-1] == pytest.approx(final["cost_s"])
-    assert [i["cost_s"] for i in final["improvements"]] == costs
+    # the answer lists the last 20 and counts the rest; the stream sent what the plan still
+    # held when it joined, each with its ordinal as the event id (0-based, consecutive)
+    ids = _improvement_ids(text)
+    assert ids == list(range(ids[0], ids[0] + len(ids)))
+    assert [i["cost_s"] for i in final["improvements"]] == costs[-20:]
+    assert final["improvements_dropped"] + len(final["improvements"]) == ids[-1] + 1
+    assert [i for k, i in events if k == "improvement"][0].get("route") is not None
     assert final["status"] in ("optimal", "improved", "instant")
     assert client.get(url).json()["status"] == final["status"]
     # a finished plan: DELETE returns its final status
@@ -203,25 +223,35 @@ def test_unknown_plan_ids_are_404(make_client, tiny_graph_path):
     client = make_client(tiny_graph_path)
     for method in ("get", "delete"):
         r = getattr(client, method)(f"{PLAN}/nope")
-        assert r.status_code == 404 and "no plan with id 'nope'" in r.json()["detail"]
+        assert r.status_code == 404
+        assert "no plan with id 'nope': this service did not issue it" in r.json()["detail"]
     assert client.get(f"{PLAN}/nope/events").status_code == 404
 
 
-def test_background_plans_expire_and_the_oldest_finished_makes_room(make_client, tiny_graph_path):
-    client = make_client(tiny_graph_path, background_max=2, background_ttl_s=0.5)
+def test_a_full_store_refuses_new_background_plans_and_keeps_the_old(make_client, tiny_graph_path):
+    """Nothing stored is evicted early: with room for 2, the third background plan is refused
+    (503 + Retry-After, RFC 9110 section 10.2.3) while both stored plans stay readable; after
+    their TTL they answer 404 'expired'."""
+    client = make_client(tiny_graph_path, background_max=2, background_ttl_s=1.5)
     urls = []
-    for _ in range(3):
+    for _ in range(2):
         r = client.post(PLAN, json=body(0, 3, wait=False))
         assert r.status_code == 202
         urls.append(r.headers["location"])
         with client.stream("GET", urls[-1] + "/events") as resp:
             resp.read()  # wait until it is finished
-    # bounded at 2: the oldest finished plan was evicted for the third
-    assert client.get(urls[0]).status_code == 404
-    assert [client.get(u).json()["status"] for u in urls[1:]] == ["optimal", "optimal"]
-    time.sleep(0.7)
-    for url in urls:  # expired after the TTL
-        assert client.get(url).status_code == 404
+    r = client.post(PLAN, json=body(0, 3, wait=False))
+    assert r.status_code == 503 and "plan store is full" in r.json()["detail"]
+    assert 1 <= int(r.headers["retry-after"]) <= 2
+    # a waited plan is not stored, so it is still served; with keep=true it needs room
+    assert client.post(PLAN, json=body(0, 3)).status_code == 200
+    assert client.post(PLAN, json=body(0, 3, keep=True)).status_code == 503
+    assert [client.get(u).json()["status"] for u in urls] == ["optimal", "optimal"]
+    time.sleep(1.7)
+    for url in urls:  # expired after the TTL, and the 404 says so
+        r = client.get(url)
+        assert r.status_code == 404 and "has expired" in r.json()["detail"]
+    assert client.post(PLAN, json=body(0, 3, wait=False)).status_code == 202
 
 
 def _job(plan_id: str, deadline_s: float):
@@ -231,21 +261,31 @@ def _job(plan_id: str, deadline_s: float):
 
 
 def test_plan_store_full_of_running_plans_refuses_with_retry_after():
-    from dueroute.service.server.jobs import PlanStore, StoreFull
+    from dueroute.service.server.jobs import PlanningEngine
+    from dueroute.service.server.plan_store import MemoryPlanStore, StoreFull
 
-    store = PlanStore(max_plans=2, ttl_s=60.0)
+    now = {"t": 10.0}
+    store = MemoryPlanStore(max_plans=2, max_bytes=10**9, ttl_s=60.0, clock=lambda: now["t"])
+    jobs = []
     for i in range(2):
-        assert store.reserve(required=True, now_s=10.0)
-        store.add(_job(f"p{i}", deadline_s=12.5 + i))
-    assert store.reserve(required=False, now_s=10.0) is False  # wait=true plans just skip
-    with pytest.raises(StoreFull, match="all 2 slots hold running background plans") as full:
-        store.reserve(required=True, now_s=10.0)
-    assert full.value.retry_after_s == 3  # the soonest deadline, 2.5 s away, rounded up
-    # once one finishes it makes room (oldest finished first) and is forgotten after the TTL
-    store.get("p1").final = {"status": "optimal"}
-    store.get("p1").finished_wall = 0.0
-    assert store.get("p1") is None and store.expired_total == 1
-    assert store.reserve(required=True, now_s=10.0)
+        store.check_room(0)
+        jobs.append(_job(store.new_id(kept=True), deadline_s=12.5 + i))
+        store.put(jobs[-1])
+    with pytest.raises(StoreFull, match="it holds 2 of 2 plans") as full:
+        store.check_room(0)
+    assert full.value.retry_after_s == 63  # the soonest deadline, 2.5 s away, + the 60 s TTL
+    # a finished plan is held for its TTL, then forgotten; the 404 reason says which
+    engine = PlanningEngine(graph=None, planner=None, steps=1)
+    engine.fail(jobs[1], "test")
+    assert store.stats()["running"] == 1 and len(store) == 2
+    now["t"] += 59.0
+    assert store.lookup(jobs[1].plan_id).job is jobs[1]
+    now["t"] += 2.0
+    gone = store.lookup(jobs[1].plan_id)
+    assert gone.job is None and gone.reason == "expired" and store.expired_total == 1
+    assert store.lookup("nope").reason == "unknown"
+    assert store.lookup(store.new_id(kept=False)).reason == "not_kept"
+    store.check_room(0)  # room again
 
 
 def test_health_ready_metrics_and_openapi(make_client, tiny_graph_path):
@@ -328,14 +368,19 @@ def test_route_feature_matches_edge_coords_on_the_grid(grid_graph_path):
 
 
 class _Stalling:
-    """A weight controller that blocks between steps until released (a worker held busy)."""
+    """A weight controller that blocks between steps until released (a worker held busy);
+    with ``at_start`` also before the first step, so a search that would be proven in one
+    step cannot end early."""
 
     name, mode = "stalling", "weighted"
 
-    def __init__(self, release: threading.Event) -> None:
+    def __init__(self, release: threading.Event, at_start: bool = False) -> None:
         self.release = release
+        self.at_start = at_start
 
     def reset(self, seed):
+        if self.at_start:
+            self.release.wait(5.0)
         return 2.0
 
     def decide(self, features, stats):
@@ -344,11 +389,11 @@ class _Stalling:
 
 
 @contextlib.contextmanager
-def stalling_searches(client):
+def stalling_searches(client, at_start: bool = False):
     engine = client.app.state.dueroute.engine
     release = threading.Event()
     original = engine.make_controller
-    engine.make_controller = lambda spec, policy: _Stalling(release)
+    engine.make_controller = lambda spec, policy: _Stalling(release, at_start)
     try:
         yield release
     finally:
@@ -376,7 +421,7 @@ def test_queued_plan_cancels_at_once_and_a_full_queue_sheds(make_client, grid_gr
     waiting for the worker; a plan that could not start before its deadline is shed (503)."""
     client = make_client(grid_graph_path, workers=1)
     admission = client.app.state.dueroute.admission
-    with stalling_searches(client):
+    with stalling_searches(client, at_start=True):
         busy = client.post(PLAN, json=body(0, 89_999, deadline_ms=30_000, wait=False))
         queued = client.post(PLAN, json=body(0, 89_998, deadline_ms=60_000, wait=False))
         assert busy.status_code == queued.status_code == 202
