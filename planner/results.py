@@ -45,6 +45,10 @@ class Improvement:
     #: only; the improvements a result lists do not keep it (see :data:`IMPROVEMENT_FIELDS`).
     route_nodes: np.ndarray | None = field(default=None, repr=False, compare=False)
     route_edges: np.ndarray | None = field(default=None, repr=False, compare=False)
+    #: The partial edges at the route's ends (``planner.endpoints.PartialEdge``, a route from
+    #: or to a snapped point), given to callbacks with the route.
+    route_start: Any = field(default=None, repr=False, compare=False)
+    route_end: Any = field(default=None, repr=False, compare=False)
 
     def to_dict(self) -> dict[str, Any]:
         """The published fields (:data:`IMPROVEMENT_FIELDS`), non-finite numbers as None."""

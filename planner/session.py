@@ -766,6 +766,17 @@ class Search:
         self._cost = cost
         self._v[_V_INCUMBENT] = cost
 
+    def with_route(self, imp: Improvement) -> Improvement:
+        """``imp`` carrying the current incumbent route (for ``on_improvement`` callbacks)."""
+        rr = self._road
+        return replace(
+            imp,
+            route_nodes=self._route,
+            route_edges=self._route_edges,
+            route_start=None if rr is None else rr.start,
+            route_end=None if rr is None else rr.end,
+        )
+
     def _set_route(self, rr: RoadRoute) -> None:
         self._road = rr
         self._route, self._route_edges = rr.nodes, rr.edges
@@ -1161,7 +1172,7 @@ class Search:
             self.improvements.append(imp)
             if self.on_improvement is not None:
                 if with_route and i == count - 1:
-                    imp = replace(imp, route_nodes=self._route, route_edges=self._route_edges)
+                    imp = self.with_route(imp)
                 self.on_improvement(imp)
         self._log_seen = count
         v[_V_IMPROVEMENTS] = len(self.improvements)
@@ -1323,7 +1334,7 @@ def plan(
     search.on_improvement = on_improvement
     if on_improvement is not None:
         for imp in search.improvements:  # the instant route, found when the search opened
-            on_improvement(replace(imp, route_nodes=search._route, route_edges=search._route_edges))
+            on_improvement(search.with_route(imp))
     weight = _check_weight(ctrl.reset(seed), ctrl.name)
     while not search.done:
         search.run_step(weight)

@@ -209,7 +209,9 @@ def warm_up(state: AppState) -> None:
     planner = Planner(graph, landmarks=landmarks)
     planner.warm_up()
     if graph.n_nodes:  # builds the snapping k-d tree now, not inside the first request
-        graph.snap(float(graph.lat[0]), float(graph.lon[0]), settings.snap_max_m)
+        from dueroute.planner.snap import snap_to_road
+
+        snap_to_road(graph, float(graph.lat[0]), float(graph.lon[0]), settings.snap_max_m)
     engine = PlanningEngine(graph, planner, steps=settings.steps)
     from dueroute.service.server.traffic_store import JournalStore, LiveTraffic
 

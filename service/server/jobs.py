@@ -60,64 +60,107 @@ ROUTE_RESERVE_BYTES = 64 * 1024
 # Route geometry
 
 
-def route_feature(graph: Any, nodes: Any, edges: Any, costs: Any = None) -> dict[str, Any] | None:
+def route_feature(
+    graph: Any,
+    nodes: Any,
+    edges: Any,
+    costs: Any = None,
+    start: Any = None,
+    end: Any = None,
+) -> dict[str, Any] | None:
     """GeoJSON Feature (RFC 7946) for a route given as node and edge indices.
 
     The LineString is the concatenation of ``graph.edge_coords(e)`` for every edge, with the
     shared point between consecutive edges written once; computed with array indexing so a
-    long route costs microseconds, not one Python call per edge.
+    long route costs microseconds, not one Python call per edge. A route from or to a point on
+    a road starts or ends with part of an edge (``start`` / ``end``).
 
     Parameters
     ----------
     nodes : int[k + 1]
-        Node indices along the route.
+        Node indices along the full edges of the route (empty: a route within one edge).
     edges : int[k]
         Edge indices along the route (``edges[i]`` leads from ``nodes[i]`` to ``nodes[i+1]``).
     costs : planner.traffic.CostVersion, optional
         The live costs the route was searched on (its ``travel_time_s``); default the graph's.
+    start, end : planner.endpoints.PartialEdge, optional
+        The part of an edge driven from the snapped origin, and up to the snapped destination
+        (for a route within one edge, ``start`` alone).
     """
-    if nodes is None or len(nodes) == 0:
+    n_nodes = 0 if nodes is None else len(nodes)
+    if n_nodes == 0 and start is None:
         return None
     times = graph.travel_time_s if costs is None else costs.travel_time_s
-    nodes_a = np.asarray(nodes, dtype=np.int64)
+    nodes_a = np.asarray(nodes if n_nodes else [], dtype=np.int64)
     edges_a = np.asarray(edges if edges is not None else [], dtype=np.int64)
-    lat, lon = graph.lat, graph.lon
-    if edges_a.shape[0] == 0:  # origin == destination: a single point, written twice
-        x, y = float(lon[nodes_a[0]]), float(lat[nodes_a[0]])
-        coords = [[x, y], [x, y]]
-    else:
-        gptr = graph.geom_indptr
-        starts = np.asarray(gptr[edges_a], dtype=np.int64)
-        glen = np.asarray(gptr[edges_a + 1], dtype=np.int64) - starts
-        n_pts = edges_a.shape[0] + int(glen.sum()) + 1
-        out_lon = np.empty(n_pts)
-        out_lat = np.empty(n_pts)
-        # Edge i writes its tail at tail_pos[i], then its interior points; the final head last.
-        tail_pos = np.arange(edges_a.shape[0]) + np.concatenate(([0], np.cumsum(glen)[:-1]))
-        tails = nodes_a[:-1]
-        out_lon[tail_pos] = lon[tails]
-        out_lat[tail_pos] = lat[tails]
-        if int(glen.sum()):
-            interior_pos = np.repeat(tail_pos + 1, glen) + (
-                np.arange(int(glen.sum())) - np.repeat(np.cumsum(glen) - glen, glen)
-            )
-            src = np.repeat(starts, glen) + (
-                np.arange(int(glen.sum())) - np.repeat(np.cumsum(glen) - glen, glen)
-            )
-            out_lon[interior_pos] = graph.geom_lon[src]
-            out_lat[interior_pos] = graph.geom_lat[src]
-        out_lon[-1] = lon[nodes_a[-1]]
-        out_lat[-1] = lat[nodes_a[-1]]
-        coords = np.column_stack((out_lon, out_lat)).tolist()
+    coords = _full_edge_coords(graph, nodes_a, edges_a) if n_nodes else []
+    if start is not None:
+        head = [list(p) for p in start.coords]
+        coords = head + coords[1:] if coords else head
+    if end is not None:
+        coords = coords + [list(p) for p in end.coords[1:]]
+    if len(coords) == 1:  # origin == destination: a single point, written twice
+        coords = coords * 2
+    travel = float(np.sum(times[edges_a])) if edges_a.size else 0.0
+    length = float(np.sum(graph.length_m[edges_a])) if edges_a.size else 0.0
+    for part in (start, end):
+        if part is not None:
+            travel += float(part.cost_s)
+            length += float(graph.length_m[part.edge]) * (part.to_fraction - part.from_fraction)
     return {
         "type": "Feature",
         "geometry": {"type": "LineString", "coordinates": coords},
         "properties": {
-            "travel_time_s": float(np.sum(times[edges_a])) if edges_a.size else 0.0,
-            "length_m": float(np.sum(graph.length_m[edges_a])) if edges_a.size else 0.0,
+            "travel_time_s": travel,
+            "length_m": length,
             "node_ids": np.asarray(graph.osm_id[nodes_a]).tolist(),
             "node_indices": nodes_a.tolist(),
+            "start_partial": None if start is None else start.to_dict(),
+            "end_partial": None if end is None else end.to_dict(),
         },
+    }
+
+
+def _full_edge_coords(graph: Any, nodes_a: np.ndarray, edges_a: np.ndarray) -> list[list[float]]:
+    lat, lon = graph.lat, graph.lon
+    if edges_a.shape[0] == 0:
+        return [[float(lon[nodes_a[0]]), float(lat[nodes_a[0]])]]
+    gptr = graph.geom_indptr
+    starts = np.asarray(gptr[edges_a], dtype=np.int64)
+    glen = np.asarray(gptr[edges_a + 1], dtype=np.int64) - starts
+    n_pts = edges_a.shape[0] + int(glen.sum()) + 1
+    out_lon = np.empty(n_pts)
+    out_lat = np.empty(n_pts)
+    # Edge i writes its tail at tail_pos[i], then its interior points; the final head last.
+    tail_pos = np.arange(edges_a.shape[0]) + np.concatenate(([0], np.cumsum(glen)[:-1]))
+    tails = nodes_a[:-1]
+    out_lon[tail_pos] = lon[tails]
+    out_lat[tail_pos] = lat[tails]
+    if int(glen.sum()):
+        interior_pos = np.repeat(tail_pos + 1, glen) + (
+            np.arange(int(glen.sum())) - np.repeat(np.cumsum(glen) - glen, glen)
+        )
+        src = np.repeat(starts, glen) + (
+            np.arange(int(glen.sum())) - np.repeat(np.cumsum(glen) - glen, glen)
+        )
+        out_lon[interior_pos] = graph.geom_lon[src]
+        out_lat[interior_pos] = graph.geom_lat[src]
+    out_lon[-1] = lon[nodes_a[-1]]
+    out_lat[-1] = lat[nodes_a[-1]]
+    coords: list[list[float]] = np.column_stack((out_lon, out_lat)).tolist()
+    return coords
+
+
+def snapped_point(snap: Any) -> dict[str, Any] | None:
+    """Where a place given as a point was snapped to (None for a place given as a node)."""
+    if snap is None or isinstance(snap, int):
+        return None
+    return {
+        "lat": snap.lat,
+        "lon": snap.lon,
+        "distance_m": snap.distance_m,
+        "edge": snap.edge,
+        "query": {"lat": snap.query_lat, "lon": snap.query_lon},
     }
 
 
@@ -149,8 +192,8 @@ class PlanJob:
     """
 
     plan_id: str
-    origin_node: int
-    destination_node: int
+    origin_node: int | None  #: None for a place given as a point
+    destination_node: int | None
     deadline_ms: int
     controller: str
     wait: bool
@@ -159,6 +202,10 @@ class PlanJob:
     policy_sha256: str | None
     controller_spec: str = ""  # what to build; ``controller`` is the label answers carry
     gap_target: float = 0.0  # stop once the proven gap is at or below this
+    #: what the search starts from and goes to: a node index or a ``planner.snap.RoadSnap``
+    #: (default: the nodes)
+    origin: Any = None
+    destination: Any = None
     ticket: Ticket | None = None
     policy: Any = None
     future: Any = None  # concurrent.futures.Future of the worker run
@@ -176,8 +223,9 @@ class PlanJob:
     improvement_count: int = 0
     #: Some improvement came from the search (not only the instant route it opened with).
     found_by_search: bool = False
-    #: (int64[k + 1] node indices, int64[k] edge indices) of the incumbent route, or None
-    best: tuple[Any, Any] | None = None
+    #: (int64[k + 1] node indices, int64[k] edge indices, start PartialEdge or None, end
+    #: PartialEdge or None) of the incumbent route, or None
+    best: tuple[Any, Any, Any, Any] | None = None
     best_cost_s: float | None = None
     best_bound_s: float = 0.0
     expansions: int = 0
@@ -258,11 +306,18 @@ class PlanJob:
             return "not_found"
         return "improved" if self.found_by_search else "instant"
 
+    def points(self) -> dict[str, Any]:
+        """``origin_point`` / ``destination_point``: where places given as points snapped."""
+        return {
+            "origin_point": snapped_point(self.origin),
+            "destination_point": snapped_point(self.destination),
+        }
+
     def best_route(self) -> dict[str, Any] | None:
         best = self.best
         if best is None or self.graph is None:
             return None
-        return route_feature(self.graph, best[0], best[1], self.costs)
+        return route_feature(self.graph, best[0], best[1], self.costs, best[2], best[3])
 
     def timings(self, now_s: float | None = None) -> dict[str, float]:
         now = time.perf_counter() if now_s is None else now_s
@@ -308,6 +363,7 @@ class PlanJob:
             "status": status,
             "origin_node": self.origin_node,
             "destination_node": self.destination_node,
+            **self.points(),
             "route": route,
             "cost_s": cost,
             "lower_bound_s": bound,
@@ -431,10 +487,15 @@ class PlanningEngine:
                 if self.traffic is not None:
                     job.costs = self.traffic.current
                 # Deadline counted from arrival: the search ends at job.search_deadline_s.
+                origin = job.origin if job.origin is not None else job.origin_node
+                destination = (
+                    job.destination if job.destination is not None else job.destination_node
+                )
+                assert origin is not None and destination is not None
                 result = plan(
                     self.planner,
-                    job.origin_node,
-                    job.destination_node,
+                    origin,
+                    destination,
                     deadline_ms=(job.search_deadline_s - job.arrival_s) * 1000.0,
                     controller=self.make_controller(
                         job.controller_spec or job.controller, job.policy
@@ -456,15 +517,22 @@ class PlanningEngine:
         """Called in the search thread on every improvement (counts against the deadline)."""
         entry = improvement_dict(imp)
         nodes, edges = imp.route_nodes, imp.route_edges
+        start, end = imp.route_start, imp.route_end
         if edges is not None and nodes is not None:
+            length = float(np.sum(self.graph.length_m[edges]))
+            for part in (start, end):
+                if part is not None:
+                    length += float(self.graph.length_m[part.edge]) * (
+                        part.to_fraction - part.from_fraction
+                    )
             entry["route"] = {
                 "travel_time_s": entry["cost_s"],
-                "length_m": float(np.sum(self.graph.length_m[edges])),
+                "length_m": length,
                 "node_count": int(len(nodes)),
             }
         if job.costs is not None:
             entry["traffic_version"] = job.costs.version  # the event stream names it too
-        job.best = (nodes, edges)  # one assignment: readers see both or neither
+        job.best = (nodes, edges, start, end)  # one assignment: readers see all or none
         job.best_cost_s = entry["cost_s"]
         job.best_bound_s = entry["lower_bound_s"] or 0.0
         job.expansions = entry["expansions"]
@@ -496,6 +564,7 @@ class PlanningEngine:
             "status": "error",
             "origin_node": job.origin_node,
             "destination_node": job.destination_node,
+            **job.points(),
             "route": None,
             "cost_s": None,
             "lower_bound_s": _float_or_none(job.best_bound_s) or 0.0,
@@ -545,7 +614,14 @@ class PlanningEngine:
     def _final(self, job: PlanJob, status: str, result: Any) -> dict[str, Any]:
         limit = job.listed
         if result is not None:
-            feature = route_feature(self.graph, result.route, result.route_edges, job.costs)
+            feature = route_feature(
+                self.graph,
+                result.route,
+                result.route_edges,
+                job.costs,
+                result.route_start,
+                result.route_end,
+            )
             cost = _float_or_none(result.cost_s)
             bound = _float_or_none(result.lower_bound_s)
             if bound is None:
@@ -569,6 +645,7 @@ class PlanningEngine:
             "status": status,
             "origin_node": job.origin_node,
             "destination_node": job.destination_node,
+            **job.points(),
             "route": feature,
             "cost_s": cost if feature is not None else None,
             "lower_bound_s": bound,

@@ -58,7 +58,8 @@ class NodeRef(BaseModel):
 
 
 class PointRef(BaseModel):
-    """A WGS84 point; the service snaps it to the nearest road node."""
+    """A WGS84 point; the service snaps it to the nearest point on a road (the route starts or
+    ends part-way along that road, in each direction the road may be driven)."""
 
     # strict: a JSON number only ("47.13" and true are refused, 47 is 47.0)
     model_config = ConfigDict(extra="forbid", strict=True)
@@ -155,6 +156,31 @@ class RouteProperties(BaseModel):
     length_m: float
     node_ids: list[int] = Field(description="OpenStreetMap node ids along the route")
     node_indices: list[int] = Field(description="node indices in the compiled graph")
+    start_partial: PartialEdgeOut | None = Field(
+        None, description="the part of an edge the route starts on (origin given as a point)"
+    )
+    end_partial: PartialEdgeOut | None = Field(
+        None, description="the part of an edge the route ends on (destination given as a point)"
+    )
+
+
+class PartialEdgeOut(BaseModel):
+    """Part of one road edge at an end of a route (a place given as a point on a road)."""
+
+    edge: int = Field(description="edge index in the compiled graph")
+    from_fraction: float = Field(description="where the part starts, 0 = the edge's tail")
+    to_fraction: float = Field(description="where it ends, 1 = the edge's head (by length)")
+    cost_s: float = Field(description="travel time of the part under the costs searched")
+
+
+class SnappedPoint(BaseModel):
+    """Where a place given as a point was snapped: the nearest point on a road."""
+
+    lat: float
+    lon: float
+    distance_m: float = Field(description="great-circle distance from the point given")
+    edge: int = Field(description="the edge the snapped point lies on")
+    query: dict[str, float] = Field(description="the point given (lat, lon)")
 
 
 class LineString(BaseModel):
@@ -213,8 +239,16 @@ class Plan(BaseModel):
         "before any route); cancelled (DELETE, with the best route so far); error (the plan "
         "failed: see error)"
     )
-    origin_node: int
-    destination_node: int
+    origin_node: int | None = Field(description="the origin node (null: given as a point)")
+    destination_node: int | None = Field(
+        description="the destination node (null: given as a point)"
+    )
+    origin_point: SnappedPoint | None = Field(
+        None, description="where an origin given as a point was snapped onto a road"
+    )
+    destination_point: SnappedPoint | None = Field(
+        None, description="where a destination given as a point was snapped onto a road"
+    )
     route: RouteFeature | None
     cost_s: float | None
     lower_bound_s: float

@@ -62,17 +62,48 @@ def test_plan_is_optimal_and_geojson_follows_the_roads(make_client, tiny_graph_p
     assert plan["controller"] == "decreasing" and plan["policy_sha256"] is None
 
 
-def test_points_snap_and_learned_falls_back_without_a_policy(make_client, tiny_graph_path):
+def test_points_snap_onto_roads_and_learned_falls_back_without_a_policy(
+    make_client, tiny_graph_path
+):
+    """Places given as points start and end part-way along the nearest roads. The cost is
+    checked against scipy ``csgraph.dijkstra`` between the snapped edges' ends plus the partial
+    edge costs, over every legal direction of either road; the LineString (RFC 7946 section
+    3.1.4) starts at the snapped origin and ends at the snapped destination."""
+    from dueroute.planner.snap import snap_to_road
+
     client = make_client(tiny_graph_path)
+    graph = load_graph(tiny_graph_path)
+    o, d = (45.0002, 7.005), (45.0098, 7.015)  # beside the 0-1 road and the 3-4 road
     r = client.post(
         PLAN,
-        json=body(
-            {"lat": 45.0001, "lon": 7.0001}, {"lat": 45.01, "lon": 7.02}, controller="learned"
-        ),
+        json=body({"lat": o[0], "lon": o[1]}, {"lat": d[0], "lon": d[1]}, controller="learned"),
     )
     assert r.status_code == 200, r.text
     plan = r.json()
-    assert plan["origin_node"] == 0 and plan["destination_node"] == 3
+    assert plan["origin_node"] is None and plan["destination_node"] is None
+    assert plan["status"] == "optimal"
+    so, sd = snap_to_road(graph, *o), snap_to_road(graph, *d)
+    dist = dijkstra(graph.csr(), directed=True)
+    tail, head = np.asarray(graph.tail), np.asarray(graph.head)
+    exact = min(
+        a.cost_to_head_s + dist[head[a.edge], tail[b.edge]] + b.cost_from_tail_s
+        for a in so.sides
+        for b in sd.sides
+    )
+    assert plan["cost_s"] == pytest.approx(exact, rel=1e-9)
+    for key, snap, query in (("origin_point", so, o), ("destination_point", sd, d)):
+        point = plan[key]
+        assert (point["lat"], point["lon"]) == pytest.approx((snap.lat, snap.lon))
+        assert point["query"] == {"lat": query[0], "lon": query[1]}
+        assert 0 < point["distance_m"] < 50
+    coords = plan["route"]["geometry"]["coordinates"]
+    assert coords[0] == pytest.approx([so.lon, so.lat])
+    assert coords[-1] == pytest.approx([sd.lon, sd.lat])
+    props = plan["route"]["properties"]
+    start, end = props["start_partial"], props["end_partial"]
+    assert start["edge"] in [s.edge for s in so.sides] and end["edge"] in [s.edge for s in sd.sides]
+    assert start["to_fraction"] == 1.0 and end["from_fraction"] == 0.0
+    assert props["travel_time_s"] == pytest.approx(plan["cost_s"], rel=1e-9)
     assert plan["controller"] == "learned (fallback: decreasing)"
     info = client.get("/v1/policy").json()
     assert info["sha256"] is None and info["fallback_controller"] == "decreasing"

@@ -190,7 +190,7 @@ def test_a_failing_job_ends_in_error_and_frees_its_worker(
         words = "the search failed: IndexError: index 123456 is out of bounds"
     else:
 
-        def broken(graph: Any, nodes: Any, edges: Any, costs: Any = None) -> Any:
+        def broken(graph: Any, nodes: Any, edges: Any, *args: Any) -> Any:
             return graph.geom_lat[np.asarray([10**9])]  # an index past the geometry
 
         monkeypatch.setattr(jobs, "route_feature", broken)

@@ -26,6 +26,7 @@ from fastapi.responses import JSONResponse, StreamingResponse
 from pydantic import ValidationError
 
 from dueroute.planner.errors import InvalidRequest, NodeNotFound
+from dueroute.planner.snap import RoadSnap, snap_to_road
 from dueroute.service.server.admission import Shed
 from dueroute.service.server.deps import AppState, StateDep
 from dueroute.service.server.jobs import (
@@ -88,13 +89,14 @@ def _json(
     return Response(content, status_code=status, media_type="application/json", headers=headers)
 
 
-def _resolve(state: AppState, place: Any, which: str) -> int:
+def _resolve(state: AppState, place: Any, which: str) -> int | RoadSnap:
+    """A node index, or a point snapped onto the nearest road (any point along an edge)."""
     assert state.engine is not None
     graph = state.engine.graph
     try:
         if isinstance(place, NodeRef):
-            return graph.check_node(place.node)
-        return graph.snap(place.lat, place.lon, state.settings.snap_max_m)
+            return int(graph.check_node(place.node))
+        return snap_to_road(graph, place.lat, place.lon, state.settings.snap_max_m)
     except (NodeNotFound, InvalidRequest) as exc:
         raise _PlaceError(f"{which}: {exc}", 404 if isinstance(exc, NodeNotFound) else 422) from exc
 
@@ -194,8 +196,10 @@ async def create_plan(request: Request, state: StateDep) -> Response:
     uses_policy = body.controller == "learned" and active.policy is not None
     job = PlanJob(
         plan_id=state.plans.new_id(kept=kept),
-        origin_node=origin,
-        destination_node=destination,
+        origin_node=origin if isinstance(origin, int) else None,
+        destination_node=destination if isinstance(destination, int) else None,
+        origin=origin,
+        destination=destination,
         deadline_ms=body.deadline_ms,
         controller=body.controller
         if active.policy is not None or body.controller != "learned"
