@@ -859,19 +859,22 @@ def extract_route(state, node, max_len):
     return nodes, edges
 
 
+@njit(cache=True, nogil=True)
+def route_cost(cost, edges):
+    """Sum of ``cost`` over ``edges`` in travel order (what the search adds up, exactly)."""
+    total = 0.0
+    for i in range(edges.shape[0]):
+        total += cost[edges[i]]
+    return total
+
+
 # --------------------------------------------------------------------------------------------
 # The instant route: origin -> landmark -> destination along the landmarks' trees
 
 
 @njit(cache=True, nogil=True)
-def _tail_of(indptr, e):
-    """The node edge ``e`` leaves (binary search in the CSR row pointer)."""
-    return np.searchsorted(indptr, e, side="right") - 1
-
-
-@njit(cache=True, nogil=True)
 def _tree_route(
-    indptr, head, cost, tree_to, tree_from, landmark, li, s, t, state, gen, max_len, out_e, back
+    tail, head, cost, tree_to, tree_from, landmark, li, s, t, state, gen, max_len, out_e, back
 ):
     """Route s -> landmark li -> t along the landmark's shortest-path trees, cut where the two
     halves meet.
@@ -932,7 +935,7 @@ def _tree_route(
                     return -1, _INF  # the landmark does not reach t
                 back[n2] = e
                 n2 += 1
-                b = _tail_of(indptr, e)
+                b = np.int64(tail[e])
                 if si[b, SI_STAMP] == gen and si[b, SI_FLAGS] == 1:
                     meet = b
                     break
@@ -959,7 +962,7 @@ def _tree_route(
 
 @njit(cache=True, nogil=True)
 def instant_route(
-    indptr,
+    tail,
     head,
     cost,
     lm,
@@ -1023,7 +1026,7 @@ def instant_route(
         t = istate[I_TNODE + k]
         landmark = np.int64(lm_nodes[li])
         cnt, c = _tree_route(
-            indptr,
+            tail,
             head,
             cost,
             tree_to,
@@ -1064,7 +1067,7 @@ INSTANT_GENERATIONS = _INSTANT_TRIES
 
 @njit(cache=True, nogil=True)
 def open_query(
-    indptr,
+    tail,
     head,
     cost,
     coords,
@@ -1087,6 +1090,7 @@ def open_query(
     first of the ``INSTANT_GENERATIONS + 1`` generations reserved for this query. A plain node
     query may leave the target table to this call: ``I_N_TARGETS = 0`` and the destination in
     ``I_TNODE`` (one ARRIVAL target; its position and landmark row are filled in here).
+    ``tail`` is the int32 tail node of every edge (the instant route walks edges backwards).
     Returns ``(instant edge count, instant cost, h_start, source index, target index)``; the
     instant route's edges are in ``route_buf`` (count -1: none).
     """
@@ -1108,7 +1112,7 @@ def open_query(
     first = istate[I_GEN]
     if lm.shape[1] > 0:
         count, inst, src_i, tgt_i = instant_route(
-            indptr,
+            tail,
             head,
             cost,
             lm,
@@ -1127,6 +1131,38 @@ def open_query(
     if count >= 0:
         fstate[F_INCUMBENT] = inst
     return count, inst, h_start, src_i, tgt_i
+
+
+@njit(cache=True, nogil=True)
+def collect_log(fstate, lo, hi, last, route_cost, bound, started_s, weight, rows, at):
+    """Write improvement-log entries ``lo .. hi-1`` as rows ``at ..`` of ``rows``
+    (``planner.results.ImprovementLog`` columns: elapsed ms since ``started_s``, expansions,
+    cost, bound, gap, weight, source 1 = search) and return the running lower bound.
+
+    Entry ``last`` (the newest) costs at most ``route_cost``, the cost of the route read back
+    (``inf``: none). Each entry's bound is at least the running bound ``bound`` and at most its
+    cost; the running bound is the largest so far."""
+    for i in range(lo, hi):
+        base = F_LOG + 4 * i
+        cost = fstate[base]
+        if i == last and route_cost < cost:
+            cost = route_cost
+        b = fstate[base + 1]
+        if b < bound:
+            b = bound
+        if b > cost:
+            b = cost
+        if b > bound:
+            bound = b
+        r = at + i - lo
+        rows[r, 0] = (fstate[base + 3] * 1e-9 - started_s) * 1000.0
+        rows[r, 1] = fstate[base + 2]
+        rows[r, 2] = cost
+        rows[r, 3] = b
+        rows[r, 4] = 0.0 if cost <= 0.0 else max(0.0, (cost - b) / cost)
+        rows[r, 5] = weight
+        rows[r, 6] = 1.0
+    return bound
 
 
 @njit(cache=True, nogil=True)

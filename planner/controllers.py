@@ -55,7 +55,11 @@ class Controller(Protocol):
         ...
 
     def decide(self, features: np.ndarray, stats: SearchStats) -> float:
-        """Return the weight for the next step (>= 1) from the features and the raw stats."""
+        """Return the weight for the next step (>= 1) from the features and the raw stats.
+
+        A controller may declare ``uses_features = False`` (it reads ``stats`` only; it then
+        gets an empty array) and ``constant = True`` (its weight never changes; ``plan()``
+        then runs one step and never asks)."""
         ...
 
 
@@ -63,6 +67,9 @@ class FixedController:
     """The same weight at every step."""
 
     mode = "weighted"
+    #: The weight never changes: ``plan()`` runs the search as one step, with no decisions.
+    constant = True
+    uses_features = False
 
     def __init__(self, weight: float) -> None:
         if not (math.isfinite(weight) and MIN_WEIGHT <= weight <= MAX_WEIGHT):
@@ -84,6 +91,7 @@ class RandomWalkController:
 
     name = "random"
     mode = "weighted"
+    uses_features = False  #: ``plan()`` skips computing features it would not read
 
     def __init__(self, seed: int | None = None) -> None:
         self._default_seed = seed
@@ -106,6 +114,7 @@ class DecreasingController:
 
     name = "decreasing"
     mode = "weighted"
+    uses_features = False  #: reads the stats only
 
     def __init__(self, patience: int = DECREASING_PATIENCE) -> None:
         self.patience = int(patience)
@@ -136,6 +145,7 @@ class AnaController:
 
     name = "ana"
     mode = "ana"
+    uses_features = False  #: reads the stats only
 
     def reset(self, seed: int | None) -> float:
         return WEIGHTS[-1]

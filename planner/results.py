@@ -8,8 +8,9 @@ those needs to import the session itself.
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from dataclasses import asdict, dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, overload
 
 import numpy as np
 
@@ -53,6 +54,102 @@ class Improvement:
     def to_dict(self) -> dict[str, Any]:
         """The published fields (:data:`IMPROVEMENT_FIELDS`), non-finite numbers as None."""
         return {k: _json_num(getattr(self, k)) for k in IMPROVEMENT_FIELDS}
+
+
+class ImprovementLog(Sequence[Improvement]):
+    """A search's improvements, oldest first, held as rows of numbers.
+
+    A weighted search can find hundreds of slightly cheaper routes in a millisecond; turning
+    each into an :class:`Improvement` object as it is found would cost microseconds apiece
+    inside the deadline. The log keeps one row per improvement (elapsed ms, expansions, cost,
+    bound, gap, weight, source) and builds the objects only when they are read.
+    """
+
+    __slots__ = ("_rows", "_n", "_objects")
+
+    _COLUMNS = 7  # elapsed_ms, expansions, cost_s, lower_bound_s, gap, weight, source
+
+    def __init__(self, capacity: int = 16) -> None:
+        self._rows = np.empty((max(1, capacity), self._COLUMNS), dtype=np.float64)
+        self._n = 0
+        self._objects: list[Improvement | None] = []
+
+    def reserve(self, extra: int) -> np.ndarray:
+        """Room for ``extra`` more rows; returns the array to write them into at ``len(self)``."""
+        need = self._n + extra
+        if need > self._rows.shape[0]:
+            grown = np.empty((max(need, 2 * self._rows.shape[0]), self._COLUMNS))
+            grown[: self._n] = self._rows[: self._n]
+            self._rows = grown
+        return self._rows
+
+    def commit(self, count: int) -> None:
+        """Count ``count`` rows written after :meth:`reserve`."""
+        self._n += count
+        self._objects.extend([None] * count)
+
+    def append(self, imp: Improvement) -> None:
+        rows = self.reserve(1)
+        rows[self._n] = (
+            imp.elapsed_ms,
+            imp.expansions,
+            imp.cost_s,
+            imp.lower_bound_s,
+            imp.gap,
+            imp.weight,
+            0.0 if imp.source == "instant" else 1.0,
+        )
+        self.commit(1)
+        self._objects[-1] = imp
+
+    def snapshot(self) -> ImprovementLog:
+        """An independent copy (what a result keeps while the search may go on)."""
+        out = ImprovementLog(self._n)
+        out._rows[: self._n] = self._rows[: self._n]
+        out._n = self._n
+        out._objects = list(self._objects)
+        return out
+
+    def __len__(self) -> int:
+        return self._n
+
+    def _get(self, i: int) -> Improvement:
+        obj = self._objects[i]
+        if obj is None:
+            r = self._rows[i].tolist()
+            obj = Improvement(
+                elapsed_ms=r[0],
+                expansions=int(r[1]),
+                cost_s=r[2],
+                lower_bound_s=r[3],
+                gap=r[4],
+                weight=r[5],
+                source="instant" if r[6] == 0.0 else "search",
+            )
+            self._objects[i] = obj
+        return obj
+
+    @overload
+    def __getitem__(self, index: int) -> Improvement: ...
+    @overload
+    def __getitem__(self, index: slice) -> list[Improvement]: ...
+    def __getitem__(self, index: int | slice) -> Improvement | list[Improvement]:
+        if isinstance(index, slice):
+            return [self._get(i) for i in range(*index.indices(self._n))]
+        i = index + self._n if index < 0 else index
+        if not 0 <= i < self._n:
+            raise IndexError("improvement index out of range")
+        return self._get(i)
+
+    def __eq__(self, other: object) -> bool:
+        if isinstance(other, (ImprovementLog, list, tuple)):
+            return list(self) == list(other)
+        return NotImplemented
+
+    __hash__ = None  # type: ignore[assignment]
+
+    def __repr__(self) -> str:
+        return f"ImprovementLog({list(self)!r})"
 
 
 #: What an improvement reports (JSON, HTTP answers, event streams), in this order.
@@ -286,7 +383,7 @@ class PlanResult:
     cost_s: float | None
     lower_bound_s: float | None
     gap: float | None
-    improvements: list[Improvement]
+    improvements: Sequence[Improvement]
     weights: list[WeightStep]
     expansions: int
     elapsed_ms: float
@@ -304,6 +401,11 @@ class PlanResult:
     #: wall time spent expanding (inside the kernel); ``elapsed_ms - kernel_ms`` is the rest:
     #: opening the query, the instant route, decision steps, reading routes back
     kernel_ms: float = 0.0
+    #: wall time opening the query (validation done; workspace, target row, the instant route)
+    open_ms: float = 0.0
+    #: wall time deciding weights between steps (stats, features, the controller's decision):
+    #: the control overhead
+    control_ms: float = 0.0
     #: partial edges at the route's ends (a route from or to a point on a road)
     route_start: Any = None
     route_end: Any = None
@@ -339,6 +441,8 @@ class PlanResult:
             "weight_capped": self.weight_capped,
             "gap_target": self.gap_target,
             "kernel_ms": self.kernel_ms,
+            "open_ms": self.open_ms,
+            "control_ms": self.control_ms,
             "route_start": None if self.route_start is None else self.route_start.to_dict(),
             "route_end": None if self.route_end is None else self.route_end.to_dict(),
             "origin_point": None if self.origin_snap is None else _point(self.origin_snap),

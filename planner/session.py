@@ -99,6 +99,7 @@ from dueroute.planner.results import (
     STATS_INDEX,
     STATS_LEN,
     Improvement,
+    ImprovementLog,
     PlanResult,
     SearchStats,
     WeightStep,
@@ -125,11 +126,46 @@ ACTIVE_LANDMARKS = 16
 RUNAWAY_FACTOR = 2.0
 RUNAWAY_MIN = 10_000
 
-#: Share of a deadline that decision steps may cost, and the cost of one step that the step
-#: count assumes, by controller kind (measured with ``dueroute bench deadline``: a few us for
-#: the built-in controllers, ten or so with an ONNX policy).
+#: Share of a deadline that decision steps may cost, and the cost of one decision the step
+#: count starts from, by controller kind, before any is measured (:class:`DecisionCost`
+#: follows what they really cost in this process: a few us for the built-in controllers; an
+#: ONNX policy run between search steps, with the search's memory in the caches, measured
+#: 25-140 us against 8 us in a tight loop).
 CONTROL_SHARE = 0.02
-STEP_COST_US = {"builtin": 5.0, "policy": 12.0}
+STEP_COST_US = {"builtin": 5.0, "policy": 30.0}
+
+
+class DecisionCost:
+    """What one decision (stats, features, the controller) has cost lately, per controller
+    kind: a running mean of the measured decisions of finished searches, so that the number
+    of steps follows the real cost of control on this machine (:func:`steps_for_deadline`).
+
+    Each search adds its mean decision cost with weight :attr:`ALPHA`; a sample is clipped to
+    :attr:`CLIP` times the current estimate, so one search preempted mid-decision cannot make
+    the next ones give up their steps.
+    """
+
+    ALPHA = 0.1
+    CLIP = 4.0
+
+    def __init__(self, start_us: dict[str, float]) -> None:
+        self._us = dict(start_us)
+        self._lock = threading.Lock()
+
+    def us(self, kind: str) -> float:
+        return self._us[kind]
+
+    def record(self, kind: str, seconds: float, decisions: int) -> None:
+        if decisions <= 0 or not seconds > 0.0:
+            return
+        sample = seconds * 1e6 / decisions
+        with self._lock:
+            old = self._us[kind]
+            self._us[kind] = max(0.5, old + self.ALPHA * (min(sample, self.CLIP * old) - old))
+
+
+#: The process's decision-cost estimate (``plan()`` reads and updates it).
+DECISION_COST = DecisionCost(STEP_COST_US)
 
 #: Longest route the instant route may have (edges); longer ones are left to the search.
 INSTANT_MAX_EDGES = 1 << 16
@@ -244,6 +280,7 @@ class Planner:
         n = kg.n_nodes
         self.n_nodes = n
         self._indptr = _readonly(kg.indptr, np.int64)
+        self._tail = _readonly(kg.tail, np.int32)  # the instant route walks edges backwards
         self._head = _readonly(kg.head, np.int32)
         self._cost = _readonly(kg.travel_time_s, np.float64)
         self._road_cost = _readonly(graph.travel_time_s, np.float64)
@@ -359,7 +396,7 @@ class Planner:
         src_g: np.ndarray | None = None,
     ) -> tuple[int, float, float, int, int]:
         a = self._arrays if arrays is None else arrays
-        args: tuple[Any, ...] = (self._indptr, self._head, a.cost, self._coords, a.lm)
+        args: tuple[Any, ...] = (self._tail, self._head, a.cost, self._coords, a.lm)
         args += (a.lm_nodes, a.tree_to, a.tree_from, ws.state, ws.heap, ws.istate, ws.fstate)
         args += (
             ws.src_node if src_node is None else src_node,
@@ -662,7 +699,7 @@ class Search:
             self._budget = budget_expansions
             self._deadline_at = None
 
-        self.improvements: list[Improvement] = []
+        self.improvements = ImprovementLog()
         self._steps: list[tuple[int, float, int, float]] = []  # (step, elapsed_ms, exp, weight)
         self.steps_done = 0
         self.weight = float("nan")
@@ -682,7 +719,11 @@ class Search:
         self._last_improvement_expansions = 0
         self._cpu_mark = -1.0  # thread CPU time at the end of the last step (-1: none yet)
         self._cpu_s = 0.0
-        self._kernel_s = 0.0  # wall time inside kernel.run (the rest is control overhead)
+        self._kernel_s = 0.0  # wall time inside kernel.run
+        #: wall time opening the query (the instant route included) and deciding weights
+        #: (``plan()`` adds each decision: stats, features, the controller)
+        self.open_s = 0.0
+        self.control_s = 0.0
         self._weight_capped = False
         self._final: np.ndarray | None = None  # the stats vector once done
         self._ws: _Workspace | None = None
@@ -720,9 +761,11 @@ class Search:
             if self._ends_unreachable(self._ends):
                 self._finish("no_route", "unreachable")
                 return
+        t_open = time.perf_counter()
         ws = planner._acquire()
         self._ws = ws
         self._open(ws, origin, destination)
+        self.open_s = time.perf_counter() - t_open
 
     def __del__(self) -> None:
         # a search dropped before it ended returns its workspace to the pool
@@ -819,7 +862,9 @@ class Search:
             states = np.empty(count + 1, dtype=np.int64)
             states[0] = src_node[src_i]
             states[1:] = planner._head[arcs]
-            best = self._road_route(states, arcs, max(src_i, 0), max(tgt_i, 0))
+            best = self._road_route(
+                states, arcs, max(src_i, 0), max(tgt_i, 0), known_cost=instant_cost
+            )
         if ends is not None:
             for d in ends.directs:
                 if best is None or d.cost < best.cost_s:
@@ -855,12 +900,21 @@ class Search:
         src_g = np.array([src.g0 for src in ends.sources], dtype=np.float64)
         return src_node, src_g
 
-    def _road_route(self, states: np.ndarray, arcs: np.ndarray, src: int, tgt: int) -> RoadRoute:
-        """A kernel path (from source ``src`` to target ``tgt``) as a road route."""
+    def _road_route(
+        self,
+        states: np.ndarray,
+        arcs: np.ndarray,
+        src: int,
+        tgt: int,
+        known_cost: float | None = None,
+    ) -> RoadRoute:
+        """A kernel path (from source ``src`` to target ``tgt``) as a road route.
+
+        ``known_cost``: the path's cost as the kernel summed it (node to node only)."""
         a = self._arrays
         ends = self._ends
         if ends is None:
-            cost = float(np.sum(a.cost[arcs]))
+            cost = float(K.route_cost(a.cost, arcs)) if known_cost is None else known_cost
             return RoadRoute(states, arcs, None, None, cost)
         return assemble(
             self.planner.search_graph, ends, states, arcs, a.cost, a.road_cost, src, tgt
@@ -1010,7 +1064,7 @@ class Search:
             cost_s=cost,
             lower_bound_s=bound,
             gap=None if cost is None or bound is None else gap_of(cost, bound),
-            improvements=list(self.improvements),
+            improvements=self.improvements.snapshot(),
             weights=self.weights,
             expansions=int(v[_V_EXPANSIONS]),
             elapsed_ms=self.elapsed_ms(),
@@ -1026,6 +1080,8 @@ class Search:
             weight_capped=self._weight_capped,
             gap_target=self.gap_target,
             kernel_ms=self._kernel_s * 1000.0,
+            open_ms=self.open_s * 1000.0,
+            control_ms=self.control_s * 1000.0,
         )
 
     def close(self) -> None:
@@ -1145,35 +1201,39 @@ class Search:
         self._collect_log(ws, with_route=True)
 
     def _collect_log(self, ws: _Workspace, with_route: bool = False) -> None:
-        """Turn the kernel's improvement log into :class:`Improvement` records."""
-        ist, fst = ws.istate, ws.fstate
+        """Move new entries of the kernel's improvement log into :attr:`improvements`."""
+        ist = ws.istate
         count = int(ist[K.I_LOG_COUNT])
         if count == self._log_seen:
             return
         if int(ist[K.I_BEST_NODE]) >= 0:
             self._route_from_kernel(ws)
         v = self._v
-        for i in range(self._log_seen, min(count, K.MAX_LOG)):
-            base = K.F_LOG + 4 * i
-            cost = float(fst[base])
-            bound = float(fst[base + 1])
-            if i == count - 1 and self._cost is not None:
-                cost = min(cost, self._cost)  # the route read back is the real cost
-            bound = min(max(bound, float(v[_V_BOUND])), cost)
-            v[_V_BOUND] = max(float(v[_V_BOUND]), bound)
-            imp = Improvement(
-                elapsed_ms=(fst[base + 3] * 1e-9 - self.started_at) * 1000.0,
-                expansions=int(fst[base + 2]),
-                cost_s=cost,
-                lower_bound_s=bound,
-                gap=gap_of(cost, bound),
-                weight=self.weight,
+        log = self.improvements
+        lo, hi = self._log_seen, min(count, K.MAX_LOG)
+        if hi > lo:
+            at = len(log)
+            rows = log.reserve(hi - lo)
+            route_cost = self._cost if self._cost is not None else math.inf
+            v[_V_BOUND] = K.collect_log(
+                ws.fstate,
+                lo,
+                hi,
+                count - 1,
+                route_cost,
+                float(v[_V_BOUND]),
+                self.started_at,
+                float(self.weight),
+                rows,
+                at,
             )
-            self.improvements.append(imp)
+            log.commit(hi - lo)
             if self.on_improvement is not None:
-                if with_route and i == count - 1:
-                    imp = self.with_route(imp)
-                self.on_improvement(imp)
+                for i in range(at, at + hi - lo):
+                    imp = log[i]
+                    if with_route and i == at + hi - lo - 1 and hi == count:
+                        imp = self.with_route(imp)
+                    self.on_improvement(imp)
         self._log_seen = count
         v[_V_IMPROVEMENTS] = len(self.improvements)
         self._last_improvement_step = self.steps_done
@@ -1314,10 +1374,16 @@ def plan(
     t0 = time.perf_counter() if started_at is None else started_at
     ctrl = make_controller(controller, seed=seed) if isinstance(controller, str) else controller
     planner = planner_for(graph_or_planner)
-    if deadline_ms is not None and budget_expansions is None:
+    kind = "policy" if getattr(ctrl, "uses_policy", False) else "builtin"
+    if getattr(ctrl, "constant", False):
+        # A weight that never changes needs no decisions: one step for the whole contract
+        # (improvements, cancellation and the deadline are the kernel's, not the steps').
+        validate_contract(deadline_ms, budget_expansions, steps)
+        steps = 1
+    elif deadline_ms is not None and budget_expansions is None:
         validate_contract(deadline_ms, None, steps)
-        kind = "policy" if getattr(ctrl, "uses_policy", False) else "builtin"
-        steps = steps_for_deadline(float(deadline_ms), steps, STEP_COST_US[kind])
+        steps = steps_for_deadline(float(deadline_ms), steps, DECISION_COST.us(kind))
+    wants_features = getattr(ctrl, "uses_features", True)
     search = planner.start(
         origin,
         destination,
@@ -1336,13 +1402,24 @@ def plan(
         for imp in search.improvements:  # the instant route, found when the search opened
             on_improvement(search.with_route(imp))
     weight = _check_weight(ctrl.reset(seed), ctrl.name)
+    decisions = 0
     while not search.done:
         search.run_step(weight)
         if search.done:
             break
+        t_decide = time.perf_counter()
         stats = search.stats()
-        weight = _check_weight(ctrl.decide(compute_features(stats), stats), ctrl.name)
+        features = compute_features(stats) if wants_features else _NO_FEATURES
+        weight = _check_weight(ctrl.decide(features, stats), ctrl.name)
+        search.control_s += time.perf_counter() - t_decide
+        decisions += 1
+    DECISION_COST.record(kind, search.control_s, decisions)
     return search.result()
+
+
+#: What a controller that declares ``uses_features = False`` is given instead of features.
+_NO_FEATURES = np.zeros(0, dtype=np.float32)
+_NO_FEATURES.flags.writeable = False
 
 
 def _check_weight(w: Any, name: str) -> float:
@@ -1359,6 +1436,8 @@ def _check_weight(w: Any, name: str) -> float:
 
 
 __all__ = [
+    "DECISION_COST",
+    "DecisionCost",
     "Improvement",
     "NodeNotFound",
     "PlanResult",

@@ -12,8 +12,12 @@ column               meaning
                      from ``scipy.sparse.csgraph.dijkstra`` on the same graph
 ``quality_p10``      its 10th percentile
 ``expansions``       median expansions
-``control``          mean share of the deadline spent outside the kernel (opening the query,
-                     the instant route, decision steps), and ``per_step_us``: that time / steps
+``control``          mean share of the deadline spent deciding weights between steps (stats,
+                     features, the controller: the control overhead), and ``per_step_us``:
+                     that time per decision (a ``fixed:W`` search runs as one step: none)
+``open_us``          median time to open the query (workspace, target row, the instant route)
+``other``            mean share of the deadline outside the kernel, the opening and the
+                     decisions (reading routes back, building the answer)
 ``late_p99_ms``      lateness (return - start - deadline) of the searches that ran out of time;
                      ``busy_wait_p99_ms`` the same for a busy wait to the deadline in the same
                      thread: the machine's own floor
@@ -181,7 +185,7 @@ def cmd_deadline(args: argparse.Namespace) -> int:
         bar.update(1)
 
     cells: dict[tuple[str, float], dict[str, list[float]]] = {
-        (spec, dl): {k: [] for k in ("q", "exp", "ctrl", "step", "late", "busy")}
+        (spec, dl): {k: [] for k in ("q", "exp", "ctrl", "step", "open", "other", "late", "busy")}
         for spec in factories
         for dl in args.deadlines_ms
     }
@@ -205,9 +209,13 @@ def cmd_deadline(args: argparse.Namespace) -> int:
             cost = res.cost_s
             cell["q"].append(0.0 if cost is None else optimum[(o, d)] / cost if cost > 0 else 1.0)
             cell["exp"].append(res.expansions)
-            outside_ms = max(0.0, res.elapsed_ms - res.kernel_ms)
-            cell["ctrl"].append(outside_ms / dl)
-            cell["step"].append(outside_ms * 1000.0 / max(1, len(res.weights)))
+            decisions = max(0, len(res.weights) - 1)  # the first weight is the controller's reset
+            cell["ctrl"].append(res.control_ms / dl)
+            if decisions:
+                cell["step"].append(res.control_ms * 1000.0 / decisions)
+            cell["open"].append(res.open_ms * 1000.0)
+            other_ms = res.elapsed_ms - res.kernel_ms - res.open_ms - res.control_ms
+            cell["other"].append(max(0.0, other_ms) / dl)
             if res.stopped_by == "deadline":
                 cell["late"].append((back - start) * 1000.0 - dl)
                 cell["busy"].append(_busy_wait(dl) * 1000.0)
@@ -226,7 +234,9 @@ def cmd_deadline(args: argparse.Namespace) -> int:
             "quality_p10": float(np.percentile(q, 10)),
             "expansions": float(np.median(c["exp"])),
             "control": float(np.mean(c["ctrl"])),
-            "per_step_us": float(np.median(c["step"])),
+            "per_step_us": float(np.median(c["step"])) if c["step"] else None,
+            "open_us": float(np.median(c["open"])),
+            "other": float(np.mean(c["other"])),
             "ran_out_of_time": len(c["late"]),
         }
         if c["late"]:
@@ -295,15 +305,18 @@ def _format(r: dict[str, Any]) -> str:
         f"{o['p90_ms']:.3f} ms; scipy dijkstra one source {o['scipy_single_source_ms']:.2f} ms",
         "",
         f"{'controller':<11} {'deadline':>8} {'no route':>8} {'quality':>8} {'q p10':>6} "
-        f"{'expansions':>10} {'control':>8} {'us/step':>8} {'late p99':>9} {'busy p99':>9}",
+        f"{'expansions':>10} {'control':>8} {'us/step':>8} {'open us':>8} {'other':>7} "
+        f"{'late p99':>9} {'busy p99':>9}",
     ]
     for c in r["cells"]:
         late = f"{c['late_p99_ms']:.3f}" if "late_p99_ms" in c else "-"
         busy = f"{c['busy_wait_p99_ms']:.3f}" if "busy_wait_p99_ms" in c else "-"
+        step = "-" if c["per_step_us"] is None else f"{c['per_step_us']:.1f}"
         lines.append(
             f"{c['controller']:<11} {c['deadline_ms']:>6g}ms {c['no_route']:>8.1%} "
             f"{c['quality']:>8.3f} {c['quality_p10']:>6.3f} {c['expansions']:>10.0f} "
-            f"{c['control']:>8.2%} {c['per_step_us']:>8.1f} {late:>9} {busy:>9}"
+            f"{c['control']:>8.2%} {step:>8} {c['open_us']:>8.1f} {c['other']:>7.2%} "
+            f"{late:>9} {busy:>9}"
         )
     lines.append("")
     for t in r["targets"]:

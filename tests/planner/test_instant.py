@@ -15,7 +15,9 @@ from scipy.sparse.csgraph import dijkstra
 from dueroute.planner.heuristics import build_landmarks, largest_component_nodes
 from dueroute.planner.session import (
     CONTROL_SHARE,
+    DECISION_COST,
     STEP_COST_US,
+    DecisionCost,
     Planner,
     plan,
     steps_for_deadline,
@@ -127,10 +129,43 @@ def test_steps_follow_the_deadline() -> None:
                 assert steps * cost_us <= CONTROL_SHARE * deadline_ms * 1000.0 + 1e-9
     g = grid_graph(30, seed=26)
     planner = Planner(g, landmarks=build_landmarks(g, count=4, progress=False))
-    res = plan(planner, 0, g.n_nodes - 1, deadline_ms=1.0, controller="fixed:2", steps=20)
-    assert res.steps == steps_for_deadline(1.0, 20, STEP_COST_US["builtin"]) < 20
+    expected = steps_for_deadline(1.0, 20, DECISION_COST.us("builtin"))
+    res = plan(planner, 0, g.n_nodes - 1, deadline_ms=1.0, controller="decreasing", steps=20)
+    assert res.steps == expected < 20
     res = plan(planner, 0, g.n_nodes - 1, budget_expansions=1000, steps=20)
     assert res.steps == 20  # budget contracts keep their steps (reproducible)
+    # a constant weight needs no decisions: one step, no control time, and the same search as
+    # the same contract cut into steps (the kernel carries its state across calls)
+    one = plan(planner, 0, g.n_nodes - 1, budget_expansions=1000, controller="fixed:2")
+    cut = planner.start(0, g.n_nodes - 1, budget_expansions=1000, steps=20)
+    while not cut.done:
+        cut.run_step(2.0)
+    many = cut.result()
+    assert one.steps == 1 and one.control_ms == 0.0
+    assert (one.cost_s, one.expansions, one.lower_bound_s) == (
+        many.cost_s,
+        many.expansions,
+        many.lower_bound_s,
+    )
+    assert np.array_equal(one.route_edges, many.route_edges)
+
+
+def test_decision_cost_follows_what_decisions_cost() -> None:
+    """The estimate moves towards measured decision costs (a running mean), never on a search
+    without decisions, and one outlier moves it at most CLIP times its value by ALPHA."""
+    cost = DecisionCost({"builtin": 5.0})
+    cost.record("builtin", 0.0, 0)
+    assert cost.us("builtin") == 5.0
+    for _ in range(200):
+        cost.record("builtin", 40e-6, 4)  # 10 us per decision
+    assert cost.us("builtin") == pytest.approx(10.0, rel=1e-3)
+    before = cost.us("builtin")
+    cost.record("builtin", 1.0, 1)  # a decision preempted for a second
+    assert cost.us("builtin") == pytest.approx(
+        before + DecisionCost.ALPHA * (DecisionCost.CLIP - 1) * before
+    )
+    # fewer steps when decisions cost more (CONTROL_SHARE of a 1 ms deadline = 20 us)
+    assert steps_for_deadline(1.0, 20, 10.0) == 2 and steps_for_deadline(1.0, 20, 2.0) == 10
 
 
 def test_runaway_guard_caps_the_weight_and_keeps_the_optimum() -> None:

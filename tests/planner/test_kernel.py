@@ -376,7 +376,7 @@ def test_instant_route_is_a_real_path_no_cheaper_than_the_optimum() -> None:
         ws = _open(planner, [(s, 0.0)], [(t, K.ARRIVAL, 0.0)], 1.0, K.MODE_WEIGHTED)
         ws.istate[K.I_GEN] = ws.next_generations(K.INSTANT_GENERATIONS)
         count, cost, _, _ = K.instant_route(
-            planner._indptr,
+            planner._tail,
             planner._head,
             planner._cost,
             planner._lm,
