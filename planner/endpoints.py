@@ -49,7 +49,7 @@ from dueroute.planner import _kernel as K
 from dueroute.planner.errors import InvalidRequest
 from dueroute.planner.graph import RoadGraph, great_circle_m
 from dueroute.planner.snap import RoadSnap, SnapSide
-from dueroute.planner.turns import SearchGraph, build_search_graph
+from dueroute.planner.turns import SearchGraph, TurnProfile, build_search_graph
 
 Position = tuple[float, float]
 
@@ -110,38 +110,43 @@ class Direct:
 # The graph the kernel searches
 
 
-_KERNEL_GRAPHS: weakref.WeakKeyDictionary[RoadGraph, tuple[SearchGraph, RoadGraph]] = (
-    weakref.WeakKeyDictionary()
-)
+_KERNEL_GRAPHS: weakref.WeakKeyDictionary[
+    RoadGraph, dict[TurnProfile, tuple[SearchGraph, RoadGraph]]
+] = weakref.WeakKeyDictionary()
 _KG_LOCK = threading.Lock()
 
 
-def search_graph_for(graph: RoadGraph) -> tuple[SearchGraph, RoadGraph]:
-    """The search graph of ``graph``'s legal drives and the :class:`RoadGraph` the kernel
-    searches (``graph`` itself when it has no turn restrictions), built once per graph.
+def search_graph_for(
+    graph: RoadGraph, profile: TurnProfile | None = None
+) -> tuple[SearchGraph, RoadGraph]:
+    """The search graph of ``graph``'s legal drives under a turn ``profile`` (default: U-turns
+    banned at junctions, no turn costs) and the :class:`RoadGraph` the kernel searches
+    (``graph`` itself when there are neither restrictions nor turn costs), built once per graph
+    and profile.
 
     The kernel graph of a graph with restrictions has one node per search state (at its road
     node's position) and one edge per arc, with the arcs' costs; landmarks for it are stored
     beside the graph as ``<graph>.turns.landmarks.npz`` (its ``path`` is ``<graph>.turns.npz``,
-    a name only).
+    a name only; ``<graph>.turns-<profile tag>.npz`` for another profile).
     """
+    profile = TurnProfile() if profile is None else profile
     with _KG_LOCK:
-        found = _KERNEL_GRAPHS.get(graph)
+        found = _KERNEL_GRAPHS.get(graph, {}).get(profile)
         if found is not None:
             return found
-    sg = build_search_graph(graph)
-    kg = graph if sg.identity else _as_road_graph(graph, sg)
+    sg = build_search_graph(graph, uturns=profile.uturns, turn_costs=profile.costs)
+    kg = graph if sg.identity else _as_road_graph(graph, sg, profile)
     with _KG_LOCK:
-        _KERNEL_GRAPHS[graph] = (sg, kg)
+        _KERNEL_GRAPHS.setdefault(graph, {})[profile] = (sg, kg)
     return sg, kg
 
 
-def planning_graph(graph: RoadGraph) -> RoadGraph:
-    """The graph ALT landmarks must be built on for searches of ``graph``."""
-    return search_graph_for(graph)[1]
+def planning_graph(graph: RoadGraph, profile: TurnProfile | None = None) -> RoadGraph:
+    """The graph ALT landmarks must be built on for searches of ``graph`` (under ``profile``)."""
+    return search_graph_for(graph, profile)[1]
 
 
-def _as_road_graph(graph: RoadGraph, sg: SearchGraph) -> RoadGraph:
+def _as_road_graph(graph: RoadGraph, sg: SearchGraph, profile: TurnProfile) -> RoadGraph:
     from scipy.sparse import csr_matrix
     from scipy.sparse.csgraph import connected_components
 
@@ -154,8 +159,10 @@ def _as_road_graph(graph: RoadGraph, sg: SearchGraph) -> RoadGraph:
         "name": f"{graph.name} (turn rules)",
         "road_classes": graph.meta.get("road_classes", []),
         "search_graph": dict(sg.info),
+        "turn_profile": profile.describe(),
     }
-    path = None if graph.path is None else graph.path.with_name(graph.path.stem + ".turns.npz")
+    suffix = ".turns.npz" if profile.is_default else f".turns-{profile.tag}.npz"
+    path = None if graph.path is None else graph.path.with_name(graph.path.stem + suffix)
     return RoadGraph(
         indptr=np.asarray(sg.indptr, dtype=np.int64),
         head=np.asarray(sg.head, dtype=np.int32),

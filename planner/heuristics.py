@@ -813,12 +813,14 @@ def load_or_build_landmarks(
     *,
     path: str | Path | None = None,
     rebuild: bool = False,
+    turn_profile: Any = None,
 ) -> Landmarks:
     """Landmarks stored beside the graph, built (and saved) when missing or stale.
 
-    For a graph with turn restrictions they are built on the graph the search runs on, its
-    search graph of legal drives (``planner.endpoints.planning_graph``), and stored as
-    ``<graph>.turns.landmarks.npz``.
+    For a graph with turn restrictions (or a ``turn_profile`` with turn costs,
+    ``planner.turns.TurnProfile``) they are built on the graph the search runs on, its search
+    graph of legal drives (``planner.endpoints.planning_graph``), and stored as
+    ``<graph>.turns.landmarks.npz`` (``<graph>.turns-<profile tag>.landmarks.npz``).
 
     The file is ``path`` or ``<graph>.landmarks.npz``. A file built for another version of the
     graph (fingerprint differs) or with another count or method is rebuilt and replaced; a
@@ -828,7 +830,8 @@ def load_or_build_landmarks(
     """
     from dueroute.planner.endpoints import planning_graph
 
-    graph = planning_graph(graph)  # a graph with turn rules is searched as its search graph
+    # a graph with turn rules is searched as its search graph
+    graph = planning_graph(graph, turn_profile)
     target = Path(path) if path is not None else None
     if target is None and graph.path is not None:
         target = landmarks_path(graph.path)

@@ -106,6 +106,7 @@ from dueroute.planner.results import (
     gap_of,
 )
 from dueroute.planner.snap import RoadSnap
+from dueroute.planner.turns import TurnProfile
 
 #: Safety cap when neither a deadline nor a budget is given (see the module docstring).
 UNBOUNDED_BUDGET_PER_NODE = 20
@@ -264,6 +265,9 @@ class Planner:
         (and a greedy first route instead of the instant one).
     active_landmarks : int
         Landmarks evaluated per node (the best for each query's origin and destination).
+    turn_profile : planner.turns.TurnProfile, optional
+        The U-turn rule and turn penalties (default: U-turns banned at junctions, none);
+        landmarks must be built for the same profile (``load_or_build_landmarks``).
 
     A graph with turn restrictions is searched as its search graph of legal drives
     (``planner.turns``, built once per graph by ``planner.endpoints.search_graph_for``); its
@@ -271,10 +275,17 @@ class Planner:
     """
 
     def __init__(
-        self, graph: RoadGraph, landmarks: Any = None, active_landmarks: int = ACTIVE_LANDMARKS
+        self,
+        graph: RoadGraph,
+        landmarks: Any = None,
+        active_landmarks: int = ACTIVE_LANDMARKS,
+        turn_profile: TurnProfile | None = None,
     ) -> None:
         self.graph = graph
-        self.search_graph, kg = search_graph_for(graph)
+        #: how vehicles may turn (``planner.turns.TurnProfile``; default: U-turns banned at
+        #: junctions, no turn costs)
+        self.turn_profile = TurnProfile() if turn_profile is None else turn_profile
+        self.search_graph, kg = search_graph_for(graph, self.turn_profile)
         #: the graph the kernel searches: ``graph`` itself, or one node per search state
         self.kernel_graph = kg
         n = kg.n_nodes

@@ -1076,6 +1076,11 @@ class CostLayer:
         ``R`` above which landmarks are rebuilt (default: module docstring).
     background_nice : int
         Niceness of the background thread (Linux), so it yields to searches.
+    turn_profile : planner.turns.TurnProfile, optional
+        The turn profile searches use. A graph with turn restrictions (or turn costs) is
+        searched as its search graph of legal drives, so its landmarks belong to that graph and
+        are rebuilt there, on the arc costs the new road costs give (default: the default
+        profile).
 
     Every operation takes a time stamp ``at`` (default: now; never below the last one) and an
     optional ``version`` (default: the current one + 1; must be larger than the current).
@@ -1091,11 +1096,24 @@ class CostLayer:
         rebuild_threshold_s: float | None = None,
         background_nice: int = 0,
         clock: Callable[[], float] = time.time,
+        turn_profile: Any = None,
     ) -> None:
         if refine not in ("background", "sync", "off"):
             raise InvalidRequest(f"refine must be background, sync or off, got {refine!r}")
         self.graph = graph
         self.landmarks = landmarks
+        self.turn_profile = turn_profile
+        # Under turn rules a road edge is driven as one or more arcs of the search graph, and a
+        # shortest drive uses each arc at most once, so a saving on edge e counts once per arc
+        # of e in R (None: the road graph itself, each edge once).
+        from dueroute.planner.endpoints import search_graph_for
+
+        sg, _ = search_graph_for(graph, turn_profile)
+        self._arcs_per_edge: np.ndarray | None = (
+            None
+            if sg.identity
+            else np.bincount(np.asarray(sg.road_edge), minlength=graph.n_edges).astype(np.float64)
+        )
         self.refine = refine
         self.clock = clock
         self.background_nice = background_nice
@@ -1332,7 +1350,13 @@ class CostLayer:
             return None
         with np.errstate(invalid="ignore"):  # inf - inf where both close: masked to 0
             diff = np.where(b_closed, 0.0, bc - np.where(np.isinf(c), bc, c))
-        return float(np.maximum(diff, 0.0).sum())
+        return self._total_saving(np.maximum(diff, 0.0), idx)
+
+    def _total_saving(self, saving: np.ndarray, idx: np.ndarray) -> float:
+        """R: the savings of edges ``idx``, each once per arc it is driven as."""
+        if self._arcs_per_edge is None:
+            return float(saving.sum())
+        return float(np.dot(saving, self._arcs_per_edge[idx]))
 
     def _choose_basis(
         self, costs: np.ndarray, changed: np.ndarray, idx: np.ndarray
@@ -1340,7 +1364,7 @@ class CostLayer:
         """(landmarks or None, basis version, R): the valid basis with the smallest R."""
         b, c = self._base[idx], costs[idx]
         # inf costs (closures) contribute 0; sum in float64 over at most m terms
-        base_r = float(np.maximum(b - np.where(np.isinf(c), b, c), 0.0).sum())
+        base_r = self._total_saving(np.maximum(b - np.where(np.isinf(c), b, c), 0.0), idx)
         best: tuple[Any, int, float] = (None, 0, base_r)
         basis = self._basis
         if basis is not None and base_r > 0.0:
@@ -1422,10 +1446,8 @@ class CostLayer:
             labels = _compute_labels(self.graph, target.travel_time_s, closed)
             self.last_refine_s["labels"] = time.perf_counter() - t0
         if want_landmarks:
-            from dueroute.planner.heuristics import landmarks_on_costs
-
             t0 = time.perf_counter()
-            lm = landmarks_on_costs(self.graph, self.landmarks, target.travel_time_s)
+            lm = self._landmarks_on(target.travel_time_s)
             self.last_refine_s["landmarks"] = time.perf_counter() - t0
             basis = _Basis(target.version, target.travel_time_s, changed, lm)
         with self._lock:
@@ -1435,6 +1457,16 @@ class CostLayer:
                 self._basis = basis
             self.refinements += 1
             self._reattach()
+
+    def _landmarks_on(self, road_costs: np.ndarray) -> Any:
+        """The landmarks rebuilt on new road costs, on the graph searches run on."""
+        from dueroute.planner.endpoints import search_graph_for
+        from dueroute.planner.heuristics import landmarks_on_costs
+
+        sg, kg = search_graph_for(self.graph, self.turn_profile)
+        if sg.identity:
+            return landmarks_on_costs(self.graph, self.landmarks, road_costs)
+        return landmarks_on_costs(kg, self.landmarks, sg.arc_costs(road_costs))
 
     def _reattach(self) -> None:
         """Republish the current version (same number, same costs) with the best labels and

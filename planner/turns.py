@@ -100,6 +100,7 @@ Searching it (for the kernel)
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 import math
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -176,6 +177,92 @@ class TurnCosts:
     @property
     def is_zero(self) -> bool:
         return self.left_s == 0.0 and self.right_s == 0.0 and self.uturn_s == 0.0
+
+
+@dataclass(frozen=True)
+class TurnProfile:
+    """How a vehicle may turn: the U-turn rule and the turn penalties of its profile.
+
+    The default (U-turns banned at junctions, no penalties) is what a graph is searched with
+    unless a caller says otherwise; each profile gets its own search graph and landmarks.
+    """
+
+    uturns: str = "forbid_at_junctions"
+    costs: TurnCosts | None = None
+
+    def __post_init__(self) -> None:
+        if self.uturns not in UTURN_POLICIES:
+            raise InvalidRequest(
+                f"uturns must be one of {list(UTURN_POLICIES)}, got {self.uturns!r}"
+            )
+        if self.costs is not None and not isinstance(self.costs, TurnCosts):
+            raise InvalidRequest(
+                f"turn costs must be a TurnCosts or None, got {type(self.costs).__name__}"
+            )
+        if self.costs is not None and self.costs.is_zero:
+            object.__setattr__(self, "costs", None)  # all zero is no turn costs
+
+    @property
+    def is_default(self) -> bool:
+        return self.uturns == "forbid_at_junctions" and self.costs is None
+
+    @property
+    def tag(self) -> str:
+        """A short name for files derived from the profile ('' for the default)."""
+        if self.is_default:
+            return ""
+        c = self.costs
+        text = f"{self.uturns}|" + (
+            "none"
+            if c is None
+            else f"{c.left_s!r},{c.right_s!r},{c.uturn_s!r},{c.straight_max_deg!r},"
+            f"{c.uturn_min_deg!r},{c.probe_m!r}"
+        )
+        return hashlib.sha256(text.encode()).hexdigest()[:10]
+
+    def describe(self) -> dict[str, Any]:
+        """JSON-ready: the U-turn rule and the penalties (seconds)."""
+        c = self.costs
+        return {
+            "uturns": self.uturns,
+            "turn_costs_s": None
+            if c is None
+            else {"left": c.left_s, "right": c.right_s, "uturn": c.uturn_s},
+        }
+
+
+#: Keys of :func:`parse_turn_costs`.
+TURN_COST_KEYS = ("left", "right", "uturn")
+
+
+def parse_turn_costs(text: str | None) -> TurnCosts | None:
+    """``"left=8,right=3,uturn=30"`` (seconds; any subset, each key once) as :class:`TurnCosts`;
+    None or ``""`` for none. Raises :class:`InvalidRequest` naming what is wrong."""
+    if text is None or not text.strip():
+        return None
+    values: dict[str, float] = {}
+    for part in text.split(","):
+        key, sep, raw = part.strip().partition("=")
+        key = key.strip()
+        if not sep or key not in TURN_COST_KEYS:
+            raise InvalidRequest(
+                f"turn costs: {part.strip()!r} is not KEY=SECONDS with KEY one of "
+                f"{', '.join(TURN_COST_KEYS)} (e.g. left=8,right=3,uturn=30)"
+            )
+        if key in values:
+            raise InvalidRequest(f"turn costs: {key} given twice")
+        try:
+            value = float(raw)
+        except ValueError:
+            raise InvalidRequest(
+                f"turn costs: {key}={raw.strip()!r} is not a number of seconds"
+            ) from None
+        values[key] = value
+    return TurnCosts(
+        left_s=values.get("left", 0.0),
+        right_s=values.get("right", 0.0),
+        uturn_s=values.get("uturn", 0.0),
+    )
 
 
 def _is_real(value: Any) -> bool:

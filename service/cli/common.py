@@ -160,16 +160,42 @@ def add_out_option(parser: Any, *, required: bool, metavar: str, help: str, **kw
     add_alias(parser, "--output", "--out", dest="out")
 
 
-def landmarks_for(graph: Any, count: int) -> Any:
+def landmarks_for(graph: Any, count: int, turn_profile: Any = None) -> Any:
     """ALT landmarks for ``graph`` (loaded from beside it, built and saved when missing), or
-    ``None`` for ``count == 0``."""
+    ``None`` for ``count == 0``; for a ``turn_profile`` other than the default, its own."""
     from dueroute.planner.heuristics import MAX_COUNT, load_or_build_landmarks
 
     if not 0 <= count <= MAX_COUNT:
         raise InvalidRequest(f"--landmarks must be in 0..{MAX_COUNT}, got {count}")
     if count == 0:
         return None
-    return load_or_build_landmarks(graph, count=count, progress=True)
+    return load_or_build_landmarks(graph, count=count, progress=True, turn_profile=turn_profile)
+
+
+def add_turn_options(parser: Any) -> None:
+    """``--turn-costs left=S,right=S,uturn=S`` and ``--uturns``: the vehicle's turn profile."""
+    from dueroute.planner.turns import UTURN_POLICIES
+
+    parser.add_argument(
+        "--turn-costs",
+        default=None,
+        metavar="left=S,right=S,uturn=S",
+        help="seconds added for each left turn, right turn and U-turn (any of the three; "
+        "default none)",
+    )
+    parser.add_argument(
+        "--uturns",
+        choices=UTURN_POLICIES,
+        default="forbid_at_junctions",
+        help="U-turns at junctions (dead ends always allow them); default forbid_at_junctions",
+    )
+
+
+def turn_profile_arg(args: argparse.Namespace) -> Any:
+    """The ``planner.turns.TurnProfile`` of ``--turn-costs`` and ``--uturns``."""
+    from dueroute.planner.turns import TurnProfile, parse_turn_costs
+
+    return TurnProfile(uturns=args.uturns, costs=parse_turn_costs(args.turn_costs))
 
 
 def add_landmarks_option(
@@ -216,7 +242,7 @@ def add_traffic_flag(parser: argparse.ArgumentParser, what: str = "search") -> N
     )
 
 
-def load_traffic_arg(arg: str, graph: Any, landmarks: Any = None) -> Any:
+def load_traffic_arg(arg: str, graph: Any, landmarks: Any = None, turn_profile: Any = None) -> Any:
     """The cost version of a traffic document (or named scenario) applied to ``graph``.
 
     SCC labels, and landmarks rebuilt on the new costs when speed-ups call for it, are
@@ -228,7 +254,7 @@ def load_traffic_arg(arg: str, graph: Any, landmarks: Any = None) -> Any:
 
     path = resolve_traffic_path(arg)
     _, updates = load_document(path, graph)
-    layer = CostLayer(graph, landmarks, refine="sync")
+    layer = CostLayer(graph, landmarks, refine="sync", turn_profile=turn_profile)
     try:
         version = layer.apply(updates)
     finally:

@@ -20,11 +20,13 @@ from dueroute.service.cli.common import (
     add_json_flag,
     add_landmarks_option,
     add_traffic_flag,
+    add_turn_options,
     landmarks_for,
     load_graph_arg,
     load_traffic_arg,
     progress,
     traffic_summary,
+    turn_profile_arg,
 )
 
 #: Controllers the CLI accepts; ``learned`` goes through ``policies.runtime``.
@@ -79,6 +81,7 @@ def register(sub: Any) -> argparse.ArgumentParser:
     )
     add_landmarks_option(p)
     add_alias(p, "--no-landmarks", "--landmarks 0", dest="landmarks", nargs=0, const=0)
+    add_turn_options(p)
     add_traffic_flag(p)
     add_json_flag(p)
     p.set_defaults(func=cmd_route)
@@ -140,12 +143,13 @@ def cmd_route(args: argparse.Namespace) -> int:
     validate_gap_target(args.gap)
     make = _controller_factory(args.controller, args.policy, args.seed)
 
+    profile = turn_profile_arg(args)
     graph = load_graph_arg(args.graph)
-    landmarks = landmarks_for(graph, args.landmarks)
-    planner = Planner(graph, landmarks=landmarks)
+    landmarks = landmarks_for(graph, args.landmarks, profile)
+    planner = Planner(graph, landmarks=landmarks, turn_profile=profile)
     costs = None
     if args.traffic is not None:
-        costs = load_traffic_arg(args.traffic, graph, landmarks)
+        costs = load_traffic_arg(args.traffic, graph, landmarks, profile)
         if not args.json:
             print(traffic_summary(costs, args.traffic))
     planner.warm_up()  # JIT compile or cache load stays out of the first deadline

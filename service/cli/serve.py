@@ -25,6 +25,8 @@ _FLAGS = {
     "background_ttl_s": "background_ttl_s",
     "on_damaged_policy": "on_damaged_policy",
     "log_level": "log_level",
+    "turn_costs": "turn_costs",
+    "uturns": "uturns",
 }
 
 
@@ -100,6 +102,18 @@ def register(sub: Any) -> None:
         default=None,
         help="a damaged stored active policy: start with the newest good one from the "
         "history and report it (previous, the default), or refuse to start",
+    )
+    p.add_argument(
+        "--turn-costs",
+        default=None,
+        metavar="left=S,right=S,uturn=S",
+        help="seconds added for each left turn, right turn and U-turn (default none)",
+    )
+    p.add_argument(
+        "--uturns",
+        choices=("forbid_at_junctions", "allow"),
+        default=None,
+        help="U-turns at junctions (default forbid_at_junctions; dead ends always allow them)",
     )
     p.add_argument("--log-level", default=None, help="debug, info, warning, error")
     p.add_argument("--plain-logs", action="store_true", help="human-readable instead of JSON logs")

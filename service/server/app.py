@@ -204,9 +204,14 @@ def warm_up(state: AppState) -> None:
 
     graph = load_graph(resolve_graph_path(settings.graph))
     t_graph = time.perf_counter()
-    landmarks = load_or_build_landmarks(graph, progress=False) if settings.landmarks else None
+    profile = settings.turn_profile
+    landmarks = (
+        load_or_build_landmarks(graph, progress=False, turn_profile=profile)
+        if settings.landmarks
+        else None
+    )
     t_lm = time.perf_counter()
-    planner = Planner(graph, landmarks=landmarks)
+    planner = Planner(graph, landmarks=landmarks, turn_profile=profile)
     planner.warm_up()
     if graph.n_nodes:  # builds the snapping k-d tree now, not inside the first request
         from dueroute.planner.snap import snap_to_road
@@ -222,6 +227,7 @@ def warm_up(state: AppState) -> None:
         JournalStore(settings.traffic_state_dir, graph.fingerprint),
         poll_s=settings.traffic_poll_s,
         background_nice=19 if settings.worker_nice else 0,
+        turn_profile=profile,
     )
     traffic.start()  # replays the journal: the same version and costs as before a restart
     engine.traffic = traffic
@@ -246,6 +252,7 @@ def warm_up(state: AppState) -> None:
         "warmup_ms": round((t_done - t_lm) * 1000.0, 1),
         "warmup_searches": searches,
         "traffic_version": traffic.current.version,
+        "turn_profile": profile.describe(),
         "traffic_replay_ms": round((t_done_traffic - t_traffic) * 1000.0, 1),
     }
     # Collect start-up garbage once and move everything alive now out of the collector's

@@ -10,12 +10,15 @@ from __future__ import annotations
 import os
 from functools import lru_cache
 from pathlib import Path
-from typing import Literal
+from typing import TYPE_CHECKING, Literal
 
 from pydantic import Field, SecretStr, field_validator, model_validator
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
 from dueroute.planner import limits
+
+if TYPE_CHECKING:
+    from dueroute.planner.turns import TurnProfile
 
 
 def _default_policy_dir() -> Path:
@@ -70,6 +73,15 @@ class Settings(BaseSettings):
         "start-up: 'previous' starts with the newest good policy of its history and reports "
         "the damage on /v1/policy, /readyz and a metric; 'refuse' stops the start with a "
         "message naming the file",
+    )
+    uturns: Literal["forbid_at_junctions", "allow"] = Field(
+        default="forbid_at_junctions",
+        description="U-turns at junctions (three or more neighbours); dead ends always allow them",
+    )
+    turn_costs: str | None = Field(
+        default=None,
+        description="seconds added per turn, e.g. 'left=8,right=3,uturn=30' (any of the three); "
+        "unset: none. Each profile has its own landmarks beside the graph",
     )
     admin_token: SecretStr | None = Field(
         default=None,
@@ -185,6 +197,27 @@ class Settings(BaseSettings):
         if v is not None and len(v.get_secret_value()) < 8:
             raise ValueError("admin_token must be at least 8 characters (or unset)")
         return v
+
+    @field_validator("turn_costs")
+    @classmethod
+    def _turn_costs(cls, v: str | None) -> str | None:
+        from dueroute.planner.errors import InvalidRequest
+        from dueroute.planner.turns import parse_turn_costs
+
+        if v is None or not v.strip():
+            return None
+        try:
+            parse_turn_costs(v)
+        except InvalidRequest as exc:
+            raise ValueError(str(exc)) from None
+        return v
+
+    @property
+    def turn_profile(self) -> TurnProfile:
+        """The ``planner.turns.TurnProfile`` of ``uturns`` and ``turn_costs``."""
+        from dueroute.planner.turns import TurnProfile, parse_turn_costs
+
+        return TurnProfile(uturns=self.uturns, costs=parse_turn_costs(self.turn_costs))
 
     @property
     def traffic_state_dir(self) -> Path:

@@ -389,13 +389,19 @@ class LiveTraffic:
         refine: str = "background",
         background_nice: int = 0,
         clock: Any = time.time,
+        turn_profile: Any = None,
     ) -> None:
         self.graph = graph
         self.store = store
         self.poll_s = poll_s
         self.clock = clock
         self.layer = CostLayer(
-            graph, landmarks, refine=refine, background_nice=background_nice, clock=clock
+            graph,
+            landmarks,
+            refine=refine,
+            background_nice=background_nice,
+            clock=clock,
+            turn_profile=turn_profile,
         )
         self._sync_lock = threading.Lock()
         self._resolved: dict[int, Batch] = {}

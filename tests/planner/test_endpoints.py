@@ -14,9 +14,12 @@ import pytest
 from scipy.sparse.csgraph import dijkstra
 
 from dueroute.planner.endpoints import planning_graph
+from dueroute.planner.errors import InvalidRequest
 from dueroute.planner.heuristics import build_landmarks
 from dueroute.planner.session import Planner, plan
 from dueroute.planner.snap import snap_to_road
+from dueroute.planner.traffic import CostLayer, parse_document
+from dueroute.planner.turns import TurnCosts, TurnProfile
 from tests.planner.test_kernel import grid_graph
 from tests.planner.test_turns import Reference, is_legal, random_road_graph
 
@@ -145,3 +148,82 @@ def test_a_point_and_a_node_and_the_same_edge() -> None:
         assert res.route_start.coords[0] == (first.lon, first.lat)
         assert res.route_start.coords[-1] == (second.lon, second.lat)
     assert side.edge in (e, g.reverse_edge[e]) and t != h
+
+
+PROFILES = [
+    ("forbid_at_junctions", TurnCosts(left_s=7.0, right_s=3.0, uturn_s=20.0)),
+    ("allow", None),
+    ("allow", TurnCosts(left_s=4.0, right_s=0.0, uturn_s=9.0)),
+]
+
+
+@pytest.mark.parametrize(("uturns", "costs"), PROFILES)
+@pytest.mark.parametrize("seed", range(4))
+def test_turn_profiles_give_the_legal_optimum(seed: int, uturns: str, costs) -> None:
+    """A planner with a turn profile (U-turn rule, turn penalties) proves the optimum of the
+    networkx line-graph reference with the same rules and penalties, between every pair, with
+    landmarks built for that profile (a profile of its own has its own search graph)."""
+    g = random_road_graph(seed, max_side=4, n_restrictions=6)
+    profile = TurnProfile(uturns=uturns, costs=costs)
+    ref = Reference(g, uturns=uturns, turn_costs=costs)
+    lg = ref.line_graph()
+    lm = build_landmarks(planning_graph(g, profile), count=3, progress=False)
+    planner = Planner(g, landmarks=lm, turn_profile=profile)
+    for s in range(g.n_nodes):
+        best = ref.shortest_from(lg, s)
+        for t in range(g.n_nodes):
+            if s == t:
+                continue
+            res = plan(planner, s, t, controller="fixed:2")
+            if not math.isfinite(best[t]):
+                assert res.status == "no_route", (s, t)
+                continue
+            assert res.status == "optimal" and res.cost_s == pytest.approx(best[t], rel=REL)
+            assert is_legal(ref, [int(e) for e in res.route_edges])
+
+
+def test_landmarks_of_another_profile_are_refused() -> None:
+    """Landmarks built for one turn profile belong to its search graph: a planner of another
+    profile refuses them with a clear message instead of searching with a wrong bound."""
+    g = random_road_graph(3, max_side=4, n_restrictions=6)
+    lm = build_landmarks(planning_graph(g), count=3, progress=False)
+    profile = TurnProfile(costs=TurnCosts(left_s=7.0))
+    with pytest.raises(InvalidRequest, match="belong to another graph"):
+        Planner(g, landmarks=lm, turn_profile=profile)
+
+
+@pytest.mark.parametrize("seed", range(4))
+def test_live_speedups_under_turn_rules_keep_the_bound_proven(seed: int) -> None:
+    """Live speed-ups on a graph with turn rules and turn costs: the landmarks are rebuilt on
+    the search graph's arc costs (here at once: threshold 0), and before that the bound is
+    lowered by every arc's saving (threshold infinite: never rebuilt). Either way each answer's bound is at most the networkx
+    reference optimum on the new costs and a proven answer equals it."""
+    g = random_road_graph(seed, max_side=4, n_restrictions=6)
+    profile = TurnProfile(costs=TurnCosts(left_s=5.0, right_s=2.0, uturn_s=12.0))
+    lm = build_landmarks(planning_graph(g, profile), count=3, progress=False)
+    planner = Planner(g, landmarks=lm, turn_profile=profile)
+    rng = np.random.default_rng(seed)
+    edges = rng.choice(g.n_edges, size=max(1, g.n_edges // 3), replace=False)
+    tail, head = np.asarray(g.tail), np.asarray(g.head)
+    doc = {
+        "updates": [
+            {"from_node": int(tail[e]), "to_node": int(head[e]), "factor": 0.4} for e in edges
+        ]
+    }
+    for threshold in (math.inf, 0.0):
+        layer = CostLayer(g, lm, refine="sync", rebuild_threshold_s=threshold, turn_profile=profile)
+        version = layer.apply(parse_document(doc, g))
+        layer.close()
+        assert (version.landmarks is not None) == (threshold == 0.0)
+        ref = Reference(g, turn_costs=profile.costs, costs=version.travel_time_s)
+        lg = ref.line_graph()
+        for s in range(0, g.n_nodes, 2):
+            best = ref.shortest_from(lg, s)
+            for t in range(g.n_nodes):
+                if s == t or not math.isfinite(best[t]):
+                    continue
+                quick = plan(planner, s, t, budget_expansions=3, steps=1, costs=version)
+                if quick.lower_bound_s is not None:
+                    assert quick.lower_bound_s <= best[t] * (1 + REL), (s, t)
+                res = plan(planner, s, t, controller="fixed:2", costs=version)
+                assert res.status == "optimal" and res.cost_s == pytest.approx(best[t], rel=REL)

@@ -109,6 +109,30 @@ def test_points_snap_onto_roads_and_learned_falls_back_without_a_policy(
     assert info["sha256"] is None and info["fallback_controller"] == "decreasing"
 
 
+def test_a_turn_profile_gives_the_legal_optimum(make_client, tiny_graph_path):
+    """With turn costs and U-turns allowed (settings), the answer equals the legal optimum of
+    the networkx line-graph reference (tests/planner/test_turns.py) with the same rules, and
+    /readyz names the profile."""
+    from dueroute.planner.turns import TurnCosts
+    from tests.planner.test_turns import Reference
+
+    client = make_client(tiny_graph_path, turn_costs="left=7,right=3,uturn=20", uturns="allow")
+    graph = load_graph(tiny_graph_path)
+    ref = Reference(graph, uturns="allow", turn_costs=TurnCosts(left_s=7, right_s=3, uturn_s=20))
+    lg = ref.line_graph()
+    for o, d in ((0, 3), (3, 0), (5, 2), (9, 9)):
+        r = client.post(PLAN, json=body(o, d, controller="fixed:1"))
+        assert r.status_code == 200, r.text
+        best = ref.shortest_from(lg, o)[d] if o != d else 0.0
+        assert r.json()["status"] == "optimal"
+        assert r.json()["cost_s"] == pytest.approx(best, rel=1e-9)
+    profile = client.get("/readyz").json()["detail"]["turn_profile"]
+    assert profile == {
+        "uturns": "allow",
+        "turn_costs_s": {"left": 7.0, "right": 3.0, "uturn": 20.0},
+    }
+
+
 def test_no_route_and_same_node(make_client, tiny_graph_path):
     """Hand-checked facts of the tiny graph (tests/conftest.py): 7 is unreachable from 0."""
     client = make_client(tiny_graph_path)

@@ -105,6 +105,9 @@ def test_route_bad_csv_names_the_line(graph_file, tmp_path, capsys, csv_text, me
         (["--from", "0", "--to", "1", "--steps", "0"], "steps must be between 1"),
         (["--from", "0", "--to", "1", "--deadline-ms", "0"], "deadline_ms must be > 0"),
         (["--from", "a,b", "--to", "1"], "expected a node index or LAT,LON"),
+        (["--from", "0", "--to", "1", "--turn-costs", "left=x"], "left='x' is not a number"),
+        (["--from", "0", "--to", "1", "--turn-costs", "sharp=3"], "KEY one of left, right"),
+        (["--from", "0", "--to", "1", "--turn-costs", "left=-1"], "must be a finite number"),
     ],
 )
 def test_route_bad_arguments(graph_file, capsys, argv, message) -> None:
@@ -157,3 +160,21 @@ def test_loadtest_traffic_flags_are_checked(graph_file, tmp_path, capsys):
     assert "--traffic needs --reference" in capsys.readouterr().err
     assert main([*base, "--admin-token-file", str(tmp_path / "tok")]) == 2
     assert "--admin-token-file is only used with --traffic" in capsys.readouterr().err
+
+
+def test_route_with_turn_costs_matches_the_line_graph_reference(graph_file, capsys) -> None:
+    """--turn-costs and --uturns give the legal optimum of the networkx line-graph reference
+    (tests/planner/test_turns.py) with the same penalties, which is never cheaper than the
+    scipy ``csgraph.dijkstra`` optimum without them."""
+    from dueroute.planner.turns import TurnCosts
+    from tests.planner.test_turns import Reference
+
+    path, g = graph_file
+    argv = ["route", str(path), "--from", "0", "--to", "143", "--controller", "fixed:1"]
+    argv += ["--turn-costs", "left=9,right=4,uturn=30", "--uturns", "allow", "--json"]
+    assert main(argv) == 0
+    d = json.loads(capsys.readouterr().out.strip().splitlines()[-1])
+    ref = Reference(g, uturns="allow", turn_costs=TurnCosts(left_s=9.0, right_s=4.0, uturn_s=30.0))
+    best = ref.shortest_from(ref.line_graph(), 0)[143]
+    assert d["status"] == "optimal" and d["cost_s"] == pytest.approx(best, rel=1e-9)
+    assert best >= dijkstra(g.csr(), indices=0)[143]

@@ -17,6 +17,7 @@ from dueroute.service.cli.main import main
         (["--log-level", "loud"], "log_level must be one of"),
         (["--graph", "nowhere.npz"], "graph file not found"),
         (["--graph", "map.osm"], "is not a compiled graph"),
+        (["--turn-costs", "left=8,left=2"], "turn costs: left given twice"),
     ],
 )
 def test_bad_settings_exit_2_with_one_line(args, words, capsys, tmp_path: Path):
