@@ -68,6 +68,7 @@ from dueroute.planner.osm_rules import (
     DEFAULT_ROAD_FILTER,
     DRIVABLE_HIGHWAYS,
     SERVICE_VALUES_DROPPED,
+    WAY_TAGS,
     RoadFilter,
     tokens,
     way_drop_reason,
@@ -91,19 +92,7 @@ __all__ = [
 
 #: Way tags the importer needs on edges; added to ``osmnx.settings.useful_tags_way`` for the
 #: duration of one import.
-_WAY_TAGS = [
-    "highway",
-    "maxspeed",
-    "oneway",
-    "junction",
-    "access",
-    "vehicle",
-    "motor_vehicle",
-    "motorcar",
-    "service",
-    "area",
-    "name",
-]
+_WAY_TAGS = [*WAY_TAGS, "name"]
 
 _DROP_REASONS = ("not_a_road", "not_for_cars", "service_road", "no_car_access", "area")
 

@@ -445,10 +445,12 @@ class PlanResult:
             "control_ms": self.control_ms,
             "route_start": None if self.route_start is None else self.route_start.to_dict(),
             "route_end": None if self.route_end is None else self.route_end.to_dict(),
-            "origin_point": None if self.origin_snap is None else _point(self.origin_snap),
+            "origin_point": None
+            if self.origin_snap is None
+            else snapped_point_dict(self.origin_snap),
             "destination_point": None
             if self.destination_snap is None
-            else _point(self.destination_snap),
+            else snapped_point_dict(self.destination_snap),
             "improvements": [i.to_dict() for i in self.improvements],
             "weights": [asdict(w) for w in self.weights],
         }
@@ -456,7 +458,7 @@ class PlanResult:
         return out
 
 
-def _point(snap: Any) -> dict[str, Any]:
+def snapped_point_dict(snap: Any) -> dict[str, Any]:
     """A snapped point as answers give it: where it is, how far the query was, which edge."""
     return {
         "lat": snap.lat,

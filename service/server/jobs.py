@@ -31,7 +31,7 @@ from typing import Any
 
 import numpy as np
 
-from dueroute.planner.results import Improvement
+from dueroute.planner.results import Improvement, snapped_point_dict
 from dueroute.planner.session import plan
 from dueroute.service.server.admission import Ticket
 
@@ -155,13 +155,7 @@ def snapped_point(snap: Any) -> dict[str, Any] | None:
     """Where a place given as a point was snapped to (None for a place given as a node)."""
     if snap is None or isinstance(snap, int):
         return None
-    return {
-        "lat": snap.lat,
-        "lon": snap.lon,
-        "distance_m": snap.distance_m,
-        "edge": snap.edge,
-        "query": {"lat": snap.query_lat, "lon": snap.query_lon},
-    }
+    return snapped_point_dict(snap)
 
 
 def improvement_dict(imp: Improvement) -> dict[str, Any]:
