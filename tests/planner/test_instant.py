@@ -189,3 +189,42 @@ def test_runaway_guard_caps_the_weight_and_keeps_the_optimum() -> None:
         assert hits > 0
     finally:
         session.RUNAWAY_FACTOR, session.RUNAWAY_MIN = old
+
+
+@pytest.mark.slow
+def test_bounds_and_routes_on_the_demo_region() -> None:
+    """On the demo region (207k nodes, the shipped landmarks), for every controller and for
+    contracts from one expansion to the proof, with and without a gap target: the instant
+    route exists, every bound is at most the scipy ``csgraph.dijkstra`` optimum, every cost at
+    least it, every route a path of the graph with its claimed cost, and a proof equals it."""
+    from dueroute.demo_data.build import demo_graph_path
+    from dueroute.planner.graph import load_graph
+    from dueroute.planner.heuristics import load_or_build_landmarks
+
+    g = load_graph(demo_graph_path("demo", progress=False))
+    planner = Planner(g, landmarks=load_or_build_landmarks(g, progress=False))
+    rng = np.random.default_rng(31)
+    nodes = largest_component_nodes(g)
+    pairs = [(int(a), int(b)) for a, b in rng.choice(nodes, (24, 2))]
+    origins = sorted({o for o, _ in pairs})
+    dist = dijkstra(g.csr(), directed=True, indices=origins)
+    row = {o: i for i, o in enumerate(origins)}
+    for o, d in pairs:
+        if o == d:
+            continue
+        opt = float(dist[row[o], d])
+        for controller in ("fixed:1", "fixed:3", "decreasing", "ana", "random"):
+            for budget, gap in ((1, 0.0), (300, 0.0), (5000, 0.02), (None, 0.0)):
+                res = plan(
+                    planner, o, d, budget_expansions=budget, controller=controller, seed=1,
+                    gap_target=gap,
+                )  # fmt: skip
+                assert res.route is not None and res.instant_cost_s is not None
+                assert res.lower_bound_s <= opt * (1 + REL) <= res.cost_s * (1 + 2 * REL)
+                _check_route(g, res)
+                for imp in res.improvements:
+                    assert imp.lower_bound_s <= opt * (1 + REL) <= imp.cost_s * (1 + 2 * REL)
+                if budget is None:
+                    assert res.status == "optimal" and res.cost_s == pytest.approx(opt, rel=REL)
+                if gap:
+                    assert res.gap <= gap + 1e-12 or res.stopped_by == "budget"
