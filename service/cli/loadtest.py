@@ -20,10 +20,12 @@ from dueroute.service.cli.common import (
     add_json_flag,
     add_list_option,
     add_out_option,
+    add_turn_options,
     emit,
     load_graph_arg,
     load_traffic_arg,
     progress,
+    turn_profile_arg,
 )
 
 
@@ -70,8 +72,11 @@ def register(sub: Any) -> None:
     p.add_argument(
         "--reference",
         action="store_true",
-        help="compute exact costs locally (scipy) for true quality; needs --graph",
+        help="compute exact costs locally (scipy) for true quality; needs --graph (under turn "
+        "rules the legal optimum, for the turn profile given by --turn-costs and --uturns, which "
+        "must be the service's)",
     )
+    add_turn_options(p)
     p.add_argument(
         "--traffic",
         default=None,
@@ -175,7 +180,11 @@ def run(args: argparse.Namespace) -> int:
                 ) from None
             if not token:
                 raise InvalidRequest(f"--admin-token-file {args.admin_token_file} is empty")
-    reference = lt.Reference(graph, queries, costs=costs) if args.reference else None
+    reference = (
+        lt.Reference(graph, queries, costs=costs, turn_profile=turn_profile_arg(args))
+        if args.reference
+        else None
+    )
 
     result = lt.LoadTestResult(config=config, queries=list(queries), queries_source=source)
     bar = progress(total=config.n_cells, unit="cell", desc="loadtest")

@@ -219,6 +219,36 @@ def uniform_reachable_pairs(graph: Any, n: int, seed: int = 0) -> list[tuple[int
 # Reference: exact costs and graph agreement
 
 
+def _legal_drives_csr(sg: Any, road_cost: np.ndarray) -> Any:
+    """The search graph of legal drives as a scipy CSR matrix, plus one start node per road
+    node (``n_states + v``) with an arc to the state after each out-edge of ``v`` at that
+    edge's cost (a start has no arrival, so no turn; see ``planner.endpoints.resolve``)."""
+    from scipy.sparse import csr_matrix
+
+    s = int(sg.n_states)
+    g = sg.graph
+    arc_cost = np.asarray(sg.arc_costs(road_cost), dtype=np.float64)
+    arc_tail = np.repeat(np.arange(s), np.diff(np.asarray(sg.indptr)))
+    entry = np.asarray(sg.entry_state, dtype=np.int64)
+    usable = (entry >= 0) & np.isfinite(road_cost)
+    start_tail = s + np.asarray(g.tail, dtype=np.int64)[usable]
+    rows = np.concatenate([arc_tail, start_tail])
+    cols = np.concatenate([np.asarray(sg.head, dtype=np.int64), entry[usable]])
+    data = np.concatenate([arc_cost, np.asarray(road_cost, dtype=np.float64)[usable]])
+    keep = np.isfinite(data)
+    size = s + int(g.n_nodes)
+    # parallel arcs keep the cheapest (a COO matrix would sum them); rows sorted, so the CSR
+    # arrays are built directly, with zero-cost arcs as explicit entries (edges to csgraph)
+    order = np.lexsort((data[keep], cols[keep], rows[keep]))
+    r, c, d = rows[keep][order], cols[keep][order], data[keep][order]
+    first = np.ones(r.shape[0], dtype=bool)
+    first[1:] = (r[1:] != r[:-1]) | (c[1:] != c[:-1])
+    r, c, d = r[first], c[first], d[first]
+    indptr = np.zeros(size + 1, dtype=np.int64)
+    np.add.at(indptr, r + 1, 1)
+    return csr_matrix((d, c, np.cumsum(indptr)), shape=(size, size))
+
+
 class Reference:
     """Exact optimal costs of the query pairs on the local graph, and per-plan checks.
 
@@ -240,16 +270,31 @@ class Reference:
         pairs: Sequence[tuple[int, int]],
         costs: Any = None,
         expected_version: int | None = None,
+        turn_profile: Any = None,
     ) -> None:
         from scipy.sparse.csgraph import dijkstra
+
+        from dueroute.planner.endpoints import search_graph_for
+        from dueroute.planner.turns import TurnProfile
 
         self.graph = graph
         self.n_nodes = int(graph.n_nodes)
         self.costs = costs
         self.expected_version = expected_version
+        road_cost = np.asarray(graph.travel_time_s if costs is None else costs.travel_time_s)
         # cheapest of parallel edges, on the live costs when given
         self.csr = graph.csr(None if costs is None else costs.travel_time_s)
         self.osm_id = np.asarray(graph.osm_id)
+        self.turn_profile = TurnProfile() if turn_profile is None else turn_profile
+        sg, _ = search_graph_for(graph, self.turn_profile)
+        #: a route's cost is the sum of its road edges' costs (no turn costs to add)
+        self.checks_path_cost = sg.identity or float(np.max(sg.turn_cost_s, initial=0.0)) == 0.0
+        # Under turn rules the optimum is the legal one: a shortest path in the search graph of
+        # legal drives, from a start node per road node (an arc to the state after each of its
+        # out-edges, at that edge's cost) to any state of the destination.
+        search = self.csr if sg.identity else _legal_drives_csr(sg, road_cost)
+        states = None if sg.identity else np.asarray(sg.node_road)
+        start = 0 if sg.identity else int(sg.n_states)
         self.optimal_s: dict[tuple[int, int], float] = {}
         origins = sorted({o for o, _ in pairs})
         wanted: dict[int, list[int]] = {}
@@ -258,10 +303,18 @@ class Reference:
         chunk = 32  # rows of the dense distance matrix held at once: chunk x n float64
         for i in range(0, len(origins), chunk):
             block = origins[i : i + chunk]
-            dist = dijkstra(self.csr, directed=True, indices=block)
+            dist = dijkstra(search, directed=True, indices=[start + o for o in block])
             for row, o in enumerate(block):
                 for d in wanted[o]:
-                    self.optimal_s[(o, d)] = float(dist[row, d])
+                    if states is None:
+                        best = float(dist[row, d])
+                    elif o == d:
+                        best = 0.0
+                    else:
+                        best = float(
+                            np.min(dist[row, : sg.n_states][states == d], initial=math.inf)
+                        )
+                    self.optimal_s[(o, d)] = best
 
     def path_cost_s(self, node_indices: Sequence[int]) -> float | None:
         """Cost of the node path on the local graph, or None if a step is not an edge."""
@@ -316,7 +369,7 @@ class Reference:
         elif cost is not None:
             out["cost_below_optimal"] = True  # the server found a route the local graph lacks
         route = plan.get("route")
-        if route is not None and cost is not None:
+        if route is not None and cost is not None and self.checks_path_cost:
             props = route.get("properties", {}) if isinstance(route, dict) else {}
             nodes = props.get("node_indices")
             path_cost = self.path_cost_s(nodes) if nodes else None
@@ -861,6 +914,14 @@ async def run_loadtest(
                 raise TargetError(
                     f"the service searches a different graph ({gc['method']}: server "
                     f"{gc['server']}, local {gc['local']}); pass the graph the service uses"
+                )
+        served = _find_key(ready, ("turn_profile",))
+        if reference is not None and served is not None:
+            local = reference.turn_profile.describe()
+            if served != local:
+                raise TargetError(
+                    f"the service searches with another turn profile ({served}) than the local "
+                    f"reference ({local}); pass the service's --turn-costs and --uturns"
                 )
         try:
             resp = await client.get("/v1/policy", timeout=5.0)

@@ -690,3 +690,28 @@ def test_interrupted_cli_writes_what_it_measured(
     (cell,) = summary["cells"]
     assert cell["complete"] is False and cell["requests"] >= 10
     assert (out / "summary.md").read_text().count("Interrupted") == 1
+
+
+@pytest.mark.parametrize("costed", [False, True])
+@pytest.mark.parametrize("seed", range(3))
+def test_reference_optimum_under_turn_rules_is_the_legal_one(seed: int, costed: bool) -> None:
+    """On a graph with turn restrictions (and turn costs), the load tester's optimum is the
+    legal one: the networkx line-graph reference of tests/planner/test_turns.py, never below
+    scipy's unrestricted ``csgraph.dijkstra``; the route-cost check is off when turns cost."""
+    from dueroute.planner.turns import TurnCosts, TurnProfile
+    from tests.planner.test_turns import Reference, random_road_graph
+
+    g = random_road_graph(seed, max_side=4, n_restrictions=6)
+    costs = TurnCosts(left_s=7.0, right_s=3.0, uturn_s=20.0) if costed else None
+    pairs = [(s, t) for s in range(g.n_nodes) for t in range(g.n_nodes)]
+    ref = lt.Reference(g, pairs, turn_profile=TurnProfile(costs=costs))
+    assert ref.checks_path_cost == (not costed)
+    legal = Reference(g, turn_costs=costs)
+    lg = legal.line_graph()
+    free = dijkstra(g.csr(), directed=True)
+    for s in range(g.n_nodes):
+        best = legal.shortest_from(lg, s)
+        for t in range(g.n_nodes):
+            want = 0.0 if s == t else float(best[t])
+            assert ref.optimal_s[(s, t)] == pytest.approx(want, rel=1e-12)
+            assert ref.optimal_s[(s, t)] >= free[s, t] * (1 - 1e-12)
