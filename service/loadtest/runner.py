@@ -219,36 +219,6 @@ def uniform_reachable_pairs(graph: Any, n: int, seed: int = 0) -> list[tuple[int
 # Reference: exact costs and graph agreement
 
 
-def _legal_drives_csr(sg: Any, road_cost: np.ndarray) -> Any:
-    """The search graph of legal drives as a scipy CSR matrix, plus one start node per road
-    node (``n_states + v``) with an arc to the state after each out-edge of ``v`` at that
-    edge's cost (a start has no arrival, so no turn; see ``planner.endpoints.resolve``)."""
-    from scipy.sparse import csr_matrix
-
-    s = int(sg.n_states)
-    g = sg.graph
-    arc_cost = np.asarray(sg.arc_costs(road_cost), dtype=np.float64)
-    arc_tail = np.repeat(np.arange(s), np.diff(np.asarray(sg.indptr)))
-    entry = np.asarray(sg.entry_state, dtype=np.int64)
-    usable = (entry >= 0) & np.isfinite(road_cost)
-    start_tail = s + np.asarray(g.tail, dtype=np.int64)[usable]
-    rows = np.concatenate([arc_tail, start_tail])
-    cols = np.concatenate([np.asarray(sg.head, dtype=np.int64), entry[usable]])
-    data = np.concatenate([arc_cost, np.asarray(road_cost, dtype=np.float64)[usable]])
-    keep = np.isfinite(data)
-    size = s + int(g.n_nodes)
-    # parallel arcs keep the cheapest (a COO matrix would sum them); rows sorted, so the CSR
-    # arrays are built directly, with zero-cost arcs as explicit entries (edges to csgraph)
-    order = np.lexsort((data[keep], cols[keep], rows[keep]))
-    r, c, d = rows[keep][order], cols[keep][order], data[keep][order]
-    first = np.ones(r.shape[0], dtype=bool)
-    first[1:] = (r[1:] != r[:-1]) | (c[1:] != c[:-1])
-    r, c, d = r[first], c[first], d[first]
-    indptr = np.zeros(size + 1, dtype=np.int64)
-    np.add.at(indptr, r + 1, 1)
-    return csr_matrix((d, c, np.cumsum(indptr)), shape=(size, size))
-
-
 class Reference:
     """Exact optimal costs of the query pairs on the local graph, and per-plan checks.
 
@@ -272,9 +242,7 @@ class Reference:
         expected_version: int | None = None,
         turn_profile: Any = None,
     ) -> None:
-        from scipy.sparse.csgraph import dijkstra
-
-        from dueroute.planner.endpoints import search_graph_for
+        from dueroute.planner.endpoints import legal_distances, search_graph_for
         from dueroute.planner.turns import TurnProfile
 
         self.graph = graph
@@ -289,12 +257,7 @@ class Reference:
         sg, _ = search_graph_for(graph, self.turn_profile)
         #: a route's cost is the sum of its road edges' costs (no turn costs to add)
         self.checks_path_cost = sg.identity or float(np.max(sg.turn_cost_s, initial=0.0)) == 0.0
-        # Under turn rules the optimum is the legal one: a shortest path in the search graph of
-        # legal drives, from a start node per road node (an arc to the state after each of its
-        # out-edges, at that edge's cost) to any state of the destination.
-        search = self.csr if sg.identity else _legal_drives_csr(sg, road_cost)
-        states = None if sg.identity else np.asarray(sg.node_road)
-        start = 0 if sg.identity else int(sg.n_states)
+        # under turn rules the optimum is the legal one (planner.endpoints.legal_distances)
         self.optimal_s: dict[tuple[int, int], float] = {}
         origins = sorted({o for o, _ in pairs})
         wanted: dict[int, list[int]] = {}
@@ -303,18 +266,10 @@ class Reference:
         chunk = 32  # rows of the dense distance matrix held at once: chunk x n float64
         for i in range(0, len(origins), chunk):
             block = origins[i : i + chunk]
-            dist = dijkstra(search, directed=True, indices=[start + o for o in block])
+            dist = legal_distances(graph, block, self.turn_profile, road_cost)
             for row, o in enumerate(block):
                 for d in wanted[o]:
-                    if states is None:
-                        best = float(dist[row, d])
-                    elif o == d:
-                        best = 0.0
-                    else:
-                        best = float(
-                            np.min(dist[row, : sg.n_states][states == d], initial=math.inf)
-                        )
-                    self.optimal_s[(o, d)] = best
+                    self.optimal_s[(o, d)] = float(dist[row, d])
 
     def path_cost_s(self, node_indices: Sequence[int]) -> float | None:
         """Cost of the node path on the local graph, or None if a step is not an edge."""

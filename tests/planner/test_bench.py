@@ -228,6 +228,25 @@ def test_bench_deadline_json_smoke(tmp_path: Path, capsys: pytest.CaptureFixture
     assert {t["status"] for t in report["targets"]} <= {"PASS", "MISS", "n/a"}
 
 
+def test_bench_deadline_under_turn_rules(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
+    """On a graph with turn restrictions the optima are the legal ones (the networkx
+    line-graph reference agrees with ``planner.endpoints.legal_distances``, tested in
+    tests/service/test_loadtest.py): every answer reaches quality 1 once proven, and pairs
+    without a legal drive are left out and counted, not reported as failures."""
+    from dueroute.planner.graph import save_graph
+    from tests.planner.test_turns import random_road_graph
+
+    path = save_graph(random_road_graph(5, max_side=5, n_restrictions=10), tmp_path / "t.npz")
+    argv = ["bench", "deadline", str(path), "--count", "12", "--deadlines-ms", "50"]
+    assert main([*argv, "--controllers", "fixed:1", "--landmarks", "2", "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    assert report["pairs"] + report["pairs_left_out_unreachable"] == 12 and report["pairs"] > 0
+    (cell,) = report["cells"]
+    assert cell["no_route"] == 0.0 and cell["quality"] == pytest.approx(1.0)
+
+
 def test_bench_deadline_bad_arguments(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     path = grid_graph_file(tmp_path / "grid.npz")
     assert main(["bench", "deadline", str(path), "--deadlines-ms", "0"]) == 2
