@@ -161,15 +161,13 @@ def test_caller_limits(edge_server):
         url, json=_plan(0, 5, deadline_ms=2_000, controller="fixed:5"), headers=fleet, timeout=10
     )
     assert r.status_code == 200 and r.json()["route"] is not None
+
     # at most 2 plans at once per caller: of many sent at once, the third and later get 429
     # with Retry-After while the first two search (corner to corner: hundreds of ms)
     async def burst() -> list[httpx.Response]:
         async with httpx.AsyncClient(headers=fleet, timeout=WAIT_S) as client:
             return await asyncio.gather(
-                *(
-                    client.post(url, json=_plan(0, 999_999 - i, deadline_ms=3_000))
-                    for i in range(8)
-                )
+                *(client.post(url, json=_plan(0, 999_999 - i, deadline_ms=3_000)) for i in range(8))
             )
 
     answers = asyncio.run(burst())
