@@ -184,7 +184,8 @@ def _bridge_edge(graph: RoadGraph, lat0: float, lon0: float, km_lon: float, km_l
         np.asarray(graph.road_class)
     ]
     d = great_circle_m(blat, blon, (lat[tail] + lat[head]) / 2, (lon[tail] + lon[head]) / 2)
-    for e in np.argsort(np.where(local, d, np.inf))[:2000]:
+    # stable: the two directions of one road tie, and the first by edge index is taken
+    for e in np.argsort(np.where(local, d, np.inf), kind="stable")[:2000]:
         if d[e] > 3000:
             break
         t, h = int(tail[e]), int(head[e])

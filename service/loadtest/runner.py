@@ -10,7 +10,7 @@ Per cell it reports, all measured by the client:
 * throughput (answers per second of cell wall time),
 * latency p50 / p95 / p99 / max of answered requests,
 * late answers (latency beyond ``deadline_ms + tolerance_ms``),
-* shed rate (503 with ``Retry-After``) and errors (other non-2xx, transport errors, bad bodies),
+* shed rate (503 or 429 with ``Retry-After``) and errors (other non-2xx, transport errors, bad bodies),
 * mean / median / p95 gap and the share of answers proven optimal,
 * with a reference: true quality ``optimal cost / returned cost`` from exact costs computed
   locally with :func:`scipy.sparse.csgraph.dijkstra` on the same graph, plus checks that the
@@ -427,7 +427,7 @@ class RequestRecord:
 
     @property
     def shed(self) -> bool:
-        return self.http_status == 503
+        return self.http_status in (429, 503)  # refused with Retry-After
 
 
 @dataclass
@@ -597,7 +597,7 @@ async def _one_request(
         rec.error = f"transport: {type(exc).__name__}"
         return rec, None, None
     rec.http_status = resp.status_code
-    if resp.status_code == 503:
+    if resp.status_code in (429, 503):  # refused with Retry-After (overload, caller limit)
         return rec, _parse_retry_after_s(resp.headers.get("retry-after")), None
     if resp.status_code != 200:
         rec.error = f"HTTP {resp.status_code}: {_detail(resp)}"

@@ -81,6 +81,7 @@ class Ticket:
     _slot_since: float = 0.0
     _base_nice: int | None = None
     _nudge: Callable[[], None] | None = field(default=None, repr=False)
+    _wake: threading.Event = field(default_factory=threading.Event, repr=False)
     _scheduler: Admission | None = field(default=None, repr=False)
 
     def bind(self, nudge: Callable[[], None]) -> None:
@@ -95,7 +96,7 @@ class Ticket:
         self.cancel.set()
         self.poke()
         if self._scheduler is not None:
-            self._scheduler.wake()
+            self._scheduler.wake(self)
 
     def searching(self, running: bool) -> None:
         """Around a long kernel run (called by the search, in its thread)."""
@@ -146,7 +147,8 @@ class Admission:
         Admitted plans not yet finished (running, parked, waiting), each on its own thread;
         default 16 per slot. Above it requests are shed.
     instant_lane : int
-        Plans that may be in the instant lane at once (default: 4 per slot).
+        Plans that may be in the instant lane at once (default: ``workers``): each runs
+        Python beside the searches, so more would slow every thread down (the GIL).
     """
 
     def __init__(
@@ -165,8 +167,8 @@ class Admission:
         self.clock = clock
         self.worker_nice = worker_nice
         self.max_inflight = max_inflight if max_inflight is not None else 16 * workers
-        self.instant_lane = instant_lane if instant_lane is not None else 4 * workers
-        self._cv = threading.Condition()
+        self.instant_lane = instant_lane if instant_lane is not None else workers
+        self._lock = threading.Lock()
         # Invariant: every admitted, unfinished ticket is in _inflight; those holding a slot
         # are in _running (at most ``workers``), those wanting one in _waiting.
         self._inflight: dict[int, Ticket] = {}
@@ -187,7 +189,7 @@ class Admission:
     # threads
 
     def _pool(self) -> ThreadPoolExecutor:
-        with self._cv:
+        with self._lock:
             if self._executor is None:
                 self._executor = ThreadPoolExecutor(
                     max_workers=self.max_inflight + self.workers,
@@ -219,7 +221,7 @@ class Admission:
 
     def predict_start_s(self, now_s: float, search_deadline_s: float) -> float:
         """When a plan with this search deadline, arriving now, is expected to get a slot."""
-        with self._cv:
+        with self._lock:
             return self._predict_locked(now_s, search_deadline_s)
 
     def _remaining_s(self, t: Ticket, now_s: float, start_s: float) -> float:
@@ -265,7 +267,7 @@ class Admission:
         """
         need_s = self.min_search_s if min_search_s is None else min_search_s
         now = self.clock()
-        with self._cv:
+        with self._lock:
             if len(self._inflight) >= self.max_inflight:
                 self.shed_total += 1
                 raise Shed(
@@ -320,45 +322,60 @@ class Admission:
             raise
 
     def _acquire(self, t: Ticket) -> None:
-        """Wait (EDF) for a slot; leave for the instant lane near the deadline or on cancel."""
-        with self._cv:
+        """Wait (EDF) for a slot; leave for the instant lane near the deadline or on cancel.
+
+        Slots are handed over, not contended for: whoever frees one gives it to the
+        earliest-deadline waiter and wakes that thread alone (:meth:`_dispatch_locked`), so a
+        freed slot wakes one thread, not every waiting one.
+        """
+        with self._lock:
             self._waiting[t.ticket_id] = t
+            self._dispatch_locked()
+            if t.holds_slot:
+                return
+            t.waited = True
             self._ask_preempt_locked()
-            while True:
-                if self._grant_locked(t):
+        self._wait_for_slot(t, leave_before_s=INSTANT_RESERVE_S)
+
+    def _wait_for_slot(self, t: Ticket, leave_before_s: float) -> None:
+        """Block until ``t`` is handed a slot, cancelled, or ``leave_before_s`` before its
+        deadline (then it goes on without a slot)."""
+        while True:
+            left = t.search_deadline_s - leave_before_s - self.clock()
+            if left > 0 and not t.cancel.is_set():
+                t._wake.wait(timeout=left)
+            with self._lock:
+                t._wake.clear()
+                if t.holds_slot:
                     return
-                t.waited = True
-                left = t.search_deadline_s - INSTANT_RESERVE_S - self.clock()
+                left = t.search_deadline_s - leave_before_s - self.clock()
                 if t.cancel.is_set() or left <= 0:
                     self._waiting.pop(t.ticket_id, None)
-                    t.instant_only = not t.cancel.is_set()  # out of time: the instant lane
-                    self._cv.notify_all()
+                    if leave_before_s > 0:
+                        t.instant_only = not t.cancel.is_set()  # out of time: instant lane
                     return
-                self._cv.wait(timeout=left)
 
-    def _grant_locked(self, t: Ticket) -> bool:
-        if len(self._running) >= self.workers:
-            return False
-        first = min(self._waiting.values(), key=lambda w: (w.search_deadline_s, w.ticket_id))
-        if first is not t:
-            return False
-        del self._waiting[t.ticket_id]
-        self._running[t.ticket_id] = t
-        t.holds_slot = True
-        t._slot_since = self.clock()
-        return True
+    def _dispatch_locked(self) -> None:
+        """Hand free slots to the earliest-deadline waiters and wake each of them."""
+        while self._waiting and len(self._running) < self.workers:
+            first = min(self._waiting.values(), key=lambda w: (w.search_deadline_s, w.ticket_id))
+            del self._waiting[first.ticket_id]
+            self._running[first.ticket_id] = first
+            first.holds_slot = True
+            first._slot_since = self.clock()
+            first._wake.set()
 
     def _drop_slot_locked(self, t: Ticket) -> None:
         if t.holds_slot:
             t.holds_slot = False
             t.slot_s += self.clock() - t._slot_since
             self._running.pop(t.ticket_id, None)
-            self._cv.notify_all()
+            self._dispatch_locked()
 
     def end_search(self, t: Ticket) -> None:
         """The plan's search is over (called in its thread): free the slot now, before the
-        answer is built, at the thread's normal priority."""
-        with self._cv:
+        answer is built."""
+        with self._lock:
             self._drop_slot_locked(t)
             self._ask_preempt_locked()
 
@@ -377,25 +394,22 @@ class Admission:
             latest.poke()
 
     def _yield(self, t: Ticket) -> None:
-        """Called by the preempted search itself: give the slot up, wait to get one back."""
-        with self._cv:
+        """Called by the preempted search itself: give the slot up, wait to get one back
+        (until its deadline at the latest: then it ends without one)."""
+        with self._lock:
             t._preempt = False
             if not t.holds_slot:
                 return
-            self._drop_slot_locked(t)
             t.preempted += 1
             self.preempted_total += 1
-            self._waiting[t.ticket_id] = t
-            while not self._grant_locked(t):
-                if t.cancel.is_set() or self.clock() >= t.search_deadline_s:
-                    # out of time: finish without a slot (the search ends at its deadline)
-                    self._waiting.pop(t.ticket_id, None)
-                    self._cv.notify_all()
-                    return
-                self._cv.wait(timeout=max(0.0, t.search_deadline_s - self.clock()))
+            self._waiting[t.ticket_id] = t  # waits first: the slot goes to the urgent one
+            self._drop_slot_locked(t)
+            if t.holds_slot:  # nobody more urgent after all: keep searching
+                return
+        self._wait_for_slot(t, leave_before_s=0.0)
 
     def _finish(self, t: Ticket) -> None:
-        with self._cv:
+        with self._lock:
             self._waiting.pop(t.ticket_id, None)
             self._drop_slot_locked(t)
             self._inflight.pop(t.ticket_id, None)
@@ -403,20 +417,20 @@ class Admission:
             if not t.instant_only and t.budget_s > 0 and not t.cancel.is_set():
                 self.used_share.record(t.finished_s, min(1.0, t.slot_s / t.budget_s))
             self._ask_preempt_locked()
-            self._cv.notify_all()
 
     def release(self, ticket: Ticket) -> None:
         """Drop a ticket that was admitted but never submitted (the request failed early)."""
-        with self._cv:
+        with self._lock:
             self._inflight.pop(ticket.ticket_id, None)
             self._waiting.pop(ticket.ticket_id, None)
             self._drop_slot_locked(ticket)
-            self._cv.notify_all()
 
-    def wake(self) -> None:
-        """Wake waiting tickets (one was cancelled: it leaves the queue at once)."""
-        with self._cv:
-            self._cv.notify_all()
+    def wake(self, ticket: Ticket | None = None) -> None:
+        """Wake a waiting ticket (it was cancelled: it leaves the queue at once), or all."""
+        with self._lock:
+            targets = [ticket] if ticket is not None else list(self._waiting.values())
+        for t in targets:
+            t._wake.set()
 
     def prestart(self, fn: Callable[[], Any]) -> list[Any]:
         """Run ``fn`` once on ``workers`` threads at the same time (start-up only).
@@ -444,7 +458,7 @@ class Admission:
 
     def snapshot(self) -> dict[str, Any]:
         now = self.clock()
-        with self._cv:
+        with self._lock:
             start = self._predict_locked(now, math.inf)
             return {
                 "workers": self.workers,
@@ -461,12 +475,12 @@ class Admission:
             }
 
     def shutdown(self) -> None:
-        with self._cv:
+        with self._lock:
             tickets = list(self._inflight.values())
         for t in tickets:
             t.request_cancel()
         self.wake()
-        with self._cv:
+        with self._lock:
             pool, self._executor = self._executor, None
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=False)

@@ -66,7 +66,12 @@ def test_a_burst_of_2000_loses_no_plan_inside_its_ttl(tiny_graph_path: Path, tmp
     is readable afterwards, finished, with the route its 202 promised; the store holds exactly
     what it accepted; a store smaller than the burst refuses the rest with 503 + Retry-After
     instead of dropping what it holds."""
-    env = {"DUEROUTE_BACKGROUND_MAX": "700", "DUEROUTE_BACKGROUND_TTL_S": "300"}
+    env = {
+        "DUEROUTE_BACKGROUND_MAX": "700",
+        "DUEROUTE_BACKGROUND_TTL_S": "300",
+        # one caller (this test) with 64 requests in flight and hundreds of stored plans
+        "DUEROUTE_CALLER_MAX_PLANS": "100000",
+    }
     pairs = [(0, 3), (1, 6), (2, 9), (4, 0), (6, 1)]
     bodies = [
         body(*pairs[i % len(pairs)], wait=bool(i % 2)) for i in range(2000)
