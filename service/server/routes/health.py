@@ -40,6 +40,7 @@ async def readyz(state: StateDep) -> JSONResponse:
         "admission": state.admission.snapshot(),
         "plan_store": state.plans.stats(),
         "loop_lag_ms": round(state.loop_lag.estimate_ms(), 3),
+        "shared_state": state.shared.describe() if state.shared is not None else None,
         **state.warmup,
     }
     damaged = state.policies.damaged
