@@ -55,7 +55,10 @@ from urllib.parse import urlsplit
 
 import redis
 import redis.asyncio as aioredis
+from redis.asyncio.retry import Retry as AsyncRetry
+from redis.backoff import NoBackoff
 from redis.exceptions import RedisError, ResponseError
+from redis.retry import Retry
 
 from dueroute.service.server.jobs import STREAM_BUFFER, PlanJob, dumps
 from dueroute.service.server.plan_store import (
@@ -121,8 +124,13 @@ class RedisLink:
         self.prefix = prefix
         self.replica = f"{socket.gethostname()}:{os.getpid()}:{secrets.token_hex(3)}"
         #: typed Any: the client's responses depend on its options (bytes here)
+        # one retry on a broken connection: a pooled connection to a restarted Redis fails
+        # once, then a new one is made
         self.client: Any = redis.Redis.from_url(
-            url, socket_timeout=0.25, socket_connect_timeout=0.25
+            url,
+            socket_timeout=0.25,
+            socket_connect_timeout=0.25,
+            retry=Retry(NoBackoff(), 1),
         )
         self.up = False
         self.error: str | None = "not connected yet"
@@ -191,7 +199,10 @@ class RedisLink:
         client = self._aio.get(loop)
         if client is None:
             client = aioredis.Redis.from_url(
-                self.url, socket_timeout=3.0, socket_connect_timeout=0.5
+                self.url,
+                socket_timeout=3.0,
+                socket_connect_timeout=0.5,
+                retry=AsyncRetry(NoBackoff(), 1),
             )
             self._aio = {lp: c for lp, c in self._aio.items() if not lp.is_closed()}
             self._aio[loop] = client
@@ -984,9 +995,10 @@ class RedisUsage:
     def _rkey(self, key: tuple[str, float, int]) -> str:
         return self.link.key("usage", key[0], f"{key[1]:g}", str(key[2]))
 
-    def flush(self) -> None:
-        """Publisher thread: add what is pending, read back the totals in use."""
-        now = self.clock()
+    def flush(self, now: float | None = None) -> None:
+        """Publisher thread: add what is pending, read back the totals in use (windows before
+        the previous one at ``now`` are forgotten)."""
+        now = self.clock() if now is None else now
         with self._lock:
             self._shared = {
                 k: v for k, v in self._shared.items() if k[2] >= window_index(k[1], now) - 1
