@@ -117,15 +117,19 @@ def pair(
     grid_graph_path: Path, redis_server: RedisProcess, tmp_path_factory: pytest.TempPathFactory
 ) -> Iterator[tuple[LiveServer, LiveServer]]:
     base = tmp_path_factory.mktemp("replicas")
+    # one after the other: two processes filling a cold numba cache at once can trip on
+    # each other's half-written index
     a = replica(grid_graph_path, base / "a", redis_server.url)
-    b = replica(grid_graph_path, base / "b", redis_server.url)
     try:
         a.wait_ready()
-        b.wait_ready()
-        yield a, b
+        b = replica(grid_graph_path, base / "b", redis_server.url)
+        try:
+            b.wait_ready()
+            yield a, b
+        finally:
+            b.stop()
     finally:
         a.stop()
-        b.stop()
 
 
 def plan_body(o: int, d: int, **kw: Any) -> dict[str, Any]:
