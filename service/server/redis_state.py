@@ -133,6 +133,7 @@ class RedisLink:
             retry=Retry(NoBackoff(), 1),
         )
         self.up = False
+        self.up_since = time.monotonic()  # when ``up`` last turned true
         self.error: str | None = "not connected yet"
         self._handlers: dict[str, list[Callable[[str], None]]] = {t: [] for t in TOPICS}
         self._on_up: list[Callable[[], None]] = []
@@ -179,6 +180,7 @@ class RedisLink:
         was_down = not self.up
         self.up, self.error = True, None
         if was_down:
+            self.up_since = time.monotonic()
             log.info("the shared store is reachable", extra={"redis": self.where})
             for cb in self._on_up:
                 self._call(cb)
@@ -585,6 +587,10 @@ class RedisPlanStore:
             return None
         if lease is not None:
             return bytes(live), False
+        if time.monotonic() - self.link.up_since < self.lease_s:
+            # Redis was unreachable a moment ago: its replica may not have renewed its
+            # leases yet (it re-publishes as soon as it is back), so not dead yet
+            return bytes(live), False
         return await self._declare_dead(plan_id, bytes(live)), True
 
     async def _declare_dead(self, plan_id: str, live: bytes) -> bytes:
@@ -794,7 +800,12 @@ class RedisTrafficStore:
         self.link.client.transaction(write, self.head)
 
     def describe(self) -> dict[str, Any]:
-        return {"backend": "redis", "redis": self.link.where, "stream": self.stream}
+        return {
+            "backend": "redis",
+            "redis": self.link.where,
+            "stream": self.stream,
+            "reachable": self.link.up,
+        }
 
 
 # ------------------------------------------------------------------------------------------
