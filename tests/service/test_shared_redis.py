@@ -113,23 +113,28 @@ def replica(graph: Path, folder: Path, redis_url: str, *args: str) -> LiveServer
 
 
 @pytest.fixture(scope="module")
-def pair(
+def replicas(
     grid_graph_path: Path, redis_server: RedisProcess, tmp_path_factory: pytest.TempPathFactory
-) -> Iterator[tuple[LiveServer, LiveServer]]:
+) -> Iterator[tuple[LiveServer, LiveServer, LiveServer]]:
+    """Replicas a and b, and c (which one test kills). a starts alone first: processes that
+    fill a cold numba cache at once can trip on each other's half-written index."""
     base = tmp_path_factory.mktemp("replicas")
-    # one after the other: two processes filling a cold numba cache at once can trip on
-    # each other's half-written index
-    a = replica(grid_graph_path, base / "a", redis_server.url)
+    started: list[LiveServer] = []
     try:
-        a.wait_ready()
-        b = replica(grid_graph_path, base / "b", redis_server.url)
-        try:
-            b.wait_ready()
-            yield a, b
-        finally:
-            b.stop()
+        started.append(replica(grid_graph_path, base / "a", redis_server.url))
+        started[0].wait_ready()
+        started += [replica(grid_graph_path, base / n, redis_server.url) for n in ("b", "c")]
+        for server in started[1:]:
+            server.wait_ready()
+        yield started[0], started[1], started[2]
     finally:
-        a.stop()
+        for server in started:
+            server.stop()
+
+
+@pytest.fixture()
+def pair(replicas: tuple[LiveServer, LiveServer, LiveServer]) -> tuple[LiveServer, LiveServer]:
+    return replicas[0], replicas[1]
 
 
 def plan_body(o: int, d: int, **kw: Any) -> dict[str, Any]:
@@ -281,23 +286,19 @@ def test_usage_counters_add_up_across_replicas(redis_server: RedisProcess) -> No
 
 
 def test_a_replica_killed_mid_plan_leaves_its_plans_ending_in_error(
-    pair: tuple[LiveServer, LiveServer],
-    grid_graph_path: Path,
-    redis_server: RedisProcess,
-    tmp_path: Path,
+    replicas: tuple[LiveServer, LiveServer, LiveServer],
 ) -> None:
-    a, _ = pair
-    with replica(grid_graph_path, tmp_path / "c", redis_server.url) as c:
-        urls = []
-        for _ in range(6):  # one search thread: the later ones queue behind the first
-            r = httpx.post(
-                c.url + "/v1/plans",
-                json=plan_body(0, 89_999, deadline_ms=20_000, controller="fixed:1", wait=False),
-            )
-            assert r.status_code == 202, r.text
-            urls.append(r.headers["location"])
-        c.proc.send_signal(signal.SIGKILL)
-        c.proc.wait(timeout=10)
+    a, _, c = replicas
+    urls = []
+    for _ in range(6):  # one search thread: the later ones queue behind the first
+        r = httpx.post(
+            c.url + "/v1/plans",
+            json=plan_body(0, 89_999, deadline_ms=20_000, controller="fixed:1", wait=False),
+        )
+        assert r.status_code == 202, r.text
+        urls.append(r.headers["location"])
+    c.proc.send_signal(signal.SIGKILL)
+    c.proc.wait(timeout=10)
     finals = {}
 
     def all_ended() -> bool:
