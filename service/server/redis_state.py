@@ -483,9 +483,15 @@ class RedisPlanStore:
             for job in batch.values():
                 if job.finished:
                     finals.append(job)
-                elif not self._write_running(pipe, job):
-                    with self._cond:
-                        self._later[job.plan_id] = job
+                    continue
+                try:
+                    if not self._write_running(pipe, job):
+                        with self._cond:
+                            self._later[job.plan_id] = job
+                except RedisError:
+                    raise
+                except Exception:  # this plan's snapshot: its final plan still follows
+                    log.exception("mirroring a running plan failed", extra={"plan_id": job.plan_id})
             if renew:
                 for job in running:
                     if not job.finished:
