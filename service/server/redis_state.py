@@ -60,6 +60,7 @@ from redis.backoff import NoBackoff
 from redis.exceptions import RedisError, ResponseError
 from redis.retry import Retry
 
+from dueroute.service.server.admission import Ticket
 from dueroute.service.server.jobs import STREAM_BUFFER, PlanJob, dumps
 from dueroute.service.server.plan_store import (
     KEEPALIVE_S,
@@ -277,23 +278,22 @@ class RedisLink:
 # Plans
 
 
-class _RemoteCancel(threading.Event):
-    """``job.cancel`` of a plan another replica runs: setting it announces the cancel."""
+class _RemoteTicket(Ticket):
+    """The ticket of a plan another replica runs: a cancel is announced to that replica."""
 
-    def __init__(self, plan: RemotePlan) -> None:
-        super().__init__()
-        self._plan = plan
+    plan: RemotePlan | None = None
 
-    def set(self) -> None:
-        if not self.is_set():
-            super().set()
-            plan = self._plan
+    def request_cancel(self) -> None:
+        if not self.cancel.is_set() and self.plan is not None:
+            self.cancel.set()
+            plan = self.plan
             plan._task = asyncio.get_running_loop().create_task(plan.store._cancel(plan))
 
 
 class RemotePlan(PlanJob):
     """A stored plan another replica holds, as read from Redis (what the routes need of a
-    :class:`PlanJob`: ``current_json``, ``finished``, ``cancel`` and ``future``).
+    :class:`PlanJob`: ``current_json``, ``finished``, ``ticket.request_cancel`` and
+    ``future``).
 
     ``future`` runs until the final plan is known here (it is resolved after a cancel), so a
     DELETE waits for the final state as it does for a plan of this replica.
@@ -320,12 +320,10 @@ class RemotePlan(PlanJob):
         self.future.set_running_or_notify_cancel()
         if finished:
             self.future.set_result(None)
-        self._cancel_flag = _RemoteCancel(self)
+        ticket = _RemoteTicket(ticket_id=-1, arrival_s=0.0, search_deadline_s=0.0)
+        ticket.plan = self
+        self.ticket = ticket
         self._task: asyncio.Task[None] | None = None
-
-    @property
-    def cancel(self) -> threading.Event:
-        return self._cancel_flag
 
     def current_json(self) -> bytes:
         return self.final_json if self.final_json is not None else self.snapshot
@@ -559,7 +557,7 @@ class RedisPlanStore:
         with self._cond:
             job = self._running.get(plan_id)
         if job is not None and not job.finished and job.ticket is not None:
-            job.ticket.cancel.set()
+            job.ticket.request_cancel()
 
     # -- lookups ---------------------------------------------------------------------------
     def lookup(self, plan_id: str) -> Lookup:

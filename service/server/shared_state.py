@@ -31,6 +31,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any, Protocol
 
+from dueroute.service.server.callers import Caller, CallerLimits
 from dueroute.service.server.plan_store import MemoryPlanStore, PlanStore, StoreFull
 from dueroute.service.server.policy_store import PolicyStore
 from dueroute.service.server.traffic_store import JournalStore, TrafficStore
@@ -98,6 +99,59 @@ class MemoryUsage:
         self._totals = {
             k: v for k, v in self._totals.items() if k[2] >= window_index(k[1], now) - 1
         }
+
+
+class SharedCallerLimits(CallerLimits):
+    """:class:`callers.CallerLimits` whose search-time budget holds across replicas.
+
+    Every plan's search time is added to the caller's :class:`UsageCounters` (windows of
+    ``window_s``); before admitting a plan, what the caller used on *other* replicas since the
+    last look (the shared total minus this replica's own additions) is taken from its token
+    bucket too. So the caller's refill rate and burst hold for the whole cluster, within the
+    counters' merge delay (about 0.1 s with Redis). The cap on plans at once stays per replica.
+    """
+
+    def __init__(self, usage: UsageCounters, *, window_s: float = 10.0, **limits: Any) -> None:
+        super().__init__(**limits)
+        self.usage = usage
+        self.window_s = window_s
+        self._own: dict[tuple[str, int], float] = {}  # (label, window): added here
+        self._charged: dict[tuple[str, int], float] = {}  # (label, window): others' taken
+
+    def release(self, caller: Caller, search_s: float) -> None:
+        super().release(caller, search_s)
+        if search_s > 0:
+            now = time.time()
+            key = (caller.label, window_index(self.window_s, now))
+            with self._lock:
+                self._own[key] = self._own.get(key, 0.0) + search_s
+            self.usage.add(caller.label, search_s, self.window_s, now=now)
+
+    def acquire(self, caller: Caller) -> None:
+        self._charge_others(caller.label)
+        super().acquire(caller)
+
+    def _charge_others(self, label: str) -> None:
+        wall = time.time()
+        current = window_index(self.window_s, wall)
+        # this window and the one before (additions merge with a delay); never a read on Redis
+        totals = {
+            w: self.usage.read(label, self.window_s, now=(w + 0.5) * self.window_s)
+            for w in (current - 1, current)
+        }
+        now = self.clock()
+        with self._lock:
+            taken = 0.0
+            for w, total in totals.items():
+                others = max(0.0, total - self._own.get((label, w), 0.0))
+                taken += max(0.0, others - self._charged.get((label, w), 0.0))
+                self._charged[(label, w)] = max(others, self._charged.get((label, w), 0.0))
+            if taken > 0.0:
+                self._bucket[label] = (self._tokens_locked(label, now) - taken, now)
+            if len(self._charged) > 4096:
+                for table in (self._own, self._charged):
+                    for k in [k for k in table if k[1] < current - 1]:
+                        del table[k]
 
 
 # ------------------------------------------------------------------------------------------

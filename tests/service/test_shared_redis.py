@@ -359,3 +359,28 @@ def test_redis_down_gives_clear_503s_and_the_service_recovers(
     )
     print(f"background plans accepted again {took * 1000:.0f} ms after Redis restarted")
     assert httpx.get(a.url + url).status_code == 200
+
+
+def test_a_callers_search_budget_holds_across_replicas(redis_server: RedisProcess) -> None:
+    """Two replicas' limiters, each with its own counters on one Redis: the search time a
+    caller used on one empties its token bucket on the other once the counters merged."""
+    from dueroute.service.server.callers import Caller, CallerRefused
+    from dueroute.service.server.redis_state import RedisLink, RedisUsage
+    from dueroute.service.server.shared_state import SharedCallerLimits
+
+    link = RedisLink(redis_server.url, prefix=f"limits-test-{time.time_ns()}")
+    link.up = True
+    usage_one, usage_two = RedisUsage(link), RedisUsage(link)
+    limits: dict[str, Any] = dict(max_plans=10, cpu_ms_per_s=1.0, cpu_burst_ms=100.0)
+    one = SharedCallerLimits(usage_one, **limits)
+    two = SharedCallerLimits(usage_two, **limits)
+    caller = Caller("key:alpha", False)
+    two.acquire(caller)  # the caller is known on both
+    two.release(caller, 0.0)
+    one.acquire(caller)
+    one.release(caller, 0.15)  # 150 ms of search on the first: more than the 100 ms burst
+    usage_one.flush()
+    usage_two.flush()
+    with pytest.raises(CallerRefused) as refused:
+        two.acquire(caller)
+    assert refused.value.status == 429

@@ -52,3 +52,23 @@ def test_redis_url_setting() -> None:
         Settings(redis_url="http://cache:6379")
     with pytest.raises(ValidationError):
         Settings(redis_lease_s=0.1)
+
+
+def test_a_callers_search_budget_holds_across_two_limiters() -> None:
+    """Two replicas' limiters on one set of counters: search time a caller used on one is
+    taken from its token bucket on the other (token bucket: common practice for rate limits)."""
+    from dueroute.service.server.callers import Caller, CallerRefused
+    from dueroute.service.server.shared_state import SharedCallerLimits
+
+    usage = MemoryUsage()
+    limits = dict(max_plans=10, cpu_ms_per_s=1.0, cpu_burst_ms=100.0)
+    one, two = SharedCallerLimits(usage, **limits), SharedCallerLimits(usage, **limits)
+    caller, other = Caller("key:alpha", False), Caller("key:beta", False)
+    one.acquire(caller)
+    one.release(caller, 0.15)  # 150 ms of search: more than the 100 ms burst
+    with pytest.raises(CallerRefused) as refused:
+        two.acquire(caller)
+    assert refused.value.status == 429
+    two.acquire(other)  # another caller is not charged
+    with pytest.raises(CallerRefused):
+        one.acquire(caller)  # and on the first its own use emptied the bucket
