@@ -384,3 +384,28 @@ def test_a_callers_search_budget_holds_across_replicas(redis_server: RedisProces
     with pytest.raises(CallerRefused) as refused:
         two.acquire(caller)
     assert refused.value.status == 429
+
+
+def test_the_app_takes_every_store_from_redis(
+    redis_server: RedisProcess, grid_graph_path: Path, tmp_path: Path
+) -> None:
+    """With DUEROUTE_REDIS_URL the app's plans, policy and caller limits are the shared ones;
+    without it, the in-memory ones of one process."""
+    from dueroute.service.server.app import create_app
+    from dueroute.service.server.plan_store import MemoryPlanStore
+    from dueroute.service.server.redis_state import RedisPlanStore, SharedPolicyStore
+    from dueroute.service.server.shared_state import SharedCallerLimits
+    from tests.service.conftest import settings_for
+
+    shared = create_app(settings_for(grid_graph_path, tmp_path, redis_url=redis_server.url))
+    state = shared.state.dueroute
+    try:
+        assert isinstance(state.plans, RedisPlanStore)
+        assert isinstance(state.policies, SharedPolicyStore)
+        assert isinstance(state.callers, SharedCallerLimits)
+        assert state.shared.describe()["reachable"] is True
+    finally:
+        state.shared.stop()
+    alone = create_app(settings_for(grid_graph_path, tmp_path)).state.dueroute
+    assert isinstance(alone.plans, MemoryPlanStore) and alone.shared.backend == "memory"
+    assert not isinstance(alone.callers, SharedCallerLimits)
