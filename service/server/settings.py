@@ -149,7 +149,7 @@ class Settings(BaseSettings):
         "X-API-Key is that caller; without a key a caller is its client address (anonymous)",
     )
     caller_max_plans: int = Field(
-        default=32,
+        default=8,
         ge=1,
         description="unfinished plans (waited or background) one caller may have at once (429)",
     )

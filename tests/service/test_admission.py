@@ -63,7 +63,7 @@ def test_prediction_counts_only_plans_with_earlier_deadlines():
     # a plan due before the running one preempts it: a slot at once (plus the yield latency)
     assert adm.predict_start_s(clock.t, clock.t + 0.01) < clock.t + 0.002
     # searches lately used 10 % of their budget: the running one is expected done at +5 ms
-    for _i in range(20):
+    for _ in range(20):
         adm.used_share.record(clock.t, 0.1)
     assert adm.predict_start_s(clock.t, clock.t + 0.2) == pytest.approx(clock.t + 0.005)
 
