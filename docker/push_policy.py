@@ -1,17 +1,16 @@
 """Activate a policy file on the dueroute replica this runs beside (``PUT /v1/policy``).
 
-The load balancer refuses policy changes because they would reach one replica only. Roll a
-policy out by running this inside every replica, e.g. with docker compose::
+With the compose file's shared Redis a ``PUT /v1/policy`` through the balancer reaches every
+replica by itself (each checks the sha256 and activates it). This script is for replicas
+without a shared store: run it inside each one, e.g.::
 
-    docker compose -f docker/compose.yaml cp new.onnx router:/srv/policies/incoming.onnx
     for i in 1 2 3; do
         docker compose -f docker/compose.yaml exec --index $i router \\
-            python /app/docker/push_policy.py /srv/policies/incoming.onnx
+            python /app/docker/push_policy.py /path/in/the/container/new.onnx
     done
 
-(the policies volume is shared, so the file copied into one replica is seen by all). Each
-replica validates the file itself and swaps atomically; the first refusal stops the rollout
-with the replica's list of problems. ``--dry-run`` only validates. The token comes from
+Each replica validates the file itself and swaps atomically; the first refusal stops the
+rollout with the replica's list of problems. ``--dry-run`` only validates. The token comes from
 ``DUEROUTE_ADMIN_TOKEN`` and the port from ``DUEROUTE_PORT`` (the replica's own settings).
 Exit status: 0 activated (or valid, with --dry-run), 1 refused or unreachable, 2 bad usage.
 """

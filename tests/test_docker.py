@@ -412,6 +412,27 @@ def test_compose_services_and_replicas(compose: dict[str, Any]) -> None:
     assert all(str(p).startswith("127.0.0.1:") for p in services["balancer"]["ports"])
 
 
+def test_compose_replicas_share_one_redis(compose: dict[str, Any]) -> None:
+    """The replicas' DUEROUTE_REDIS_URL names the compose service "redis" on the port it
+    exposes (Redis's default 6379, Redis docs), with persistence on (appendonly) on a volume of
+    its own, and the replicas wait for its health check (``redis-cli ping``)."""
+    from urllib.parse import urlsplit
+
+    from dueroute.service.server.settings import Settings
+
+    services = compose["services"]
+    redis_svc, router = services["redis"], services["router"]
+    url = router["environment"]["DUEROUTE_REDIS_URL"]
+    assert Settings(redis_url=url).redis_url == url  # a URL the service accepts
+    parts = urlsplit(url)
+    assert parts.hostname == "redis" and str(parts.port) in [str(p) for p in redis_svc["expose"]]
+    assert router["depends_on"]["redis"]["condition"] == "service_healthy"
+    assert redis_svc["healthcheck"]["test"][1:] == ["redis-cli", "ping"]
+    command = redis_svc["command"]
+    assert command[command.index("--appendonly") + 1] == "yes"
+    assert any(v.split(":")[0] in compose["volumes"] for v in redis_svc["volumes"])
+
+
 def test_compose_graph_volume_is_shared_read_only(compose: dict[str, Any]) -> None:
     """The replicas find the demo graph ('demo' in DUEROUTE_DATA_DIR, as demo_data.build
     resolves it) on a read-only volume that graph-init filled."""
@@ -429,8 +450,9 @@ def test_compose_graph_volume_is_shared_read_only(compose: dict[str, Any]) -> No
     assert any(v.startswith(f"{volume}:") and not v.endswith(":ro") for v in init["volumes"])
     # graph-init publishes into the mount point, replicas read from it under the same name
     assert init["command"][-1] == graph_mount
-    policy_dir = router["environment"]["DUEROUTE_POLICY_DIR"]
-    assert policy_dir in mounts and not mounts[policy_dir].endswith(":ro")
+    # the graph is the only shared volume: policy and live costs are shared through Redis,
+    # and each replica keeps its copy of the policy in a directory of its own
+    assert set(mounts) == {graph_mount}
 
 
 def test_compose_environment_names_real_settings(compose: dict[str, Any]) -> None:
@@ -470,8 +492,11 @@ def test_nginx_upstream_is_the_router_service(compose: dict[str, Any]) -> None:
     port = compose["services"]["router"]["environment"]["DUEROUTE_PORT"]
     assert re.search(rf"server\s+router:{port}\b", conf)
     assert re.search(r"listen\s+8080;", conf)
-    assert "proxy_next_upstream error timeout http_404;" in conf  # background plans
+    # any replica answers any plan (shared through Redis): no 404 retry, no sticky routing
+    assert "http_404" not in conf
+    assert not re.search(r"^\s*(ip_hash|hash|sticky)\b", conf, re.MULTILINE)
     assert "proxy_buffering off;" in conf  # Server-Sent Events pass through
+    assert "return 409" not in conf  # policy changes through the balancer reach every replica
 
 
 def test_nginx_config_is_valid(tmp_path: Path) -> None:

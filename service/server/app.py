@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import functools
 import gc
 import json
 import logging
@@ -38,9 +39,13 @@ from dueroute.service.server.deps import AppState
 from dueroute.service.server.jobs import PlanningEngine
 from dueroute.service.server.messages import validation_message
 from dueroute.service.server.metrics import ServiceMetrics
-from dueroute.service.server.plan_store import MemoryPlanStore
-from dueroute.service.server.policy_store import PolicyStore
+from dueroute.service.server.redis_state import RedisShared
 from dueroute.service.server.settings import Settings, get_settings
+from dueroute.service.server.shared_state import (
+    SharedCallerLimits,
+    SharedState,
+    SharedStoreDown,
+)
 
 log = logging.getLogger("dueroute.service")
 
@@ -204,7 +209,7 @@ async def _too_large(send: Send, size: int, limit: int) -> None:
     await send({"type": "http.response.body", "body": body})
 
 
-def _caller_limits(settings: Settings) -> CallerLimits:
+def _caller_limits(settings: Settings, shared: SharedState | None = None) -> CallerLimits:
     keys: dict[str, str] = {}
     if settings.api_keys_file is not None:
         try:
@@ -212,7 +217,11 @@ def _caller_limits(settings: Settings) -> CallerLimits:
         except (OSError, ValueError) as exc:
             raise ValueError(f"api_keys_file: {exc}") from None
     cpu = settings.caller_cpu_ms_per_s
-    return CallerLimits(
+    # with a shared store, a caller's search-time budget holds across replicas
+    make: Any = CallerLimits
+    if shared is not None and shared.backend != "memory":
+        make = functools.partial(SharedCallerLimits, shared.usage)
+    return make(
         api_keys=keys,
         max_plans=settings.caller_max_plans,
         cpu_ms_per_s=cpu if cpu is not None else 1000.0 * settings.workers,
@@ -276,18 +285,19 @@ def warm_up(state: AppState) -> None:
 
         snap_to_road(graph, float(graph.lat[0]), float(graph.lon[0]), settings.snap_max_m)
     engine = PlanningEngine(graph, planner, steps=settings.steps)
-    from dueroute.service.server.traffic_store import JournalStore, LiveTraffic
+    from dueroute.service.server.traffic_store import LiveTraffic
 
     t_traffic = time.perf_counter()
     traffic = LiveTraffic(
         graph,
         landmarks,
-        JournalStore(settings.traffic_state_dir, graph.fingerprint),
+        state.shared.traffic_store(graph.fingerprint),
         poll_s=settings.traffic_poll_s,
         background_nice=19 if settings.worker_nice else 0,
         turn_profile=profile,
     )
     traffic.start()  # replays the journal: the same version and costs as before a restart
+    state.shared.watch_traffic(traffic.sync)  # another replica's batch: applied at once
     engine.traffic = traffic
     state.traffic = traffic
     # Every worker thread runs the warm-up searches at once: threads exist, numba has
@@ -418,8 +428,10 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     """A new app. ``settings`` default: :func:`get_settings` (environment, validated now)."""
     settings = settings if settings is not None else get_settings()
     metrics = ServiceMetrics()
-    policies = PolicyStore(
-        settings.policy_dir, settings.max_policy_bytes, on_damaged=settings.on_damaged_policy
+    shared = RedisShared(settings) if settings.redis_url is not None else SharedState(settings)
+    shared.start()  # the shared store (if any) before the policy: its pointer wins
+    policies = shared.policy_store(
+        on_adopt=lambda snap: metrics.set_policy(snap.sha256, snap.source, snap.fallback_controller)
     )
     # Choose the active policy now: a bad --policy file (or, with on_damaged_policy=refuse, a
     # damaged stored one) fails the start, loudly.
@@ -435,12 +447,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
             worker_nice=settings.worker_nice,
             max_inflight=settings.max_in_flight,
         ),
-        callers=_caller_limits(settings),
+        callers=_caller_limits(settings, shared),
         floor=ResponseFloor(initial_before_ms=0.5, initial_after_ms=settings.response_headroom_ms),
-        plans=MemoryPlanStore(
-            settings.background_max, settings.background_max_bytes, settings.background_ttl_s
-        ),
+        plans=shared.plans,
         policies=policies,
+        shared=shared,
     )
 
     @asynccontextmanager
@@ -491,6 +502,11 @@ def create_app(settings: Settings | None = None) -> FastAPI:
         return JSONResponse(
             status_code=exc.status_code, content={"detail": detail}, headers=headers or None
         )
+
+    @app.exception_handler(SharedStoreDown)
+    async def _on_shared_down(request: Request, exc: SharedStoreDown) -> JSONResponse:
+        headers = {"Retry-After": str(exc.retry_after_s)}
+        return JSONResponse(status_code=503, content={"detail": str(exc)}, headers=headers)
 
     @app.exception_handler(Exception)
     async def _on_error(request: Request, exc: Exception) -> JSONResponse:
@@ -659,6 +675,8 @@ async def _shutdown(state: AppState) -> None:
     if state.traffic is not None:
         await asyncio.to_thread(state.traffic.stop)
     await asyncio.to_thread(state.admission.shutdown)
+    await state.shared.aclose()
+    await asyncio.to_thread(state.shared.stop)
 
 
 async def _warm(state: AppState) -> None:

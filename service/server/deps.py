@@ -33,6 +33,7 @@ class AppState:
     loop_lag: LoopLag = field(default_factory=LoopLag)
     engine: PlanningEngine | None = None  # set once the graph is loaded and warmed up
     traffic: Any = None  # service.server.traffic_store.LiveTraffic, set with the engine
+    shared: Any = None  # service.server.shared_state.SharedState: the stores' backend
     ready: bool = False
     warmup_error: str | None = None  # why the warm-up failed (a permanent failure)
     warmup: dict[str, Any] = field(default_factory=dict)

@@ -221,6 +221,9 @@ class PlanJob:
     finished_s: float | None = None  # time.perf_counter() when the final plan was published
     #: Called once, in the thread that publishes the final plan (the store's accounting).
     on_finish: Callable[[PlanJob], None] | None = None
+    #: Called on every change (an improvement, the final plan), in the thread that made it
+    #: (a shared plan store mirrors the plan from there; it must not block).
+    on_change: Callable[[PlanJob], None] | None = None
     done: threading.Event = field(default_factory=threading.Event)
     _subscribers: list[tuple[asyncio.AbstractEventLoop, asyncio.Event]] = field(
         default_factory=list
@@ -275,6 +278,8 @@ class PlanJob:
             self._subscribers = [(lp, e) for lp, e in self._subscribers if e is not ev]
 
     def notify(self) -> None:
+        if self.on_change is not None:
+            self.on_change(self)
         with self._sub_lock:
             subs = list(self._subscribers)
         for loop, ev in subs:

@@ -76,9 +76,19 @@ class PlanIds:
 
     def __init__(self, key: bytes | None = None) -> None:
         self._key = key if key is not None else secrets.token_bytes(32)
+        #: keys this store signed with before (read, never used to sign)
+        self._old_keys: list[bytes] = []
 
-    def _mac(self, payload: bytes) -> bytes:
-        return hmac.new(self._key, payload, hashlib.sha256).digest()[: self._MAC]
+    def adopt(self, key: bytes) -> None:
+        """Sign with ``key`` from now on (a shared key several replicas hold); ids signed with
+        the keys before it stay readable."""
+        if key != self._key:
+            self._old_keys.append(self._key)
+            self._key = key
+
+    def _mac(self, payload: bytes, key: bytes | None = None) -> bytes:
+        k = self._key if key is None else key
+        return hmac.new(k, payload, hashlib.sha256).digest()[: self._MAC]
 
     def new(self, *, kept: bool, now_wall_s: float | None = None) -> str:
         now = time.time() if now_wall_s is None else now_wall_s
@@ -98,8 +108,9 @@ class PlanIds:
         except (ValueError, binascii.Error, UnicodeEncodeError):
             return None
         payload, mac = raw[: self._PAYLOAD], raw[self._PAYLOAD :]
-        if len(raw) != self._PAYLOAD + self._MAC or not hmac.compare_digest(
-            mac, self._mac(payload)
+        if len(raw) != self._PAYLOAD + self._MAC or not any(
+            hmac.compare_digest(mac, self._mac(payload, key))
+            for key in (self._key, *self._old_keys)
         ):
             return None
         issued_ms = struct.unpack(">Q", b"\0\0" + payload[1:7])[0]
@@ -145,7 +156,13 @@ class PlanStore(Protocol):
         """Store ``job`` (its id from :meth:`new_id` with ``kept=True``) until its TTL ends."""
         ...
 
-    def lookup(self, plan_id: str) -> Lookup: ...
+    def lookup(self, plan_id: str) -> Lookup:
+        """A plan this process holds (never waits)."""
+        ...
+
+    async def find(self, plan_id: str) -> Lookup:
+        """Any stored plan: this process's, or (shared backend) one another replica holds."""
+        ...
 
     def expire(self) -> int:
         """Forget plans whose TTL has ended; returns how many went."""
@@ -289,6 +306,14 @@ class MemoryPlanStore:
         if issued is None:
             return Lookup(None, "unknown")
         return Lookup(None, "expired" if issued.kept else "not_kept", issued.issued_wall_s)
+
+    async def find(self, plan_id: str) -> Lookup:
+        return self.lookup(plan_id)
+
+    def held(self) -> list[PlanJob]:
+        """Every plan held now (running and finished)."""
+        with self._lock:
+            return list(self._plans.values())
 
     def expire(self) -> int:
         with self._lock:

@@ -243,6 +243,19 @@ class Settings(BaseSettings):
         ge=0,
         description="searches run at start-up (JIT compile) before /readyz is ready",
     )
+    redis_url: str | None = Field(
+        default=None,
+        description="shared state for several replicas (plans and their events, live costs, "
+        "the active policy, usage counters), e.g. redis://redis:6379/0; unset: one process, "
+        "everything in memory and on local files",
+    )
+    redis_lease_s: float = Field(
+        default=3.0,
+        ge=0.5,
+        le=60,
+        description="with redis_url: a plan whose replica has not renewed its lease for this "
+        "long ends with status error (the replica stopped)",
+    )
     log_level: str = Field(default="info", description="debug, info, warning or error")
     log_json: bool = Field(default=True, description="structured JSON log lines on stderr")
 
@@ -262,6 +275,18 @@ class Settings(BaseSettings):
         if v is not None and len(v.get_secret_value()) < 8:
             raise ValueError("admin_token must be at least 8 characters (or unset)")
         return v
+
+    @field_validator("redis_url")
+    @classmethod
+    def _redis_url(cls, v: str | None) -> str | None:
+        if v is None or not v.strip():
+            return None
+        if not v.startswith(("redis://", "rediss://", "unix://")):
+            raise ValueError(
+                "redis_url must start with redis://, rediss:// or unix:// "
+                "(e.g. redis://localhost:6379/0), or be unset"
+            )
+        return v.strip()
 
     @field_validator("turn_costs")
     @classmethod

@@ -42,6 +42,7 @@ async def readyz(state: StateDep) -> JSONResponse:
         "floor": state.floor.snapshot(),
         "callers": state.callers.snapshot(),
         "loop_lag_ms": round(state.loop_lag.estimate_ms(), 3),
+        "shared_state": state.shared.describe() if state.shared is not None else None,
         **state.warmup,
     }
     damaged = state.policies.damaged

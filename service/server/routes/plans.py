@@ -579,7 +579,7 @@ def _gone(plan_id: str, lookup: Lookup, state: AppState) -> JSONResponse:
     "error and says what failed in `error`.",
 )
 async def get_plan(plan_id: str, state: StateDep) -> Response:
-    lookup = state.plans.lookup(plan_id)
+    lookup = await state.plans.find(plan_id)
     if lookup.job is None:
         return _gone(plan_id, lookup, state)
     return _json(lookup.job.current_json())
@@ -597,7 +597,7 @@ async def get_plan(plan_id: str, state: StateDep) -> Response:
     "live ends, so a GET after DELETE answers 200 with the same final plan. Idempotent.",
 )
 async def cancel_plan(plan_id: str, state: StateDep) -> Response:
-    lookup = state.plans.lookup(plan_id)
+    lookup = await state.plans.find(plan_id)
     job = lookup.job
     if job is None:
         return _gone(plan_id, lookup, state)
@@ -637,7 +637,7 @@ def _sse(event: str, data: bytes, event_id: int | None = None) -> bytes:
     "show the gap). Send Last-Event-ID to resume after an event.",
 )
 async def plan_events(plan_id: str, request: Request, state: StateDep) -> Response:
-    lookup = state.plans.lookup(plan_id)
+    lookup = await state.plans.find(plan_id)
     job = lookup.job
     if job is None:
         return _gone(plan_id, lookup, state)
