@@ -44,9 +44,7 @@ def register(bench_sub: Any) -> None:
     add_count_option(c, 80, "query pairs")
     c.add_argument("--seed", type=int, default=77, help="seed of the query pairs (default 77)")
     add_landmarks_option(c)
-    add_out_option(
-        c, required=False, metavar="FILE.json", help="write the calibration here (JSON)"
-    )
+    add_out_option(c, required=False, metavar="FILE.json", help="write the calibration here (JSON)")
     add_json_flag(c)
     c.set_defaults(func=cmd_calibrate)
 

@@ -174,8 +174,12 @@ def test_clock_features_equal_the_table_read_in_python():
     graph = grid()
     stats = Planner(graph).start(0, graph.n_nodes - 1, budget_expansions=300, steps=3).stats()
     for left_ms, rate, share in ((0.0, 0.0, 1.0), (5.0, 2e6, 0.5), (49.0, 9e6, 0.25)):
-        s = stats.replace(time_left_ms=left_ms, expansion_rate_per_s=rate, cpu_share_last_step=share)
-        np.testing.assert_allclose(compute_features(s), _reference_features(s), rtol=1e-6, atol=1e-7)
+        s = stats.replace(
+            time_left_ms=left_ms, expansion_rate_per_s=rate, cpu_share_last_step=share
+        )
+        np.testing.assert_allclose(
+            compute_features(s), _reference_features(s), rtol=1e-6, atol=1e-7
+        )
     # 10 ms left at 2e6 expansions/s and half the CPU buys 1e4 expansions: log10(1 + 1e4) / 6
     s = stats.replace(time_left_ms=10.0, expansion_rate_per_s=2e6, cpu_share_last_step=0.5)
     assert compute_features(s)[IDX["affordable_log"]] == pytest.approx(math.log10(1e4 + 1) / 6)
