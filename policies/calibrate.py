@@ -9,8 +9,9 @@ was measured on, and what one decision of a learned policy costs there:
   instant route and opening included) stopped by the deadline ``deadlines_ms[i]``, over the
   calibration queries that the deadline stopped (a query solved earlier says nothing about
   capacity);
-* ``expansion_rate_per_ms``: the median kernel rate (expansions per ms of kernel time), used
-  beyond the last measured deadline;
+* ``expansion_rate_per_ms``: the median kernel rate (expansions per ms of kernel time) over
+  every calibration search, used beyond the last measured deadline and for a deadline that
+  stopped fewer than 5 searches (``rate * deadline``);
 * ``decision_us``: the median cost of one decision (stats, features, an ONNX policy of the
   shipped shape) run between real search steps, as ``planner.session.plan`` times control.
 
@@ -228,8 +229,8 @@ def measure_calibration(
             res = plan(planner, int(o), int(d), deadline_ms=float(dl), controller="fixed:1")
             if res.stopped_by == "deadline":
                 stopped[float(dl)].append(res.expansions)
-                if res.kernel_ms > 0:
-                    rates.append(res.expansions / res.kernel_ms)
+            if res.kernel_ms > 0 and res.expansions > 0:
+                rates.append(res.expansions / res.kernel_ms)
             bar.update(1)
     policy = _probe_policy()
     ctrl = LearnedController(policy)
@@ -250,8 +251,8 @@ def measure_calibration(
     bar.close()
     if not rates:
         raise ValueError(
-            "no calibration search ran until its deadline (every query was solved first); "
-            "use longer queries or shorter deadlines"
+            "no calibration search expanded a node (every query was solved at its start); "
+            "use a graph with longer queries"
         )
     rate = float(np.median(rates))
     expansions = []

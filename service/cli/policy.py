@@ -287,6 +287,8 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         raise InvalidRequest(f"--deadlines-ms must all be > 0, got {args.deadlines_ms}")
     if args.importance_count < 0:
         raise InvalidRequest("--importance-count must be >= 0")
+    if any(not 1 <= x <= 64 for x in args.loads):
+        raise InvalidRequest(f"--loads must all be in 1..64, got {args.loads}")
     controllers = tuple(args.controllers) if args.controllers else CONTROLLERS
     for spec in controllers:
         if spec != LEARNED:
@@ -354,8 +356,6 @@ def _evaluate_served(
     from dueroute.policies.env import sample_queries
     from dueroute.policies.evaluate import SERVED_DEADLINES_MS, ServedSettings, evaluate_served
 
-    if any(not 1 <= x <= 64 for x in args.loads):
-        raise InvalidRequest(f"--loads must all be in 1..64, got {args.loads}")
     if any(not d <= 60_000 for d in args.deadlines_ms):
         raise InvalidRequest(f"--deadlines-ms must all be in (0, 60000], got {args.deadlines_ms}")
     exclude = None
