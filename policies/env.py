@@ -316,7 +316,7 @@ class WeightControlEnv(gym.Env):
 
     Observation
     -----------
-    ``Box(FEATURE_LOW, FEATURE_HIGH, (14,), float32)``: :func:`planner.features.compute_features`
+    ``Box(FEATURE_LOW, FEATURE_HIGH, (17,), float32)``: :func:`planner.features.compute_features`
     of the search after the step (schema in :mod:`planner.features`):
 
     ===  ==========================  =====================================================
@@ -334,12 +334,29 @@ class WeightControlEnv(gym.Env):
     11   improvements_log            log(1 + routes found) / 3
     12   stale_share                 steps since the last new route / steps done
     13   cpu_share_last_step         see below
+    14   time_left_log               log10(1 + ms left) / 2 (regime ``deadline``; else 0)
+    15   expansion_rate_log          log10(1 + expansions per CPU second) / 7 (idem)
+    16   affordable_log              log10(1 + expansions the time left buys) / 6 (idem)
     ===  ==========================  =====================================================
 
-    Under an expansion budget the CPU share a step receives changes nothing about what the
-    step does, so the environment replaces the measured value (wall-clock noise) with a draw
-    from ``U(0.25, 1)``: the policy learns to ignore it instead of meeting unseen values when
-    it serves under wall-clock deadlines on a busy machine, and episodes stay reproducible.
+    Under an expansion budget (regime ``budget``) the CPU share a step receives changes
+    nothing about what the step does, so the environment replaces the measured value
+    (wall-clock noise) with a draw from ``U(0.25, 1)``, and there is no clock (features 14-16
+    read 0); episodes stay reproducible.
+
+    Served regime
+    -------------
+    With ``regime="deadline"`` every reset draws the contract the service would run: a
+    deadline ``d`` log-uniform in ``deadline_ms_min..deadline_ms_max`` and a load ``L`` from
+    ``searches_per_core`` (CPU share ``s = 1 / L``). The measured calibration map
+    (:mod:`policies.calibrate`) gives the decision steps the service would allow a policy
+    (``steps_at``; a contract with no decision is redrawn) and the expansions the search
+    makes by then (``expansions_at``, the decisions' cost taken out), so the episode is an
+    expansion budget that stands for the deadline: reproducible, and the same search. The
+    observation then carries what the service would measure: time left ``d x fraction left``,
+    the calibrated expansion rate (x U(0.8, 1.25) per episode) and the share ``s``
+    (x U(0.9, 1.1)). ``options`` of ``reset`` may fix ``deadline_ms`` and
+    ``searches_per_core``.
 
     Actions
     -------
@@ -373,7 +390,9 @@ class WeightControlEnv(gym.Env):
     ----
     ``quality``, ``optimal_cost_s``, ``incumbent_cost_s``, ``query_index``, ``weight``,
     ``status`` (``running`` or a final status of ``dueroute.planner.results.STATUSES``),
-    ``traffic_index`` (entry of the cost pool; 0 = free flow or ``traffic``).
+    ``traffic_index`` (entry of the cost pool; 0 = free flow or ``traffic``), ``deadline_ms``
+    (``None`` under regime ``budget``), ``searches_per_core``, ``budget_expansions`` and
+    ``steps`` (the episode's contract).
     """
 
     metadata: dict[str, Any] = {"render_modes": []}
@@ -497,8 +516,8 @@ class WeightControlEnv(gym.Env):
         for _ in range(MAX_REDRAWS):
             d = options.get("deadline_ms")
             deadline_ms = float(d) if d is not None else math.exp(float(rng.uniform(lo, hi)))
-            per_core = options.get("searches_per_core")
-            per_core = int(per_core) if per_core is not None else int(rng.choice(cfg.loads))
+            given = options.get("searches_per_core")
+            per_core = int(given) if given is not None else int(rng.choice(cfg.loads))
             share = 1.0 / per_core
             steps = cal.steps_at(deadline_ms, share, cfg.steps)
             if steps >= 2 or {"deadline_ms", "searches_per_core"} <= set(options):

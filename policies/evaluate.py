@@ -1043,7 +1043,7 @@ def evaluate_served(
 def served_ranking(cells: list[dict[str, Any]], specs: Sequence[str]) -> list[dict[str, Any]]:
     """Controllers by mean quality over every cell (each cell weighs the same), best first,
     with the number of cells each is best in (ties count for all)."""
-    rows = []
+    rows: list[dict[str, Any]] = []
     for s in specs:
         means = [c["controllers"][s]["mean_quality"] for c in cells]
         wins = sum(
