@@ -13,7 +13,9 @@ was measured on, and what one decision of a learned policy costs there:
   every calibration search, used beyond the last measured deadline and for a deadline that
   stopped fewer than 5 searches (``rate * deadline``);
 * ``decision_us``: the median cost of one decision (stats, features, an ONNX policy of the
-  shipped shape) run between real search steps, as ``planner.session.plan`` times control.
+  shipped shape) between real deadline steps, as ``planner.session.plan`` times control and
+  the service's ``DecisionCost`` learns it (far above the same call in a tight loop: after a
+  kernel step of milliseconds the policy's memory is out of the caches).
 
 A search with CPU share ``s`` (``L`` searches per core: ``s = 1 / L``) that spends ``k``
 decisions gets, by a deadline ``d``, the expansions of an uncontended search by
@@ -184,26 +186,41 @@ def _probe_policy(n_actions: int = 3) -> Any:
     return load_policy(build_model(net, meta).SerializeToString())
 
 
+class _FixedSteps:
+    """A learned controller that plan() does not size steps for (it keeps ``steps``): the
+    probe must decide even when the process's decision-cost estimate would allow none."""
+
+    def __init__(self, inner: Any) -> None:
+        self.inner, self.name, self.mode = inner, inner.name, inner.mode
+
+    def reset(self, seed: int | None) -> float:
+        return float(self.inner.reset(seed))
+
+    def decide(self, features: np.ndarray, stats: Any) -> float:
+        return float(self.inner.decide(features, stats))
+
+
 def measure_calibration(
     planner: Planner,
     queries: np.ndarray,
     deadlines_ms: tuple[float, ...] = CALIBRATION_DEADLINES_MS,
     *,
     seed: int = 0,
-    decision_budget: int = 40_000,
+    decision_deadlines_ms: tuple[float, ...] = (20.0, 50.0),
+    decision_steps: int = 8,
     progress: bool = False,
 ) -> Calibration:
     """Measure the map on ``planner``'s graph with the given queries (int64[n, 2]).
 
     Every query is searched at every deadline with ``fixed:1`` (one step), the deadlines in a
-    shuffled order per query (against drift); then each query once more under a budget of
-    ``decision_budget`` expansions in 20 steps, timing every decision of a random policy of
-    the shipped shape between the steps (the median is ``decision_us``). Run it on a quiet
-    machine (``flock /tmp/dueroute-timing.lock``): it measures wall-clock speed.
+    shuffled order per query (against drift); then each query once more at each of
+    ``decision_deadlines_ms`` in ``decision_steps`` steps with a random policy of the shipped
+    shape, timing its decisions as ``plan()`` does (``PlanResult.control_ms`` / decisions,
+    median over the searches that decided: ``decision_us``). Run it on a quiet machine
+    (``flock /tmp/dueroute-timing.lock``): it measures wall-clock speed.
     """
     from tqdm import tqdm
 
-    from dueroute.planner.features import compute_features
     from dueroute.policies.runtime import LearnedController
 
     queries = np.asarray(queries, dtype=np.int64).reshape(-1, 2)
@@ -233,20 +250,22 @@ def measure_calibration(
                 rates.append(res.expansions / res.kernel_ms)
             bar.update(1)
     policy = _probe_policy()
-    ctrl = LearnedController(policy)
     per_decision: list[float] = []
     for o, d in queries:
-        # what plan() times as control between two steps: stats, features, the ONNX policy
-        search = planner.start(int(o), int(d), budget_expansions=decision_budget, steps=20)
-        while not search.done:
-            search.run_step(1.0)
-            if search.done:
-                break
-            t0 = time.perf_counter()
-            stats = search.stats()
-            ctrl.decide(compute_features(stats), stats)
-            per_decision.append((time.perf_counter() - t0) * 1e6)
-        search.close()
+        # timed as plan() times control (and as the service's DecisionCost learns it):
+        # between deadline steps, with the search's memory in the caches
+        for dl in decision_deadlines_ms:
+            res = plan(
+                planner,
+                int(o),
+                int(d),
+                deadline_ms=dl,
+                steps=decision_steps,
+                controller=_FixedSteps(LearnedController(policy)),
+            )
+            decisions = len(res.weights) - 1
+            if decisions > 0 and res.control_ms > 0:
+                per_decision.append(res.control_ms * 1000.0 / decisions)
         bar.update(1)
     bar.close()
     if not rates:
