@@ -990,6 +990,8 @@ def evaluate_served(
                     "optimal_found_share": float(np.mean(q[s] >= 1.0 - 1e-12)),
                     "control_share": float(np.mean([r.control_ms for r in runs]) / dl),
                     "mean_steps": float(np.mean([len(r.weights) for r in runs])),
+                    # searches in which the controller chose a weight at least once
+                    "decided_share": float(np.mean([len(r.weights) > 1 for r in runs])),
                     "mean_expansions": float(np.mean([r.expansions for r in runs])),
                 }
             cell: dict[str, Any] = {
@@ -1016,7 +1018,22 @@ def evaluate_served(
         "queries": {"n": int(n), "seed": settings.seed},
         "policy": policy.info(),
         "graph": {"name": graph.name, "nodes": graph.n_nodes, "fingerprint": graph.fingerprint},
-        "ranking": served_ranking(cells, specs),
+        "ranking": served_ranking(
+            cells,
+            specs,
+            {
+                s: np.array(
+                    [
+                        results[x][(d, s, i)].quality
+                        for x in loads
+                        for d in deadlines
+                        for i in range(n)
+                    ]
+                )
+                for s in specs
+            },
+            seed=settings.seed,
+        ),
         "targets": served_targets(cells),
     }
     if costs is not None:
@@ -1040,9 +1057,16 @@ def evaluate_served(
     return summary
 
 
-def served_ranking(cells: list[dict[str, Any]], specs: Sequence[str]) -> list[dict[str, Any]]:
+def served_ranking(
+    cells: list[dict[str, Any]],
+    specs: Sequence[str],
+    pooled: dict[str, np.ndarray] | None = None,
+    seed: int = 0,
+) -> list[dict[str, Any]]:
     """Controllers by mean quality over every cell (each cell weighs the same), best first,
-    with the number of cells each is best in (ties count for all)."""
+    with the number of cells each is best in (ties count for all) and, given ``pooled``
+    (per-query qualities of every cell in one order per controller), the paired comparison
+    of each with the first (:func:`paired_stats`, the first minus it: ``vs_first``)."""
     rows: list[dict[str, Any]] = []
     for s in specs:
         means = [c["controllers"][s]["mean_quality"] for c in cells]
@@ -1054,6 +1078,10 @@ def served_ranking(cells: list[dict[str, Any]], specs: Sequence[str]) -> list[di
         )
         rows.append({"controller": s, "mean_quality": float(np.mean(means)), "best_cells": wins})
     rows.sort(key=lambda r: r["mean_quality"], reverse=True)
+    if pooled is not None and rows:
+        first = pooled[rows[0]["controller"]]
+        for r in rows[1:]:
+            r["vs_first"] = paired_stats(first, pooled[r["controller"]], seed=seed)
     return rows
 
 
@@ -1142,8 +1170,8 @@ def served_markdown(summary: dict[str, Any]) -> str:
             "and the learned policy's decision steps and control overhead:",
             "",
             "| per core | deadline | best baseline | difference | 95% CI | better / worse / tied "
-            "| Wilcoxon p | t-test p | steps | control / deadline |",
-            "|---:|---:|---|---:|---|---|---:|---:|---:|---:|",
+            "| Wilcoxon p | t-test p | steps | searches with a decision | control / deadline |",
+            "|---:|---:|---|---:|---|---|---:|---:|---:|---:|---:|",
         ]
         for c in cells:
             t = c.get("learned_vs_best_baseline")
@@ -1156,20 +1184,28 @@ def served_markdown(summary: dict[str, Any]) -> str:
                 f"{t['mean_difference']:+.4f} | [{lo:+.4f}, {hi:+.4f}] | {t['better']} / "
                 f"{t['worse']} / {t['ties']} | {_fmt_p(t['p_value'])} | "
                 f"{_fmt_p(t['t_p_value'])} | {lc['mean_steps']:.1f} | "
-                f"{lc['control_share']:.2%} |"
+                f"{lc.get('decided_share', 0.0):.0%} | {lc['control_share']:.2%} |"
             )
         lines.append("")
     lines += [
         "Over the whole served range (mean of the cell means; cells where the controller is "
         "best, ties included):",
         "",
-        "| rank | controller | mean quality | best in cells |",
-        "|---:|---|---:|---:|",
+        "| rank | controller | mean quality | best in cells | first minus it, all cells pooled "
+        "(95% CI; Wilcoxon p) |",
+        "|---:|---|---:|---:|---|",
     ]
     for i, r in enumerate(summary["ranking"], 1):
+        vs = r.get("vs_first")
+        versus = (
+            f"{vs['mean_difference']:+.4f} [{vs['ci95'][0]:+.4f}, {vs['ci95'][1]:+.4f}]; "
+            f"p {_fmt_p(vs['p_value'])}"
+            if vs
+            else ""
+        )
         lines.append(
             f"| {i} | {r['controller']} | {r['mean_quality']:.4f} | {r['best_cells']} / "
-            f"{len(cells)} |"
+            f"{len(cells)} | {versus} |"
         )
     tg = summary.get("targets", {})
     if tg.get("judged_cells"):
