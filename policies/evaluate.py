@@ -1239,6 +1239,7 @@ def _served_plot(path: Path, summary: dict[str, Any]) -> None:
             style = {"lw": 2.6, "color": "black", "marker": "o"} if s == LEARNED else {"lw": 1.1}
             ax.plot(deadlines, means, label=s, **style)
         ax.set_xscale("log")
+        ax.minorticks_off()
         ax.set_xticks(deadlines, [f"{d:g}" for d in deadlines])
         ax.set_xlabel("deadline (ms)")
         ax.set_ylabel("mean quality")

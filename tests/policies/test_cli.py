@@ -215,6 +215,25 @@ def test_train_deadline_regime_and_served_evaluation(trained, tmp_path, capsys):
     )
     assert rc == 0
     capsys.readouterr()
+    # seeded and expansion-counted: the same command and calibration give the same network
+    again = tmp_path / "again.onnx"
+    argv = ["train", str(graph_path), "--out", str(again), "--regime", "deadline"]
+    argv += ["--calibration", str(cal), "--deadline-ms-min", "1", "--deadline-ms-max", "20"]
+    argv += ["--searches-per-core", "1,2", "--episodes", "8", "--count", "10"]
+    argv += ["--learning-starts", "4", "--batch-size", "4", "--eval-every-episodes", "4"]
+    argv += ["--validation-count", "3", "--landmarks", "0", "--no-progress", "--json"]
+    assert main(argv) == 0
+    capsys.readouterr()
+    import numpy as np
+
+    from dueroute.planner.features import FEATURE_HIGH, FEATURE_LOW
+    from dueroute.policies.runtime import load_policy
+
+    probe = np.random.default_rng(0).uniform(FEATURE_LOW, FEATURE_HIGH, (16, len(FEATURE_LOW)))
+    probe = probe.astype(np.float32)
+    np.testing.assert_array_equal(
+        load_policy(out).q_values(probe), load_policy(again).q_values(probe)
+    )
     assert main(["policy", "check", str(out), str(graph_path), "--json"]) == 0
     report = json.loads(capsys.readouterr().out)
     regime = report["policy"]["training_regime"]
