@@ -1271,3 +1271,30 @@ def dag_reachable(dindptr, dhead, src, dst):
                 queue[hi] = d
                 hi += 1
     return False
+
+
+@njit(cache=True, nogil=True)
+def route_polyline(nodes, edges, lat, lon, geom_indptr, geom_lat, geom_lon):
+    """(lon, lat) rows of a route's full edges: each edge's tail, its interior shape points,
+    and the last edge's head (the shared point between two edges written once)."""
+    k = edges.shape[0]
+    total = 1
+    for i in range(k):
+        e = edges[i]
+        total += 1 + geom_indptr[e + 1] - geom_indptr[e]
+    out = np.empty((total, 2), dtype=np.float64)
+    at = 0
+    for i in range(k):
+        e = edges[i]
+        u = nodes[i]
+        out[at, 0] = lon[u]
+        out[at, 1] = lat[u]
+        at += 1
+        for j in range(geom_indptr[e], geom_indptr[e + 1]):
+            out[at, 0] = geom_lon[j]
+            out[at, 1] = geom_lat[j]
+            at += 1
+    last = nodes[k]
+    out[at, 0] = lon[last]
+    out[at, 1] = lat[last]
+    return out

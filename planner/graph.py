@@ -217,6 +217,24 @@ class RoadGraph:
             )
         return int(node)
 
+    def route_coords(self, nodes: np.ndarray, edges: np.ndarray) -> np.ndarray:
+        """float64[n, 2] (lon, lat) points along a route of full edges (``edges[i]`` from
+        ``nodes[i]`` to ``nodes[i + 1]``), each shared point once: what
+        :meth:`edge_coords` gives edge by edge, in one compiled pass."""
+        from dueroute.planner._kernel import route_polyline  # numba: compiled on first use
+
+        return np.asarray(
+            route_polyline(
+                np.asarray(nodes, dtype=np.int64),
+                np.asarray(edges, dtype=np.int64),
+                np.asarray(self.lat),
+                np.asarray(self.lon),
+                np.asarray(self.geom_indptr),
+                np.asarray(self.geom_lat),
+                np.asarray(self.geom_lon),
+            )
+        )
+
     def edge_coords(self, edge: int) -> list[tuple[float, float]]:
         """(lon, lat) points of one edge from its tail to its head, interior geometry included."""
         t = int(self.tail[edge])

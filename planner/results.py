@@ -113,6 +113,25 @@ class ImprovementLog(Sequence[Improvement]):
     def __len__(self) -> int:
         return self._n
 
+    def published(self, last: int) -> list[dict[str, Any]]:
+        """The published fields (:meth:`Improvement.to_dict`) of the last ``last`` rows,
+        read straight from the rows (no objects: an answer lists them once)."""
+        lo = max(0, self._n - max(0, last))
+        out = []
+        for r in self._rows[lo : self._n].tolist():
+            out.append(
+                {
+                    "elapsed_ms": _json_num(r[0]),
+                    "expansions": int(r[1]),
+                    "cost_s": _json_num(r[2]),
+                    "lower_bound_s": _json_num(r[3]),
+                    "gap": _json_num(r[4]),
+                    "weight": _json_num(r[5]),
+                    "source": "instant" if r[6] == 0.0 else "search",
+                }
+            )
+        return out
+
     def _get(self, i: int) -> Improvement:
         obj = self._objects[i]
         if obj is None:

@@ -115,7 +115,9 @@ UNBOUNDED_BUDGET_MIN = 10_000
 #: Budget contracts check ``cancel`` at least every this many expansions; deadline steps at
 #: least every this many seconds when a ``cancel`` event is given (a kernel call costs a few us).
 BUDGET_CHUNK_EXPANSIONS = 50_000
-CANCEL_CHECK_S = 0.002
+CANCEL_CHECK_S = 0.001
+#: The cancel object's ``searching`` hook is called around kernel runs at least this long.
+KERNEL_HOOK_MIN_S = 0.0005
 
 #: Landmarks the kernel evaluates per node: the best for the query's origin and destination.
 #: A search is bound by memory, not arithmetic (measured with ``dueroute bench search``: the
@@ -694,6 +696,12 @@ class Search:
         self.steps_total = steps
         self.started_at = started_at
         self.cancel = cancel
+        #: the cancel object stops the kernel itself (see :func:`plan`): no polling needed
+        self._cancel_bound = False
+        self._stop_asked = False  # stop() was called
+        self._nudged = False  # the bound cancel object asked the kernel to return
+        #: told ``True`` before and ``False`` after a long kernel run (see :func:`plan`)
+        self._on_kernel: Callable[[bool], None] | None = None
         self.mode = mode
         self._mode_code = _MODE_CODE[mode]
         self.gap_target = gap_target
@@ -984,6 +992,15 @@ class Search:
 
     def stop(self) -> None:
         """Ask the kernel to stop at its next check (any thread; about 10 us of search)."""
+        self._stop_asked = True
+        ws = self._ws
+        if ws is not None:
+            ws.istate[K.I_STOP] = 1
+
+    def nudge(self) -> None:
+        """Make the kernel return to Python at its next check (any thread), where the search
+        asks its cancel object whether to stop (it may also wait there: a yield point)."""
+        self._nudged = True
         ws = self._ws
         if ws is not None:
             ws.istate[K.I_STOP] = 1
@@ -1138,7 +1155,8 @@ class Search:
             step_end = self._deadline_at
         ist = ws.istate
         ist[K.I_LIMIT] = -1
-        watch = self.cancel is not None
+        # poll the cancel object between short kernel runs, unless it stops the kernel itself
+        watch = self.cancel is not None and not self._cancel_bound
         while self._status is None:
             if watch and self.cancel.is_set():  # type: ignore[union-attr]
                 self.close()
@@ -1147,7 +1165,14 @@ class Search:
                 return
             until = min(step_end, now + CANCEL_CHECK_S) if watch else step_end
             ist[K.I_UNTIL_NS] = int(until * 1e9)
-            status = self._kernel(ws)
+            hook = self._on_kernel if until - now >= KERNEL_HOOK_MIN_S else None
+            if hook is not None:
+                hook(True)
+            try:
+                status = self._kernel(ws)
+            finally:
+                if hook is not None:
+                    hook(False)
             now = time.perf_counter()
             if status == K.TIME_UP:
                 if until >= step_end:
@@ -1179,7 +1204,16 @@ class Search:
         elif status == K.GAP_REACHED:
             self._finish_unproven(ws, "gap_target")
         elif status == K.STOPPED:
-            self.close()
+            nudged, self._nudged = self._nudged, False
+            if self._stop_asked:
+                self.close()
+                return
+            # A nudge (or a stop flag left by a search that used this workspace before and
+            # was stopped as it ended: not ours, ignored): ask the cancel object, go on if
+            # it says so.
+            ws.istate[K.I_STOP] = 0
+            if nudged and self.cancel is not None and self.cancel.is_set():
+                self.close()
 
     def _finish_unproven(self, ws: _Workspace, reason: str) -> None:
         self._collect_log(ws)
@@ -1354,6 +1388,7 @@ def plan(
     started_at: float | None = None,
     gap_target: float = 0.0,
     costs: Any = None,
+    every_improvement: bool = True,
 ) -> PlanResult:
     """Best route from ``origin`` to ``destination`` within the contract.
 
@@ -1374,6 +1409,13 @@ def plan(
         Called with every :class:`Improvement`, in the search thread; the one it gets for a
         route found by the search carries the route (``route_nodes``, ``route_edges``).
     cancel : threading.Event-like, optional
+        Polled (``is_set()``) every :data:`CANCEL_CHECK_S` while the search runs; an object
+        that also has ``bind(nudge)`` is given the search's :meth:`Search.nudge` instead and
+        calls it when it wants to be asked (cancellation, or a scheduler taking the CPU
+        back): then the search asks ``is_set()`` at once, and never polls. Such an object
+        may also have ``searching(flag)``, called with True before and False after each
+        kernel run of at least :data:`KERNEL_HOOK_MIN_S` (a scheduler lowers the thread's
+        priority while the kernel, which holds neither the GIL nor a lock, runs).
     seed : int, optional
         Seed for randomised controllers.
     started_at : float, optional
@@ -1383,6 +1425,11 @@ def plan(
         deadline or the proof).
     costs : planner.traffic.CostVersion, optional
         Live edge costs (see :meth:`Planner.start`).
+    every_improvement : bool
+        False: ``on_improvement`` gets only the first route (the instant route, found when
+        the search opens, else the search's first); the search then runs without stopping at
+        each improvement to read its route back, which costs tens of microseconds of Python
+        each. The result lists every improvement either way.
     """
     t0 = time.perf_counter() if started_at is None else started_at
     ctrl = make_controller(controller, seed=seed) if isinstance(controller, str) else controller
@@ -1410,10 +1457,18 @@ def plan(
         costs=costs,
     )
     search.controller_name = ctrl.name
-    search.on_improvement = on_improvement
+    bind = getattr(cancel, "bind", None)
+    if bind is not None:  # the cancel object nudges the kernel instead of being polled
+        search._cancel_bound = True
+        search._on_kernel = getattr(cancel, "searching", None)
+        bind(search.nudge)
     if on_improvement is not None:
         for imp in search.improvements:  # the instant route, found when the search opened
             on_improvement(search.with_route(imp))
+    if every_improvement:
+        search.on_improvement = on_improvement
+    elif on_improvement is not None and not search.improvements:
+        search.on_improvement = _first_route_only(search, on_improvement)
     weight = _check_weight(ctrl.reset(seed), ctrl.name)
     decisions = 0
     while not search.done:
@@ -1428,6 +1483,19 @@ def plan(
         decisions += 1
     DECISION_COST.record(kind, search.control_s, decisions)
     return search.result()
+
+
+def _first_route_only(
+    search: Search, callback: Callable[[Improvement], None]
+) -> Callable[[Improvement], None]:
+    """``callback`` for the search's first route, then no more callbacks."""
+
+    def first(imp: Improvement) -> None:
+        callback(imp)
+        if imp.route_nodes is not None:
+            search.on_improvement = None  # the kernel stops returning on improvements
+
+    return first
 
 
 #: What a controller that declares ``uses_features = False`` is given instead of features.

@@ -91,6 +91,22 @@ def register(sub: Any) -> None:
         help="file holding the service's admin token: clear the service's live traffic and "
         "post --traffic before the run (answers on another cost version are then counted)",
     )
+    p.add_argument(
+        "--scenario",
+        choices=("grid", "attack", "slow-clients"),
+        default="grid",
+        help="grid (default): every cell of controllers x concurrency x deadlines; attack: a "
+        "polite caller (first deadline and controller) alone, then while --abusers callers "
+        "loop 60 s fixed:5 requests on a long trip; slow-clients: the same while "
+        "--slow-connections connections stall their headers or bodies",
+    )
+    p.add_argument("--abusers", type=int, default=2, help="abusive callers (scenario attack)")
+    p.add_argument(
+        "--slow-connections",
+        type=int,
+        default=300,
+        help="stalling connections (scenario slow-clients)",
+    )
     p.add_argument("--max-requests", type=int, default=20_000, help="most requests per cell")
     p.add_argument(
         "--tolerance-ms",
@@ -104,6 +120,49 @@ def register(sub: Any) -> None:
     add_out_option(p, required=True, metavar="DIR", help="directory for the summary and plots")
     add_json_flag(p)
     p.set_defaults(func=run)
+
+
+def _run_scenario(args: argparse.Namespace, queries: Any, reference: Any) -> int:
+    import json
+    from pathlib import Path
+
+    from dueroute.service.loadtest import scenarios
+
+    given_deadline = "--deadlines-ms" in sys.argv or "--deadlines" in sys.argv
+    config = scenarios.ScenarioConfig(
+        url=args.url,
+        scenario=args.scenario,
+        deadline_ms=args.deadlines_ms[0] if given_deadline else 50,
+        controller=args.controllers[0],
+        duration_s=args.duration,
+        abusers=args.abusers,
+        slow_connections=args.slow_connections,
+        tolerance_ms=args.tolerance_ms,
+        ready_timeout_s=args.ready_timeout,
+    )
+    bar = progress(total=2, unit="phase", desc=f"scenario {args.scenario}")
+
+    def on_phase(text: str) -> None:
+        bar.set_postfix_str(text, refresh=False)
+        if bar.n < bar.total and text != "polite caller alone":
+            bar.update(1)
+
+    try:
+        summary = asyncio.run(scenarios.run_scenario(config, queries, reference, on_phase))
+    finally:
+        bar.update(bar.total - bar.n)
+        bar.close()
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    (out / "scenario.json").write_text(json.dumps(summary, indent=2, default=str) + "\n")
+    table = scenarios.markdown(summary)
+    (out / "scenario.md").write_text(table + "\n")
+    if args.json:
+        emit({"summary": summary, "files": {"scenario_json": str(out / "scenario.json")}}, True)
+    else:
+        print(table)
+        print(f"\nscenario_json: {out / 'scenario.json'}")
+    return 0
 
 
 def _int_list(text: str) -> list[int]:
@@ -186,6 +245,8 @@ def run(args: argparse.Namespace) -> int:
         else None
     )
 
+    if args.scenario != "grid":
+        return _run_scenario(args, queries, reference)
     result = lt.LoadTestResult(config=config, queries=list(queries), queries_source=source)
     bar = progress(total=config.n_cells, unit="cell", desc="loadtest")
     last_postfix = [0.0]

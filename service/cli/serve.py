@@ -27,6 +27,8 @@ _FLAGS = {
     "log_level": "log_level",
     "turn_costs": "turn_costs",
     "uturns": "uturns",
+    "api_keys_file": "api_keys_file",
+    "max_connections": "max_connections",
 }
 
 
@@ -115,6 +117,19 @@ def register(sub: Any) -> None:
         default=None,
         help="U-turns at junctions (default forbid_at_junctions; dead ends always allow them)",
     )
+    p.add_argument(
+        "--api-keys-file",
+        default=None,
+        metavar="FILE",
+        help="API keys, one 'name:key' per line: callers sending X-API-Key are told apart by "
+        "it (without one, by client address, with the anonymous caps)",
+    )
+    p.add_argument(
+        "--max-connections",
+        type=int,
+        default=None,
+        help="open connections kept at most (default 1000); keep it below the descriptor limit",
+    )
     p.add_argument("--log-level", default=None, help="debug, info, warning, error")
     p.add_argument("--plain-logs", action="store_true", help="human-readable instead of JSON logs")
     p.add_argument(
@@ -172,6 +187,7 @@ def run(args: argparse.Namespace) -> int:
 
     from dueroute.demo_data.build import resolve_graph_path
     from dueroute.service.server.app import configure_logging, create_app
+    from dueroute.service.server.http_edge import server_config
     from dueroute.service.server.policy_store import PolicyDamaged, PolicyRejected
 
     settings = build_settings(args)
@@ -193,16 +209,7 @@ def run(args: argparse.Namespace) -> int:
         }
         emit(report, getattr(args, "json", False), _human_check)
         return 0
-    config = uvicorn.Config(
-        app,
-        host=settings.host,
-        port=settings.port,
-        log_config=None,
-        access_log=False,  # the service writes its own structured request log
-        lifespan="on",
-        timeout_graceful_shutdown=5,
-    )
-    uvicorn.Server(config).run()
+    uvicorn.Server(server_config(app, settings)).run()
     return 0
 
 

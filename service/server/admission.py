@@ -1,28 +1,37 @@
-"""Admission control: worker slots, a FIFO queue, and shedding what cannot start in time.
+"""Scheduling searches on the CPUs: an earliest-deadline-first queue, preemption, admission.
 
-Every admitted plan holds a *search deadline* ``search_deadline_s`` (``perf_counter`` seconds):
-arrival + deadline_ms - response headroom. The search never runs past it, whenever it starts,
-so a plan occupies a worker slot until at most its search deadline. That gives a worst-case
-schedule that needs no guess about how long searches take:
+The service runs at most ``workers`` searches at once (by default one per core): a search that
+shares a core with another gets half of it and misses its quality. Every admitted plan holds a
+:class:`Ticket` with its *search deadline* (``perf_counter`` seconds, arrival + deadline_ms -
+the time the answer needs after the search). A plan runs on a thread of its own, but searches
+only while its ticket holds one of the ``workers`` *slots*:
 
-* a running plan frees its slot by its search deadline (earlier if it proves the optimum),
-  plus the largest overrun seen in the last second (a thread starved of CPU ends late);
-* queued plans take slots in FIFO order (the thread pool's order) and each frees its slot by
-  its own search deadline, or at once if it can no longer start in time.
+* **EDF.** Free slots go to the waiting tickets in order of search deadline (earliest first;
+  Liu & Layland 1973 show EDF meets every deadline any scheduler can on one processor).
+* **Preemption.** When a ticket waits and every slot is taken, the running ticket with the
+  latest deadline (if later than the waiter's by more than :data:`PREEMPT_MARGIN_S`) is asked
+  to yield. It does so at its next check (the search checks its ticket at least every
+  ``planner.session.CANCEL_CHECK_S``) and waits, parked with its workspace, until a slot is
+  free for it again. So a 60 s background search never holds a core against a 50 ms request.
+* **The instant lane.** A ticket still waiting when its search deadline is near stops waiting
+  and runs without a slot: the search opens (the instant route, microseconds) and ends at once,
+  so a waiting request whose deadline passes is answered with a route, never dropped.
 
-A new request is admitted if a worker is free now, or if, in that worst case, it starts at
-least ``min_search_ms`` before its own search deadline; otherwise it is shed at once (503 +
-``Retry-After``). The
-estimate is pessimistic when searches finish early, never optimistic — but an admitted plan
-never waits past its deadline in any case: a plan that starts late simply searches for less time
-(and one that cannot start at all answers at once without searching).
+**Admission** (:meth:`Admission.admit`, never blocks) predicts when a new plan would get a slot:
+with EDF and preemption only the plans with earlier deadlines stand before it, and each of those
+is expected to occupy a slot for its remaining budget times the share of their budget recent
+searches really used (searches that prove the optimum end early; the mean of the last 10 s:
+what matters is the work ahead in total, not one search's). A plan that can search at least ``min_search_ms`` is admitted; one that cannot
+is admitted to the instant lane while that lane has room (the instant route is all the time
+allows), otherwise shed at once (503 with Retry-After).
+
+Per-caller limits (:mod:`dueroute.service.server.callers`) are checked before any of this.
 """
 
 from __future__ import annotations
 
 import asyncio
 import contextlib
-import heapq
 import itertools
 import math
 import os
@@ -34,21 +43,84 @@ from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
 
+#: A running search is preempted only for a waiter whose deadline is earlier by more than this
+#: (two plans with nearly the same deadline do not take turns).
+PREEMPT_MARGIN_S = 0.002
+#: A waiting ticket leaves for the instant lane this long before its search deadline.
+INSTANT_RESERVE_S = 0.0003
+#: How long a preempted search needs to notice and yield its slot (its check interval).
+YIELD_LATENCY_S = 0.001
+
 
 @dataclass(eq=False)
 class Ticket:
-    """One admitted plan's claim on a worker slot."""
+    """One admitted plan's claim on the CPUs; also the search's cancel flag and yield point.
+
+    The search calls :meth:`is_set` between short runs of the kernel (the ``cancel``
+    protocol of :func:`dueroute.planner.session.plan`): it answers whether to stop, and when
+    the scheduler asked this ticket to yield, it first gives the slot up and waits for it back.
+    """
 
     ticket_id: int
     arrival_s: float
     search_deadline_s: float
+    caller: str = ""
+    #: admitted to the instant lane: runs without a slot until its first route (the instant
+    #: route, found when the search opens; else the greedy search's first), then answers
+    instant_only: bool = False
+    route_found: bool = False  # set by the plan's first improvement
     started_s: float | None = None
     finished_s: float | None = None
     cancel: threading.Event = field(default_factory=threading.Event)
+    #: seconds this ticket held a slot (the search CPU it was given)
+    slot_s: float = 0.0
+    holds_slot: bool = False
+    waited: bool = False  # found no free slot at first
+    preempted: int = 0  # times it yielded its slot
+    _preempt: bool = False
+    _slot_since: float = 0.0
+    _base_nice: int | None = None
+    _nudge: Callable[[], None] | None = field(default=None, repr=False)
+    _scheduler: Admission | None = field(default=None, repr=False)
+
+    def bind(self, nudge: Callable[[], None]) -> None:
+        """The search's nudge (makes its kernel return and ask :meth:`is_set`)."""
+        self._nudge = nudge
+        if self.cancel.is_set() or self._preempt or (self.instant_only and self.route_found):
+            nudge()
+
+    def request_cancel(self) -> None:
+        """Stop the plan's search (any thread): it ends within microseconds, or leaves the
+        queue at once if it waits for a slot."""
+        self.cancel.set()
+        self.poke()
+        if self._scheduler is not None:
+            self._scheduler.wake()
+
+    def searching(self, running: bool) -> None:
+        """Around a long kernel run (called by the search, in its thread)."""
+        if self._scheduler is not None:
+            self._scheduler._set_searching(self, running)
+
+    def poke(self) -> None:
+        nudge = self._nudge
+        if nudge is not None:
+            nudge()
+
+    def is_set(self) -> bool:
+        if self.cancel.is_set() or (self.instant_only and self.route_found):
+            return True
+        if self._preempt and self._scheduler is not None:
+            self._scheduler._yield(self)
+        return self.cancel.is_set()
+
+    @property
+    def budget_s(self) -> float:
+        return max(0.0, self.search_deadline_s - self.arrival_s)
 
 
 class Shed(Exception):
-    """The request cannot start in time; ``retry_after_s`` is when a slot is expected free."""
+    """The request cannot be served in time; ``retry_after_s`` is when to try again."""
 
     def __init__(self, message: str, retry_after_s: int) -> None:
         super().__init__(message)
@@ -56,20 +128,25 @@ class Shed(Exception):
 
 
 class Admission:
-    """Bounded worker pool with deadline-aware admission.
+    """EDF scheduler of searches on ``workers`` slots, with deadline-aware admission.
 
     Parameters
     ----------
     workers : int
-        Searches that run at once; each runs in its own thread (the search kernel releases
-        the GIL, so threads run on separate cores).
+        Searches that run at once (slots); by default the number of cores.
     min_search_ms : float
-        A plan must be able to search at least this long or it is shed.
+        A plan must be able to search at least this long, else it gets the instant lane or is
+        shed.
     clock : callable
         ``time.perf_counter`` (injected in tests).
     worker_nice : int
         Niceness added to each search thread (Linux schedules threads separately), so the
         event-loop thread that answers requests gets a core first when every core is busy.
+    max_inflight : int
+        Admitted plans not yet finished (running, parked, waiting), each on its own thread;
+        default 16 per slot. Above it requests are shed.
+    instant_lane : int
+        Plans that may be in the instant lane at once (default: 4 per slot).
     """
 
     def __init__(
@@ -78,119 +155,274 @@ class Admission:
         min_search_ms: float,
         clock: Callable[[], float] = time.perf_counter,
         worker_nice: int = 0,
+        max_inflight: int | None = None,
+        instant_lane: int | None = None,
     ) -> None:
         if workers < 1:
             raise ValueError(f"workers must be >= 1, got {workers}")
         self.workers = workers
         self.min_search_s = min_search_ms / 1000.0
         self.clock = clock
-        self._lock = threading.Lock()
-        # Invariant: every admitted, unfinished ticket is in exactly one of these two.
-        self._running: dict[int, Ticket] = {}
-        self._queued: dict[int, Ticket] = {}  # insertion order == FIFO order of the pool
-        self._ids = itertools.count(1)
         self.worker_nice = worker_nice
+        self.max_inflight = max_inflight if max_inflight is not None else 16 * workers
+        self.instant_lane = instant_lane if instant_lane is not None else 4 * workers
+        self._cv = threading.Condition()
+        # Invariant: every admitted, unfinished ticket is in _inflight; those holding a slot
+        # are in _running (at most ``workers``), those wanting one in _waiting.
+        self._inflight: dict[int, Ticket] = {}
+        self._running: dict[int, Ticket] = {}
+        self._waiting: dict[int, Ticket] = {}
+        self._ids = itertools.count(1)
         self._executor: ThreadPoolExecutor | None = None
         self.admitted_total = 0
+        self.instant_total = 0
         self.shed_total = 0
-        self._overrun_s = RecentMax(window_s=1.0)  # how late searches freed their worker
+        self.preempted_total = 0
+        #: mean share of its budget a finished search held a slot (early proofs end early)
+        self.used_share = RecentQuantile(
+            window_s=10.0, quantile=None, initial=1.0, min_samples=8, clock=clock
+        )
+
+    # ---------------------------------------------------------------------------------------
+    # threads
 
     def _pool(self) -> ThreadPoolExecutor:
-        """The worker pool, (re)created on first use after construction or shutdown."""
-        with self._lock:
+        with self._cv:
             if self._executor is None:
                 self._executor = ThreadPoolExecutor(
-                    max_workers=self.workers,
+                    max_workers=self.max_inflight + self.workers,
                     thread_name_prefix="dueroute-search",
-                    initializer=self._renice,
                 )
             return self._executor
 
-    def _renice(self) -> None:
-        if self.worker_nice > 0 and hasattr(os, "setpriority"):
-            with contextlib.suppress(OSError):  # not permitted or not supported: keep going
-                os.setpriority(os.PRIO_PROCESS, threading.get_native_id(), self.worker_nice)
+    def _set_searching(self, t: Ticket, searching: bool) -> None:
+        """Lower this thread's priority while its kernel runs, restore it after.
+
+        Called in the ticket's own thread, around a long kernel run only (the kernel holds
+        no lock and not the GIL). While searching it runs ``worker_nice`` below the rest of
+        the process, so that everything else (the event loop, opening a query, an
+        instant-lane plan, building an answer) gets a core first when every slot is busy.
+        Python code never runs at the lower priority: a thread holding the GIL or a lock
+        while it waits for a core would stall every other thread (priority inversion).
+        """
+        if self.worker_nice <= 0 or not hasattr(os, "setpriority"):
+            return
+        with contextlib.suppress(OSError):  # not permitted or not supported: keep going
+            tid = threading.get_native_id()
+            if t._base_nice is None:
+                t._base_nice = os.getpriority(os.PRIO_PROCESS, tid)
+            target = min(19, t._base_nice + self.worker_nice) if searching else t._base_nice
+            os.setpriority(os.PRIO_PROCESS, tid, target)
 
     # ---------------------------------------------------------------------------------------
-    def estimate_start_s(self, now_s: float) -> float:
-        """Worst-case time at which a plan arriving now would get a worker slot."""
-        with self._lock:
-            return self._estimate_locked(now_s)
+    # prediction
 
-    def _estimate_locked(self, now_s: float) -> float:
-        # A search frees its worker by its deadline plus the overrun seen lately (a starved
-        # thread finishes late); one past that is assumed to finish any moment.
-        overrun = self._overrun_s.value
-        free = [max(now_s, t.search_deadline_s + overrun) for t in self._running.values()]
+    def predict_start_s(self, now_s: float, search_deadline_s: float) -> float:
+        """When a plan with this search deadline, arriving now, is expected to get a slot."""
+        with self._cv:
+            return self._predict_locked(now_s, search_deadline_s)
+
+    def _remaining_s(self, t: Ticket, now_s: float, start_s: float) -> float:
+        """Expected slot time ``t`` still needs from ``start_s`` (at most until its deadline)."""
+        expected = t.budget_s * self.used_share.value
+        held = t.slot_s + (now_s - t._slot_since if t.holds_slot else 0.0)
+        return max(0.0, min(t.search_deadline_s - start_s, expected - held))
+
+    def _predict_locked(self, now_s: float, deadline_s: float) -> float:
+        free: list[float] = []
+        for t in self._running.values():
+            if t.search_deadline_s <= deadline_s + PREEMPT_MARGIN_S:
+                free.append(now_s + self._remaining_s(t, now_s, now_s))
+            else:  # it would be preempted for this plan
+                free.append(now_s + YIELD_LATENCY_S)
         free += [now_s] * (self.workers - len(free))
-        heapq.heapify(free)
-        for t in self._queued.values():
-            start = heapq.heappop(free)
-            # Starts at ``start`` and frees the slot by its deadline (at once if too late).
-            heapq.heappush(free, max(start, t.search_deadline_s + overrun))
-        return free[0]
+        ahead = sorted(
+            (t for t in self._waiting.values() if t.search_deadline_s <= deadline_s),
+            key=lambda t: (t.search_deadline_s, t.ticket_id),
+        )
+        for t in ahead:  # EDF: each takes the slot that frees first
+            free.sort()
+            start = free[0]
+            free[0] = start + self._remaining_s(t, now_s, start)
+        return min(free)
+
+    # ---------------------------------------------------------------------------------------
+    # admission
 
     def admit(
-        self, arrival_s: float, search_deadline_s: float, min_search_s: float | None = None
+        self,
+        arrival_s: float,
+        search_deadline_s: float,
+        min_search_s: float | None = None,
+        caller: str = "",
+        instant_lane: bool = True,
     ) -> Ticket:
-        """Admit a plan or raise :class:`Shed` (never blocks).
+        """Admit a plan (possibly to the instant lane) or raise :class:`Shed`; never blocks.
 
-        ``min_search_s`` overrides the configured minimum (a request whose whole deadline is
-        shorter than the minimum asks for less).
+        ``min_search_s`` overrides the configured minimum (a short deadline asks for less);
+        ``instant_lane=False`` (a background plan: nobody waits for a quick answer) sheds
+        instead of taking the instant lane.
         """
         need_s = self.min_search_s if min_search_s is None else min_search_s
         now = self.clock()
-        with self._lock:
-            start = self._estimate_locked(now)
-            # A free worker always takes the plan: it starts now and searches what is left
-            # (perhaps nothing, for a deadline shorter than the request's own handling).
-            if start > now and start + need_s > search_deadline_s:
+        with self._cv:
+            if len(self._inflight) >= self.max_inflight:
                 self.shed_total += 1
-                wait_s = max(0.0, start - now)
-                busy = len(self._running)
-                queued = len(self._queued)
                 raise Shed(
-                    f"overloaded: {busy} of {self.workers} workers busy and {queued} plans "
-                    f"queued; a worker is expected free in {wait_s * 1000:.0f} ms, too late to "
-                    f"search at least {need_s * 1000:.1f} ms before the deadline. "
-                    "Retry later or with a longer deadline_ms.",
-                    retry_after_s=max(1, math.ceil(wait_s)),
+                    f"overloaded: {len(self._inflight)} plans in flight, the most this service "
+                    f"takes ({self.max_inflight}); retry shortly",
+                    retry_after_s=1,
                 )
-            ticket = Ticket(next(self._ids), arrival_s, search_deadline_s)
-            self._queued[ticket.ticket_id] = ticket
+            start = self._predict_locked(now, search_deadline_s)
+            instant = start + need_s > search_deadline_s
+            if instant:
+                lane = sum(1 for t in self._inflight.values() if t.instant_only)
+                if lane >= self.instant_lane or not instant_lane:
+                    self.shed_total += 1
+                    wait_s = max(0.0, start - now)
+                    raise Shed(
+                        f"overloaded: {len(self._running)} of {self.workers} searches running "
+                        f"and {len(self._waiting)} waiting; a search slot is expected in "
+                        f"{wait_s * 1000:.1f} ms, too late to search at least "
+                        f"{need_s * 1000:.1f} ms before this plan's deadline. Retry later or "
+                        "with a longer deadline_ms.",
+                        retry_after_s=max(1, math.ceil(wait_s)),
+                    )
+                self.instant_total += 1
+            ticket = Ticket(
+                next(self._ids),
+                arrival_s,
+                search_deadline_s,
+                caller=caller,
+                instant_only=instant,
+                _scheduler=self,
+            )
+            self._inflight[ticket.ticket_id] = ticket
             self.admitted_total += 1
             return ticket
 
     def submit(self, ticket: Ticket, fn: Callable[[Ticket], Any]) -> Future[Any]:
-        """Run ``fn(ticket)`` on a worker thread; the ticket moves queued -> running -> done."""
+        """Run ``fn(ticket)`` on a thread once the ticket holds a slot (or the instant lane)."""
 
         def run() -> Any:
-            with self._lock:
-                self._queued.pop(ticket.ticket_id, None)
-                self._running[ticket.ticket_id] = ticket
-                ticket.started_s = self.clock()
+            if not ticket.instant_only:
+                self._acquire(ticket)
+            ticket.started_s = self.clock()
             try:
                 return fn(ticket)
             finally:
-                with self._lock:
-                    self._running.pop(ticket.ticket_id, None)
-                    ticket.finished_s = self.clock()
-                    self._overrun_s.record(
-                        ticket.finished_s, max(0.0, ticket.finished_s - ticket.search_deadline_s)
-                    )
+                self._finish(ticket)
 
         try:
             return self._pool().submit(run)
         except RuntimeError:  # pool shut down: release the claim
-            with self._lock:
-                self._queued.pop(ticket.ticket_id, None)
+            self.release(ticket)
             raise
 
-    def prestart(self, fn: Callable[[], Any]) -> list[Any]:
-        """Run ``fn`` once on every worker thread at the same time (start-up only).
+    def _acquire(self, t: Ticket) -> None:
+        """Wait (EDF) for a slot; leave for the instant lane near the deadline or on cancel."""
+        with self._cv:
+            self._waiting[t.ticket_id] = t
+            self._ask_preempt_locked()
+            while True:
+                if self._grant_locked(t):
+                    return
+                t.waited = True
+                left = t.search_deadline_s - INSTANT_RESERVE_S - self.clock()
+                if t.cancel.is_set() or left <= 0:
+                    self._waiting.pop(t.ticket_id, None)
+                    t.instant_only = not t.cancel.is_set()  # out of time: the instant lane
+                    self._cv.notify_all()
+                    return
+                self._cv.wait(timeout=left)
 
-        Starts all the pool's threads now rather than on the first requests, and lets ``fn``
-        warm per-thread state (the planner pools one search workspace per concurrent search).
+    def _grant_locked(self, t: Ticket) -> bool:
+        if len(self._running) >= self.workers:
+            return False
+        first = min(self._waiting.values(), key=lambda w: (w.search_deadline_s, w.ticket_id))
+        if first is not t:
+            return False
+        del self._waiting[t.ticket_id]
+        self._running[t.ticket_id] = t
+        t.holds_slot = True
+        t._slot_since = self.clock()
+        return True
+
+    def _drop_slot_locked(self, t: Ticket) -> None:
+        if t.holds_slot:
+            t.holds_slot = False
+            t.slot_s += self.clock() - t._slot_since
+            self._running.pop(t.ticket_id, None)
+            self._cv.notify_all()
+
+    def end_search(self, t: Ticket) -> None:
+        """The plan's search is over (called in its thread): free the slot now, before the
+        answer is built, at the thread's normal priority."""
+        with self._cv:
+            self._drop_slot_locked(t)
+            self._ask_preempt_locked()
+
+    def _ask_preempt_locked(self) -> None:
+        """If a waiter is more urgent than a running search and no slot is free, ask the
+        running search with the latest deadline to yield."""
+        if len(self._running) < self.workers or not self._waiting:
+            return
+        urgent = min(t.search_deadline_s for t in self._waiting.values())
+        candidates = [t for t in self._running.values() if not t._preempt]
+        if not candidates:
+            return
+        latest = max(candidates, key=lambda t: t.search_deadline_s)
+        if latest.search_deadline_s > urgent + PREEMPT_MARGIN_S:
+            latest._preempt = True
+            latest.poke()
+
+    def _yield(self, t: Ticket) -> None:
+        """Called by the preempted search itself: give the slot up, wait to get one back."""
+        with self._cv:
+            t._preempt = False
+            if not t.holds_slot:
+                return
+            self._drop_slot_locked(t)
+            t.preempted += 1
+            self.preempted_total += 1
+            self._waiting[t.ticket_id] = t
+            while not self._grant_locked(t):
+                if t.cancel.is_set() or self.clock() >= t.search_deadline_s:
+                    # out of time: finish without a slot (the search ends at its deadline)
+                    self._waiting.pop(t.ticket_id, None)
+                    self._cv.notify_all()
+                    return
+                self._cv.wait(timeout=max(0.0, t.search_deadline_s - self.clock()))
+
+    def _finish(self, t: Ticket) -> None:
+        with self._cv:
+            self._waiting.pop(t.ticket_id, None)
+            self._drop_slot_locked(t)
+            self._inflight.pop(t.ticket_id, None)
+            t.finished_s = self.clock()
+            if not t.instant_only and t.budget_s > 0 and not t.cancel.is_set():
+                self.used_share.record(t.finished_s, min(1.0, t.slot_s / t.budget_s))
+            self._ask_preempt_locked()
+            self._cv.notify_all()
+
+    def release(self, ticket: Ticket) -> None:
+        """Drop a ticket that was admitted but never submitted (the request failed early)."""
+        with self._cv:
+            self._inflight.pop(ticket.ticket_id, None)
+            self._waiting.pop(ticket.ticket_id, None)
+            self._drop_slot_locked(ticket)
+            self._cv.notify_all()
+
+    def wake(self) -> None:
+        """Wake waiting tickets (one was cancelled: it leaves the queue at once)."""
+        with self._cv:
+            self._cv.notify_all()
+
+    def prestart(self, fn: Callable[[], Any]) -> list[Any]:
+        """Run ``fn`` once on ``workers`` threads at the same time (start-up only).
+
+        Starts threads now rather than on the first requests, and lets ``fn`` warm
+        per-thread state (the planner pools one search workspace per concurrent search).
         """
         barrier = threading.Barrier(self.workers)
 
@@ -202,82 +434,134 @@ class Admission:
         futures = [pool.submit(run) for _ in range(self.workers)]
         return [f.result() for f in futures]
 
-    def release(self, ticket: Ticket) -> None:
-        """Drop a ticket that was admitted but never submitted (the request failed early)."""
-        with self._lock:
-            self._queued.pop(ticket.ticket_id, None)
-
     @property
     def busy(self) -> int:
         return len(self._running)
 
     @property
     def queued(self) -> int:
-        return len(self._queued)
+        return len(self._waiting)
 
     def snapshot(self) -> dict[str, Any]:
         now = self.clock()
-        with self._lock:
-            start = self._estimate_locked(now)
+        with self._cv:
+            start = self._predict_locked(now, math.inf)
             return {
                 "workers": self.workers,
                 "busy": len(self._running),
-                "queued": len(self._queued),
+                "queued": len(self._waiting),
+                "in_flight": len(self._inflight),
+                "max_in_flight": self.max_inflight,
                 "next_free_in_ms": max(0.0, (start - now) * 1000.0),
-                "recent_overrun_ms": self._overrun_s.value * 1000.0,
+                "used_share_mean": self.used_share.value,
                 "admitted_total": self.admitted_total,
+                "instant_total": self.instant_total,
                 "shed_total": self.shed_total,
+                "preempted_total": self.preempted_total,
             }
 
     def shutdown(self) -> None:
-        with self._lock:
-            tickets = list(self._running.values()) + list(self._queued.values())
+        with self._cv:
+            tickets = list(self._inflight.values())
         for t in tickets:
-            t.cancel.set()
-        with self._lock:
+            t.request_cancel()
+        self.wake()
+        with self._cv:
             pool, self._executor = self._executor, None
         if pool is not None:
             pool.shutdown(wait=True, cancel_futures=False)
 
 
-class RecentMax:
-    """A high quantile (default the largest) of the values recorded in the last ``window_s``
-    seconds (0 when none)."""
+class RecentQuantile:
+    """A quantile (``None``: the mean) of the values recorded in the last ``window_s`` seconds.
 
-    def __init__(self, window_s: float = 1.0, quantile: float = 1.0) -> None:
+    ``initial`` while fewer than ``min_samples`` values are held (a fresh service has no
+    measurements, and old values expire even when nothing new is recorded, so an estimate
+    never sticks at a stale high). At most ``max_samples`` are held; reading :attr:`value`
+    recomputes the quantile only after something changed.
+    """
+
+    def __init__(
+        self,
+        window_s: float = 1.0,
+        quantile: float | None = 1.0,
+        initial: float = 0.0,
+        min_samples: int = 1,
+        max_samples: int = 512,
+        clock: Callable[[], float] = time.perf_counter,
+    ) -> None:
         self.window_s = window_s
         self.quantile = quantile
-        self._samples: deque[tuple[float, float]] = deque()  # (time, value), oldest first
-        self.value = 0.0
+        self.initial = initial
+        self.min_samples = min_samples
+        self.clock = clock
+        self._samples: deque[tuple[float, float]] = deque(maxlen=max_samples)
+        self._lock = threading.Lock()
+        self._value = initial
+        self._dirty = False
+        self._computed_at = -math.inf
+
+    #: with many samples, the quantile is recomputed at most this often (sorting is not free)
+    REFRESH_S = 0.05
 
     def record(self, now_s: float, value: float) -> None:
-        self._samples.append((now_s, value))
-        while self._samples and self._samples[0][0] < now_s - self.window_s:
-            self._samples.popleft()
-        if self.quantile >= 1.0:
-            self.value = max(v for _, v in self._samples)
-        else:
-            ordered = sorted(v for _, v in self._samples)
-            self.value = ordered[min(len(ordered) - 1, int(self.quantile * len(ordered)))]
+        with self._lock:
+            self._samples.append((now_s, value))
+            self._dirty = True
+
+    @property
+    def value(self) -> float:
+        with self._lock:
+            samples = self._samples
+            now = self.clock()
+            horizon = now - self.window_s
+            while samples and samples[0][0] < horizon:
+                samples.popleft()
+                self._dirty = True
+            if self._dirty and (len(samples) < 64 or now - self._computed_at >= self.REFRESH_S):
+                self._computed_at = now
+                n = len(samples)
+                if n < self.min_samples:
+                    self._value = self.initial
+                elif self.quantile is None:
+                    self._value = sum(v for _, v in samples) / n
+                elif self.quantile >= 1.0:
+                    self._value = max(v for _, v in samples)
+                else:
+                    ordered = sorted(v for _, v in samples)
+                    self._value = ordered[min(n - 1, int(self.quantile * n))]
+                self._dirty = False
+            return self._value
+
+    def __len__(self) -> int:
+        return len(self._samples)
+
+
+#: The largest value recorded in the last window (kept under its old name).
+class RecentMax(RecentQuantile):
+    def __init__(
+        self,
+        window_s: float = 1.0,
+        quantile: float = 1.0,
+        clock: Callable[[], float] = time.perf_counter,
+    ) -> None:
+        super().__init__(window_s=window_s, quantile=quantile, clock=clock)
 
 
 class LoopLag:
     """How late the event loop runs a timer right now: the delay an answer would see.
 
-    A task sleeps ``interval_s`` over and over and records how much later than asked it woke.
-    :meth:`estimate_ms` is the 95th percentile of the lag in the last ``window_s`` seconds:
-    it follows a loop that is busy (overload), not a rare hiccup of a shared machine, which
-    would otherwise cut every search short for a whole window. The plans route
-    adds it to the response headroom (the search stops that much earlier) and fires its
-    watchdog that much earlier, so an answer keeps the deadline while the loop is busy (many
-    connections, the GIL shared with the search threads) instead of arriving late by the lag.
+    A task sleeps ``interval_s`` over and over and records how much later than asked it woke;
+    :meth:`estimate_ms` is the 95th percentile of the last ``window_s`` seconds. Reported on
+    ``/readyz`` and as a metric; the answer-time estimate of :class:`ResponseFloor` already
+    contains it, since it is measured end to end.
     """
 
     def __init__(
         self, interval_s: float = 0.005, window_s: float = 1.0, quantile: float = 0.95
     ) -> None:
         self.interval_s = interval_s
-        self._lag_s = RecentMax(window_s, quantile)
+        self._lag_s = RecentQuantile(window_s, quantile)
 
     def record(self, now_s: float, lag_s: float) -> None:
         self._lag_s.record(now_s, lag_s)
@@ -287,7 +571,7 @@ class LoopLag:
 
     def reset(self) -> None:
         """Forget the samples (after start-up work that will not recur)."""
-        self._lag_s = RecentMax(self._lag_s.window_s, self._lag_s.quantile)
+        self._lag_s = RecentQuantile(self._lag_s.window_s, self._lag_s.quantile)
 
     async def run(self) -> None:
         while True:
@@ -295,3 +579,54 @@ class LoopLag:
             await asyncio.sleep(self.interval_s)
             t1 = time.perf_counter()
             self.record(t1, max(0.0, t1 - t0 - self.interval_s))
+
+
+class ResponseFloor:
+    """The service's own floor: time a plan needs outside its search, measured.
+
+    * ``before``: from the request's first byte to the search's start when a slot was free
+      (read and parse the body, snap, admit, hand to a thread);
+    * ``after``: from the search's end to the last byte of the answer handed to the socket
+      (build the route and the JSON, wake the event loop, send).
+
+    :meth:`after_s` (95th percentile of the last ``window_s`` seconds) is how long before the
+    deadline a search stops. :meth:`floor_ms`, the shortest deadline the service honours, is
+    the 90th percentiles of both plus a small margin: a robust statistic, so that a few
+    stalls of a shared machine do not lock short deadlines out for a whole window. Before
+    ``min_samples`` answers, the ``initial_*`` values hold.
+    """
+
+    def __init__(
+        self,
+        initial_before_ms: float,
+        initial_after_ms: float,
+        window_s: float = 2.0,
+        min_samples: int = 20,
+        clock: Callable[[], float] = time.perf_counter,
+    ) -> None:
+        b0, a0 = initial_before_ms / 1000.0, initial_after_ms / 1000.0
+        self._before = RecentQuantile(window_s, 0.9, b0, min_samples, clock=clock)
+        self._after = RecentQuantile(window_s, 0.95, a0, min_samples, clock=clock)
+        self._after_typical = RecentQuantile(window_s, 0.9, a0, min_samples, clock=clock)
+
+    def record_before(self, now_s: float, seconds: float) -> None:
+        self._before.record(now_s, seconds)
+
+    def record_after(self, now_s: float, seconds: float) -> None:
+        self._after.record(now_s, seconds)
+        self._after_typical.record(now_s, seconds)
+
+    def after_s(self) -> float:
+        return self._after.value
+
+    def floor_ms(self) -> float:
+        return (self._before.value + self._after_typical.value) * 1000.0 + 0.1
+
+    def snapshot(self) -> dict[str, float]:
+        return {
+            "floor_ms": self.floor_ms(),
+            "before_search_p90_ms": self._before.value * 1000.0,
+            "after_search_p90_ms": self._after_typical.value * 1000.0,
+            "after_search_p95_ms": self._after.value * 1000.0,
+            "samples": float(min(len(self._before), len(self._after))),
+        }

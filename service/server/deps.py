@@ -10,7 +10,8 @@ from typing import Annotated, Any
 
 from fastapi import Depends, HTTPException, Request
 
-from dueroute.service.server.admission import Admission, LoopLag
+from dueroute.service.server.admission import Admission, LoopLag, ResponseFloor
+from dueroute.service.server.callers import CallerLimits
 from dueroute.service.server.jobs import PlanningEngine
 from dueroute.service.server.metrics import ServiceMetrics
 from dueroute.service.server.plan_store import PlanStore
@@ -27,6 +28,8 @@ class AppState:
     admission: Admission
     plans: PlanStore
     policies: PolicyStore
+    callers: CallerLimits = field(default_factory=CallerLimits)
+    floor: ResponseFloor = field(default_factory=lambda: ResponseFloor(0.5, 1.0))
     loop_lag: LoopLag = field(default_factory=LoopLag)
     engine: PlanningEngine | None = None  # set once the graph is loaded and warmed up
     traffic: Any = None  # service.server.traffic_store.LiveTraffic, set with the engine
@@ -38,7 +41,8 @@ class AppState:
     lifespans: int = 0  # lifespans entered and not yet left
 
 
-def get_state(request: Request) -> AppState:
+async def get_state(request: Request) -> AppState:
+    # async: FastAPI runs a plain-def dependency on its thread pool, a thread hop per request
     state: AppState = request.app.state.dueroute
     return state
 
@@ -46,14 +50,14 @@ def get_state(request: Request) -> AppState:
 StateDep = Annotated[AppState, Depends(get_state)]
 
 
-def get_app_settings(state: StateDep) -> Settings:
+async def get_app_settings(state: StateDep) -> Settings:
     return state.settings
 
 
 SettingsDep = Annotated[Settings, Depends(get_app_settings)]
 
 
-def require_admin(request: Request, state: StateDep) -> None:
+def check_admin(request: Request, state: AppState) -> None:
     """Admin endpoints: 404 when no token is configured, 401 unless the bearer token matches.
 
     The token is compared with :func:`hmac.compare_digest`, whose time does not depend on
@@ -77,6 +81,10 @@ def require_admin(request: Request, state: StateDep) -> None:
             detail="missing or wrong admin token: send 'Authorization: Bearer <token>'",
             headers={"WWW-Authenticate": "Bearer"},
         )
+
+
+async def require_admin(request: Request, state: StateDep) -> None:
+    check_admin(request, state)
 
 
 AdminDep = Annotated[None, Depends(require_admin)]

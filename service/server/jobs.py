@@ -30,8 +30,9 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
+import orjson
 
-from dueroute.planner.results import Improvement, snapped_point_dict
+from dueroute.planner.results import Improvement, ImprovementLog, snapped_point_dict
 from dueroute.planner.session import plan
 from dueroute.service.server.admission import Ticket
 
@@ -46,6 +47,10 @@ STREAM_BUFFER = 256
 #: dropped and counted, so even a full trace is bounded: about 1.3 MB of JSON).
 FULL_TRACE_MAX = 10_000
 
+#: The deadline a plan without search time runs with: it is past when the search opens, so the
+#: search answers with its instant route.
+INSTANT_DEADLINE_MS = 1e-3
+
 #: Byte estimates for the plan store's memory bound (measured with ``tracemalloc`` on
 #: CPython 3.11: one held improvement with its route summary is ~700 bytes of Python objects).
 IMPROVEMENT_BYTES = 700
@@ -58,6 +63,11 @@ ROUTE_RESERVE_BYTES = 64 * 1024
 
 # ------------------------------------------------------------------------------------------
 # Route geometry
+
+#: Decimal places of route coordinates: 1e-7 degrees is about 1 cm. RFC 7946 (section 11.2)
+#: notes that 6 places (about 10 cm) suffice and that extra precision only costs size; fewer
+#: digits also make the answer's JSON about twice as fast to write.
+COORD_DECIMALS = 7
 
 
 def route_feature(
@@ -101,8 +111,8 @@ def route_feature(
         coords = coords + [list(p) for p in end.coords[1:]]
     if len(coords) == 1:  # origin == destination: a single point, written twice
         coords = coords * 2
-    travel = float(np.sum(times[edges_a])) if edges_a.size else 0.0
-    length = float(np.sum(graph.length_m[edges_a])) if edges_a.size else 0.0
+    travel = float(np.asarray(times)[edges_a].sum()) if edges_a.size else 0.0
+    length = float(np.asarray(graph.length_m)[edges_a].sum()) if edges_a.size else 0.0
     for part in (start, end):
         if part is not None:
             travel += float(part.cost_s)
@@ -113,7 +123,7 @@ def route_feature(
         "properties": {
             "travel_time_s": travel,
             "length_m": length,
-            "node_ids": np.asarray(graph.osm_id[nodes_a]).tolist(),
+            "node_ids": np.asarray(graph.osm_id)[nodes_a].tolist(),
             "node_indices": nodes_a.tolist(),
             "start_partial": None if start is None else start.to_dict(),
             "end_partial": None if end is None else end.to_dict(),
@@ -122,32 +132,10 @@ def route_feature(
 
 
 def _full_edge_coords(graph: Any, nodes_a: np.ndarray, edges_a: np.ndarray) -> list[list[float]]:
-    lat, lon = graph.lat, graph.lon
-    if edges_a.shape[0] == 0:
-        return [[float(lon[nodes_a[0]]), float(lat[nodes_a[0]])]]
-    gptr = graph.geom_indptr
-    starts = np.asarray(gptr[edges_a], dtype=np.int64)
-    glen = np.asarray(gptr[edges_a + 1], dtype=np.int64) - starts
-    n_pts = edges_a.shape[0] + int(glen.sum()) + 1
-    out_lon = np.empty(n_pts)
-    out_lat = np.empty(n_pts)
-    # Edge i writes its tail at tail_pos[i], then its interior points; the final head last.
-    tail_pos = np.arange(edges_a.shape[0]) + np.concatenate(([0], np.cumsum(glen)[:-1]))
-    tails = nodes_a[:-1]
-    out_lon[tail_pos] = lon[tails]
-    out_lat[tail_pos] = lat[tails]
-    if int(glen.sum()):
-        interior_pos = np.repeat(tail_pos + 1, glen) + (
-            np.arange(int(glen.sum())) - np.repeat(np.cumsum(glen) - glen, glen)
-        )
-        src = np.repeat(starts, glen) + (
-            np.arange(int(glen.sum())) - np.repeat(np.cumsum(glen) - glen, glen)
-        )
-        out_lon[interior_pos] = graph.geom_lon[src]
-        out_lat[interior_pos] = graph.geom_lat[src]
-    out_lon[-1] = lon[nodes_a[-1]]
-    out_lat[-1] = lat[nodes_a[-1]]
-    coords: list[list[float]] = np.column_stack((out_lon, out_lat)).tolist()
+    # one compiled pass (the same with numpy array operations cost about 150 us a route)
+    coords: list[list[float]] = np.round(
+        graph.route_coords(nodes_a, edges_a), COORD_DECIMALS
+    ).tolist()
     return coords
 
 
@@ -368,9 +356,9 @@ class PlanJob:
             "controller": self.controller,
             "policy_sha256": self.policy_sha256,
             "deadline_ms": self.deadline_ms,
-            "timings": self.timings(),
             **traffic_fields(self.costs),
             "error": error,
+            "timings": self.timings(),  # last: see with_timings
         }
 
     def current_json(self) -> bytes:
@@ -419,7 +407,24 @@ def _gap(cost: float | None, bound: float) -> float | None:
 
 
 def dumps(obj: Any) -> bytes:
-    return json.dumps(obj, separators=(",", ":"), allow_nan=False).encode()
+    """Compact JSON (orjson: writing an answer's coordinates with the standard library took
+    most of the service's time outside the search). A non-finite float is written ``null``."""
+    return orjson.dumps(obj, option=orjson.OPT_SERIALIZE_NUMPY)
+
+
+_TIMINGS_KEY = b',"timings":'
+
+
+def with_timings(body: bytes, timings: dict[str, float]) -> bytes:
+    """A plan's JSON with its ``timings`` replaced, without encoding the rest again.
+
+    Every plan dict ends with its ``timings`` (a flat object), so the encoded plan ends with
+    ``,"timings":{...}}``; the answer's total time is known only when it is sent.
+    """
+    at = body.rfind(_TIMINGS_KEY)
+    if at < 0 or not body.endswith(b"}}"):
+        raise ValueError("not a plan's JSON: no trailing timings object")
+    return body[:at] + _TIMINGS_KEY + dumps(timings) + b"}"
 
 
 # ------------------------------------------------------------------------------------------
@@ -480,32 +485,51 @@ class PlanningEngine:
                 # version is a new snapshot, so publishing one never pauses this search).
                 if self.traffic is not None:
                     job.costs = self.traffic.current
-                # Deadline counted from arrival: the search ends at job.search_deadline_s.
                 origin = job.origin if job.origin is not None else job.origin_node
                 destination = (
                     job.destination if job.destination is not None else job.destination_node
                 )
                 assert origin is not None and destination is not None
+                # Deadline counted from arrival. An instant-lane plan stops at its first route
+                # (its ticket says "stop" once one is found): the instant route at once, else
+                # the greedy search's first route, by the deadline at the latest.
+                deadline_ms = max(
+                    INSTANT_DEADLINE_MS, (job.search_deadline_s - job.arrival_s) * 1000.0
+                )
                 result = plan(
                     self.planner,
                     origin,
                     destination,
-                    deadline_ms=(job.search_deadline_s - job.arrival_s) * 1000.0,
+                    deadline_ms=deadline_ms,
                     controller=self.make_controller(
                         job.controller_spec or job.controller, job.policy
                     ),
                     steps=self.steps,
                     on_improvement=lambda imp: self._record(job, imp),
-                    cancel=ticket.cancel,
+                    cancel=ticket,  # also where the scheduler preempts the search
                     started_at=job.arrival_s,
                     gap_target=job.gap_target,
                     costs=job.costs,
+                    # a stored plan shows every improvement as it comes (GET, the event
+                    # stream); a waited one answers once, so its search never stops for them
+                    every_improvement=job.kept or ticket.instant_only,
                 )
                 status = str(result.status)
+                if ticket.instant_only and status == "cancelled" and not ticket.cancel.is_set():
+                    status = job.interim_status()  # stopped at its first route, as asked
         except Exception as exc:
             log.exception("search failed", extra={"plan_id": job.plan_id})
+            self._end_search(ticket)
             return self.fail(job, f"the search failed: {type(exc).__name__}: {exc}")
+        self._end_search(ticket)
         return self.finish(job, status, result)
+
+    @staticmethod
+    def _end_search(ticket: Ticket) -> None:
+        """Give the CPU slot back before building the answer (next search starts now)."""
+        scheduler = ticket._scheduler
+        if scheduler is not None:
+            scheduler.end_search(ticket)
 
     def _record(self, job: PlanJob, imp: Improvement) -> None:
         """Called in the search thread on every improvement (counts against the deadline)."""
@@ -531,6 +555,10 @@ class PlanningEngine:
         job.best_bound_s = entry["lower_bound_s"] or 0.0
         job.expansions = entry["expansions"]
         job.add_improvement(entry)
+        if job.ticket is not None and nodes is not None:
+            job.ticket.route_found = True
+            if job.ticket.instant_only:
+                job.ticket.poke()  # it stops at its first route: now
         job.notify()
 
     def finish(self, job: PlanJob, status: str, result: Any) -> dict[str, Any]:
@@ -572,13 +600,13 @@ class PlanningEngine:
             "controller": job.controller,
             "policy_sha256": job.policy_sha256,
             "deadline_ms": job.deadline_ms,
-            "timings": job.timings(),
             **traffic_fields(job.costs),
             "error": error,
+            "timings": job.timings(),  # last: see with_timings
         }
         try:
             body = dumps(final)
-        except ValueError:  # a non-finite number slipped into the improvements: list none
+        except (TypeError, ValueError):  # something unwritable in the improvements: list none
             final["improvements"] = []
             final["improvements_dropped"] = job.improvement_count
             body = dumps(final)
@@ -621,9 +649,14 @@ class PlanningEngine:
             if bound is None:
                 bound = job.best_bound_s
             gap = _float_or_none(result.gap)
-            listed = list(result.improvements[-limit:]) if limit else []
-            improvements = [improvement_dict(i) for i in listed]
-            dropped = len(result.improvements) - len(listed)
+            found = result.improvements
+            if not limit:
+                improvements = []
+            elif isinstance(found, ImprovementLog):
+                improvements = found.published(limit)
+            else:
+                improvements = [improvement_dict(i) for i in list(found[-limit:])]
+            dropped = len(found) - len(improvements)
             expansions = int(result.expansions)
         else:
             feature = job.best_route()
@@ -650,7 +683,7 @@ class PlanningEngine:
             "controller": job.controller,
             "policy_sha256": job.policy_sha256,
             "deadline_ms": job.deadline_ms,
-            "timings": job.timings(),
             **traffic_fields(job.costs),
             "error": None,
+            "timings": job.timings(),  # last: see with_timings
         }

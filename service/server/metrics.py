@@ -52,6 +52,19 @@ class ServiceMetrics:
         self.sheds = Counter(
             "dueroute_sheds", "Requests refused by admission control (503)", registry=r
         )
+        self.refusals = Counter(
+            "dueroute_refusals",
+            "Plan requests refused before a search: below the service's floor (floor), over "
+            "a caller's limits (caller_plans, caller_cpu), above an anonymous cap (anonymous), "
+            "an unknown API key (api_key)",
+            ["reason"],
+            registry=r,
+        )
+        self.disconnects = Counter(
+            "dueroute_client_disconnects",
+            "wait=true plans whose client hung up before the answer (their search stopped)",
+            registry=r,
+        )
         self.late_answers = Counter(
             "dueroute_late_answers",
             "Answers built later than arrival + deadline_ms + DUEROUTE_DEADLINE_TOLERANCE_MS",

@@ -103,17 +103,82 @@ class Settings(BaseSettings):
         description="an accepted request is answered by arrival + deadline_ms + this",
     )
     response_headroom_ms: float = Field(
-        default=2.0,
+        default=1.0,
         ge=0,
         le=1000,
-        description="the search stops this long before the deadline to leave time to "
-        "build and send the answer",
+        description="what the service assumes it needs after a search (build and send the "
+        "answer) until it has measured it; from then on the search stops the measured 95th "
+        "percentile before the deadline",
     )
     min_search_ms: float = Field(
         default=5.0,
         ge=0,
-        description="a request that could not search at least this long before its "
-        "deadline is shed with 503 (admission control)",
+        description="a plan that could not search at least this long (or half its deadline, "
+        "if shorter) gets only the instant route, or 503 when that lane is full too",
+    )
+    max_in_flight: int | None = Field(
+        default=None,
+        ge=1,
+        le=4096,
+        description="admitted plans not yet finished (running, preempted or waiting), each on "
+        "a thread of its own; unset: 16 per worker. Above it requests get 503",
+    )
+    header_timeout_s: float = Field(
+        default=5.0,
+        gt=0,
+        le=600,
+        description="a connection must send a request's headers within this long (408 and "
+        "closed otherwise)",
+    )
+    body_timeout_s: float = Field(
+        default=10.0,
+        gt=0,
+        le=600,
+        description="a request's body must arrive within this long after its headers (408)",
+    )
+    max_connections: int = Field(
+        default=1000,
+        ge=8,
+        le=1_000_000,
+        description="open connections the service keeps; a new one above it gets 503 and is "
+        "closed (keep it below the process's descriptor limit)",
+    )
+    api_keys_file: Path | None = Field(
+        default=None,
+        description="file of API keys, one 'name:key' per line: a request sending one in "
+        "X-API-Key is that caller; without a key a caller is its client address (anonymous)",
+    )
+    caller_max_plans: int = Field(
+        default=8,
+        ge=1,
+        description="unfinished plans (waited or background) one caller may have at once (429)",
+    )
+    caller_cpu_ms_per_s: float | None = Field(
+        default=None,
+        gt=0,
+        description="search time one caller may use per second, in ms (a token bucket); "
+        "unset: 1000 per worker, i.e. the whole machine when no one else asks",
+    )
+    caller_cpu_burst_ms: float = Field(
+        default=4000.0,
+        gt=0,
+        description="the bucket's size: search time a caller may use at once after a pause",
+    )
+    anonymous_max_deadline_ms: int = Field(
+        default=30_000,
+        ge=1,
+        description="largest deadline_ms a caller without an API key may ask (403 above)",
+    )
+    anonymous_slow_max_ms: int = Field(
+        default=1_000,
+        ge=1,
+        description="largest deadline_ms a caller without an API key may ask with a slow "
+        "controller (fixed weights above anonymous_max_weight, and random)",
+    )
+    anonymous_max_weight: float = Field(
+        default=2.0,
+        ge=1.0,
+        description="fixed weights above this count as slow controllers for anonymous callers",
     )
     worker_nice: int = Field(
         default=10,

@@ -39,6 +39,8 @@ async def readyz(state: StateDep) -> JSONResponse:
     detail = {
         "admission": state.admission.snapshot(),
         "plan_store": state.plans.stats(),
+        "floor": state.floor.snapshot(),
+        "callers": state.callers.snapshot(),
         "loop_lag_ms": round(state.loop_lag.estimate_ms(), 3),
         **state.warmup,
     }

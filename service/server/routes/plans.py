@@ -1,14 +1,23 @@
 """``/v1/plans``: plan a route by a deadline (wait, background, event stream, cancel).
 
-Deadline arithmetic (all ``time.perf_counter`` seconds; ``arrival_s`` is stamped by the edge
-middleware as soon as the request reaches the app):
+Deadline arithmetic (all ``time.perf_counter`` seconds). ``arrival_s`` is when the request's
+first byte was read (:mod:`dueroute.service.server.http_edge`):
 
-* search deadline = arrival + deadline_ms - headroom, headroom = ``response_headroom_ms`` +
-  the event loop's current timer lag (:class:`service.admission.LoopLag`): the search stops
-  there, wherever it started, leaving time to build and send the answer;
-* watchdog = arrival + deadline_ms - loop lag: if the search has not returned by then (it
-  overran its deadline), the handler cancels it and answers with the best route found so
-  far, so an accepted request is answered by arrival + deadline_ms + ``deadline_tolerance_ms``.
+* a deadline below the service's measured floor (:class:`ResponseFloor`: the time a plan needs
+  outside its search, 95th percentile) is refused at once with 503 naming the floor;
+* search deadline = arrival + deadline_ms - the measured time after a search (build the route
+  and the JSON, send it): the search stops there, wherever it started;
+* the plan searches only while it holds a CPU slot (:mod:`dueroute.service.server.admission`:
+  EDF, preemption, the instant lane), so it answers by its deadline with at least the instant
+  route;
+* watchdog = arrival + deadline_ms + 1 ms: if a starved search has not returned by then, the
+  handler cancels it and answers with the best route found so far (counted in a metric);
+* a waiting client that hangs up cancels its search (it stops within
+  ``planner.session.CANCEL_CHECK_S``) and frees its slot.
+
+``POST /v1/plans`` is served by :func:`serve_create_plan`, a lean ASGI handler the app calls
+before the framework's layers; the FastAPI route below runs the same :func:`answer_plan` and
+publishes the OpenAPI description.
 """
 
 from __future__ import annotations
@@ -17,7 +26,8 @@ import asyncio
 import contextlib
 import logging
 import time
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Awaitable, Callable, MutableMapping
+from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from typing import Any
 
@@ -28,13 +38,22 @@ from pydantic import ValidationError
 from dueroute.planner.errors import InvalidRequest, NodeNotFound
 from dueroute.planner.snap import RoadSnap, snap_to_road
 from dueroute.service.server.admission import Shed
+from dueroute.service.server.callers import API_KEY_HEADER, Caller, CallerRefused
 from dueroute.service.server.deps import AppState, StateDep
+from dueroute.service.server.http_edge import (
+    BodyTimeout,
+    BodyTooLarge,
+    Disconnected,
+    read_body,
+    wait_disconnect,
+)
 from dueroute.service.server.jobs import (
     FULL_TRACE_MAX,
     STREAM_BUFFER,
     PlanJob,
     dumps,
     reserve_bytes,
+    with_timings,
 )
 from dueroute.service.server.json_body import BodyError, check_media_type, parse_json
 from dueroute.service.server.messages import validation_message
@@ -48,8 +67,16 @@ from dueroute.service.server.schemas import (
     PlanRequest,
 )
 
+Message = MutableMapping[str, Any]
+Receive = Callable[[], Awaitable[Message]]
+Send = Callable[[Message], Awaitable[None]]
+
+#: The watchdog fires this long after the deadline (the search itself ends before it).
+WATCHDOG_SLACK_S = 0.001
+
 router = APIRouter(tags=["plans"])
 log = logging.getLogger("dueroute.service.plans")
+log_edge = logging.getLogger("dueroute.service")  # the request log of every endpoint
 
 _RESPONSES: dict[int | str, dict[str, Any]] = {
     **RESPONSES_4XX,
@@ -59,11 +86,24 @@ _RESPONSES: dict[int | str, dict[str, Any]] = {
         "description": "wait=true: the plan failed (the text says what failed); the service "
         "goes on serving other plans",
     },
+    401: {"model": ErrorBody, "description": "X-API-Key names no key this service knows"},
+    403: {
+        "model": ErrorBody,
+        "description": "above a cap for anonymous callers (deadline, slow controllers); an "
+        "API key lifts it",
+    },
+    408: {"model": ErrorBody, "description": "the body did not arrive in time"},
+    429: {
+        "model": ErrorBody,
+        "description": "this caller is over its limit of plans at once or of search time "
+        "per second (Retry-After says when to retry)",
+    },
     503: {
         "model": ErrorBody,
-        "description": "shed by admission control or the plan store is full (Retry-After "
-        "says when to retry), still warming up (Retry-After: 1), or the graph could not be "
-        "loaded (no Retry-After: it will not pass by retrying)",
+        "description": "the deadline is below the service's floor (the text names it), "
+        "shed by admission control or the plan store is full (Retry-After says when to "
+        "retry), still warming up (Retry-After: 1), or the graph could not be loaded (no "
+        "Retry-After: it will not pass by retrying)",
     },
 }
 
@@ -107,90 +147,140 @@ class _PlaceError(Exception):
         self.status = status
 
 
-async def _read_request(request: Request, state: AppState) -> PlanRequest | JSONResponse:
-    """The request body as a :class:`PlanRequest`, or the 400/415/422 answer saying why not."""
+@dataclass
+class Answer:
+    """One answer to ``POST /v1/plans``: status, headers, JSON body, and what to log."""
+
+    status: int
+    body: bytes
+    headers: dict[str, str] = field(default_factory=dict)
+    job: PlanJob | None = None
+    log: dict[str, Any] = field(default_factory=dict)
+
+
+def _refusal(
+    status: int, detail: str, retry_after_s: int | None = None, **log_fields: Any
+) -> Answer:
+    headers = {"Retry-After": str(retry_after_s)} if retry_after_s is not None else {}
+    return Answer(status, dumps({"detail": detail}), headers, log=log_fields)
+
+
+def _read_plan_request(
+    state: AppState, content_type: str | None, raw: bytes
+) -> PlanRequest | Answer:
+    """The body as a :class:`PlanRequest`, or the 400/415/422 answer saying why not."""
     try:
-        check_media_type(request.headers.get("content-type"), "application/json")
-        data = parse_json(await request.body())
+        check_media_type(content_type, "application/json")
+        data = parse_json(raw)
     except BodyError as exc:
-        return _error(exc.status, exc.detail)
+        return _refusal(exc.status, exc.detail)
     try:
         return PlanRequest.model_validate(data)
     except ValidationError as exc:
-        return _error(422, validation_message(list(exc.errors()), state.settings))
+        return _refusal(422, validation_message(list(exc.errors()), state.settings))
 
 
-@router.post(
-    "/v1/plans",
-    operation_id="create_plan",
-    response_model=Plan,
-    responses=_RESPONSES,
-    summary="Plan a route answered by the deadline (or in the background)",
-    description="With wait=true (the default) the answer is the plan, by arrival + "
-    "deadline_ms + the documented tolerance; it is stored for GET only with keep=true. With "
-    "wait=false the plan runs in the background (202): poll GET /v1/plans/{plan_id} or stream "
-    "/v1/plans/{plan_id}/events; it is kept background_ttl_s after it finishes. The body must "
-    "be application/json: numbers as JSON numbers, each key once.",
-)
-async def create_plan(request: Request, state: StateDep) -> Response:
-    arrival_s: float = getattr(request.state, "arrival_s", None) or time.perf_counter()
+async def answer_plan(
+    state: AppState,
+    arrival_s: float,
+    content_type: str | None,
+    raw: bytes,
+    api_key: str | None,
+    client_host: str | None,
+    receive: Receive | None,
+) -> Answer | None:
+    """Everything of ``POST /v1/plans`` between the body and the bytes sent back.
+
+    ``receive`` (the ASGI receive of the request, its body read) is watched for the client
+    hanging up while a waited plan runs: then the search is cancelled and None returned.
+    """
     settings = state.settings
     metrics = state.metrics
-    body = await _read_request(request, state)
-    if isinstance(body, JSONResponse):
+    body = _read_plan_request(state, content_type, raw)
+    if isinstance(body, Answer):
         metrics.plans.labels(outcome="rejected").inc()
         return body
     if not state.ready or state.engine is None:
         metrics.plans.labels(outcome="not_ready").inc()
         if state.warmup_error is not None:  # permanent until the operator fixes it
-            return _error(
+            return _refusal(
                 503,
                 f"not ready: the service could not load its graph ({state.warmup_error}); "
                 "retrying will not help: the operator must fix the graph and restart",
             )
-        return _error(
+        return _refusal(
             503,
             "not ready: the service is warming up (loading the graph, JIT compile); retry shortly",
             retry_after_s=1,
         )
     if body.deadline_ms > settings.max_deadline_ms:
         metrics.plans.labels(outcome="rejected").inc()
-        return _error(
+        return _refusal(
             422,
             f"deadline_ms: {body.deadline_ms} is above this service's maximum "
             f"(allowed: an integer number of milliseconds, 1..{settings.max_deadline_ms})",
+        )
+    try:
+        caller = state.callers.identify(api_key, client_host)
+        state.callers.check_request(caller, body.deadline_ms, body.controller)
+    except CallerRefused as exc:
+        reason = "api_key" if exc.status == 401 else "anonymous"
+        metrics.refusals.labels(reason=reason).inc()
+        metrics.plans.labels(outcome="rejected").inc()
+        return _refusal(exc.status, str(exc), exc.retry_after_s, outcome=reason)
+    floor_ms = state.floor.floor_ms()
+    if body.deadline_ms < floor_ms:
+        metrics.refusals.labels(reason="floor").inc()
+        metrics.plans.labels(outcome="shed").inc()
+        return _refusal(
+            503,
+            f"deadline_ms {body.deadline_ms} is below this service's floor of {floor_ms:.2f} ms "
+            "(the time a plan takes here outside its search: reading, snapping, dispatching, "
+            "building and sending the answer; 95th percentile of the last seconds), so it "
+            f"cannot be honoured; ask deadline_ms >= {int(floor_ms) + 1}",
+            retry_after_s=1,
+            outcome="below_floor",
         )
     try:
         origin = _resolve(state, body.origin, "origin")
         destination = _resolve(state, body.destination, "destination")
     except _PlaceError as exc:
         metrics.plans.labels(outcome="rejected").inc()
-        return _error(exc.status, str(exc))
+        return _refusal(exc.status, str(exc))
 
     kept = not body.wait or body.keep
     listed = FULL_TRACE_MAX if body.full_trace else settings.improvements_listed
     trace_limit = max(listed, STREAM_BUFFER) if kept else listed
-    # Headroom = the configured time to build and send the answer + how late the event loop
-    # runs timers right now (it will be that late to answer too). Short deadlines scale it
-    # down, so a 1 ms request on an idle service is served (searching 0.6 ms), not refused.
-    lag_ms = state.loop_lag.estimate_ms()
-    headroom_ms = min(settings.response_headroom_ms + lag_ms, 0.4 * body.deadline_ms)
-    budget_ms = body.deadline_ms - headroom_ms
-    search_deadline_s = arrival_s + budget_ms / 1000.0
-    min_search_s = min(settings.min_search_ms, 0.5 * budget_ms) / 1000.0
+    # The search stops the measured answer time before the deadline (a waited plan; a
+    # background plan has no answer to send, but reads the same way).
+    after_s = state.floor.after_s()
+    search_deadline_s = arrival_s + max(0.0, body.deadline_ms / 1000.0 - after_s)
+    budget_s = search_deadline_s - arrival_s
+    min_search_s = min(settings.min_search_ms / 1000.0, 0.5 * budget_s)
+    try:
+        state.callers.acquire(caller)
+    except CallerRefused as exc:
+        reason = "caller_plans" if "at once" in str(exc) else "caller_cpu"
+        metrics.refusals.labels(reason=reason).inc()
+        metrics.plans.labels(outcome="shed").inc()
+        return _refusal(exc.status, str(exc), exc.retry_after_s, outcome=reason)
     try:
         if kept:  # room first: a stored plan is never dropped to make room later
             state.plans.check_room(reserve_bytes(trace_limit))
-        ticket = state.admission.admit(arrival_s, search_deadline_s, min_search_s)
+        ticket = state.admission.admit(
+            arrival_s, search_deadline_s, min_search_s, caller.label, instant_lane=body.wait
+        )
     except (Shed, StoreFull) as exc:
+        state.callers.release(caller, 0.0)
         outcome = "store_full" if isinstance(exc, StoreFull) else "shed"
         metrics.plans.labels(outcome=outcome).inc()
         if isinstance(exc, StoreFull):
             metrics.store_refusals.labels(limit=exc.limit).inc()
         else:
             metrics.sheds.inc()
-        request.state.log = {"outcome": outcome, "deadline_ms": body.deadline_ms}
-        return _error(503, str(exc), retry_after_s=exc.retry_after_s)
+        return _refusal(
+            503, str(exc), exc.retry_after_s, outcome=outcome, deadline_ms=body.deadline_ms
+        )
 
     active = state.policies.active  # the plan keeps this snapshot even if a swap happens
     uses_policy = body.controller == "learned" and active.policy is not None
@@ -222,7 +312,7 @@ async def create_plan(request: Request, state: StateDep) -> Response:
         metrics.background.set(len(state.plans))
     engine = state.engine
     job.future = state.admission.submit(ticket, lambda t: engine.run(job, t))
-    metrics.queued.set(state.admission.queued)
+    job.future.add_done_callback(lambda _f: _plan_done(state, caller, job))
 
     if not body.wait:
         url = f"/v1/plans/{job.plan_id}"
@@ -232,53 +322,197 @@ async def create_plan(request: Request, state: StateDep) -> Response:
             "links": {"self": url, "events": f"{url}/events"},
         }
         metrics.plans.labels(outcome="accepted_background").inc()
-        request.state.log = {"plan_id": job.plan_id, "outcome": "accepted_background"}
-        return _json(accepted, status=202, headers={"Location": url})
-
-    # The watchdog is a timer too: set it the current loop lag early (never before the search
-    # deadline) so that it fires by the deadline.
-    answer_by_s = max(search_deadline_s, arrival_s + (body.deadline_ms - lag_ms) / 1000.0)
-    waiter = asyncio.wrap_future(job.future)
-    try:
-        await asyncio.wait_for(
-            asyncio.shield(waiter), timeout=max(0.0, answer_by_s - time.perf_counter())
+        return Answer(
+            202,
+            dumps(accepted),
+            {"Location": url},
+            job=job,
+            log={"plan_id": job.plan_id, "outcome": "accepted_background"},
         )
-        result = dict(job.final or job.current())
-    except TimeoutError:
-        # The search overran its deadline (or never got a worker): stop it and answer with
-        # what it has now. A plan still queued gives its queue place back at once.
-        ticket.cancel.set()
-        if job.future.cancel():
-            state.admission.release(ticket)
-            engine.finish(job, job.interim_status(), None)
-        # The worker may finish while this snapshot is taken: a waiting caller never gets
-        # a "running" plan, whichever side won.
+
+    answer_by_s = arrival_s + body.deadline_ms / 1000.0 + WATCHDOG_SLACK_S
+    waiter = asyncio.wrap_future(job.future)
+    watch = asyncio.ensure_future(wait_disconnect(receive)) if receive is not None else None
+    try:
+        waits: set[asyncio.Future[Any]] = {waiter} if watch is None else {waiter, watch}
+        await asyncio.wait(
+            waits,
+            timeout=max(0.0, answer_by_s - time.perf_counter()),
+            return_when=asyncio.FIRST_COMPLETED,
+        )
+    finally:
+        if watch is not None and not watch.done():
+            watch.cancel()
+    if watch is not None and watch.done() and not watch.cancelled() and not job.finished:
+        # The client hung up: stop the search now and give its slot back.
+        ticket.request_cancel()
+        job.release_final()
+        metrics.disconnects.inc()
+        metrics.plans.labels(outcome="disconnected").inc()
+        return None
+    if job.finished:
+        result = job.final or job.current()
+        encoded = job.final_json
+    else:
+        # The search overran its deadline (a starved thread): stop it and answer with what
+        # it has now. The worker may finish while this snapshot is taken: a waiting caller
+        # never gets a "running" plan, whichever side won.
+        ticket.request_cancel()
         result = dict(job.current())
         if result["status"] == "running":
             result["status"] = job.interim_status()
+        encoded = None
         metrics.watchdog.inc()
     job.release_final()
     now = time.perf_counter()
     timings = dict(result["timings"])
     timings["total_ms"] = (now - arrival_s) * 1000.0
-    result["timings"] = timings
-    _observe(state, job, result, now)
-    request.state.log = {
+    _observe(state, job, result, timings, now)
+    log_fields = {
         "plan_id": job.plan_id,
         "outcome": result["status"],
         "deadline_ms": body.deadline_ms,
         "queue_ms": round(timings["queue_ms"], 3),
         "search_ms": round(timings["search_ms"], 3),
         "gap": result["gap"],
+        "caller": caller.label,
     }
     if result["status"] == "error":
-        request.state.log["error"] = result["error"]
-        return _error(
+        log_fields["error"] = result["error"]
+        return _refusal(
             500,
             f"plan {job.plan_id} failed: {result['error']}. The service goes on serving; "
             "this is a fault of the service or its graph, not of the request",
+            **log_fields,
         )
-    return _json(result, headers={"Server-Timing": _server_timing(timings)})
+    if encoded is not None:
+        content = with_timings(encoded, timings)
+    else:
+        content = dumps({**result, "timings": timings})
+    return Answer(200, content, {"Server-Timing": _server_timing(timings)}, job=job, log=log_fields)
+
+
+def _plan_done(state: AppState, caller: Caller, job: PlanJob) -> None:
+    """On the search thread, when a plan's run ended: charge its caller, learn the floor."""
+    ticket = job.ticket
+    assert ticket is not None
+    state.callers.release(caller, ticket.slot_s)
+    if ticket.started_s is not None and not ticket.waited and not ticket.instant_only:
+        state.floor.record_before(ticket.started_s, ticket.started_s - job.arrival_s)
+
+
+def _headers(scope: Message) -> tuple[str | None, str | None]:
+    content_type = api_key = None
+    for key, value in scope.get("headers", ()):
+        if key == b"content-type":
+            content_type = value.decode("latin-1")
+        elif key == API_KEY_HEADER.encode():
+            api_key = value.decode("latin-1")
+    return content_type, api_key
+
+
+async def serve_create_plan(state: AppState, scope: Message, receive: Receive, send: Send) -> None:
+    """``POST /v1/plans`` as a plain ASGI handler (see the module docstring)."""
+    arrival_s = scope.get("state", {}).get("arrival_s") or time.perf_counter()
+    settings = state.settings
+    content_type, api_key = _headers(scope)
+    client = scope.get("client")
+    answer: Answer | None
+    try:
+        raw = await read_body(receive, settings.max_body_bytes, settings.body_timeout_s)
+    except Disconnected:
+        return
+    except BodyTimeout:
+        answer = _refusal(
+            408, f"the request's body did not arrive within {settings.body_timeout_s:g} s"
+        )
+        answer.headers["Connection"] = "close"
+    except BodyTooLarge as exc:
+        answer = _refusal(413, str(exc))
+        answer.headers["Connection"] = "close"
+    else:
+        try:
+            answer = await answer_plan(
+                state,
+                arrival_s,
+                content_type,
+                raw,
+                api_key,
+                client[0] if client else None,
+                receive,
+            )
+        except Exception as exc:
+            log.exception("unhandled error", extra={"path": "/v1/plans"})
+            answer = _refusal(500, f"internal error ({type(exc).__name__}); see the service log")
+    if answer is None:  # the client hung up
+        _log_request(arrival_s, 499, {"outcome": "disconnected"})
+        return
+    headers = [
+        (b"content-type", b"application/json"),
+        (b"content-length", str(len(answer.body)).encode()),
+    ]
+    headers += [(k.lower().encode(), v.encode()) for k, v in answer.headers.items()]
+    await send({"type": "http.response.start", "status": answer.status, "headers": headers})
+    await send({"type": "http.response.body", "body": answer.body})
+    sent_s = time.perf_counter()
+    job = answer.job
+    if job is not None and job.search_end_s is not None and answer.status == 200:
+        state.floor.record_after(sent_s, sent_s - job.search_end_s)
+    _log_request(arrival_s, answer.status, answer.log, sent_s)
+
+
+def _log_request(
+    arrival_s: float, status: int, fields: dict[str, Any], now_s: float | None = None
+) -> None:
+    if log_edge.isEnabledFor(logging.INFO):
+        now = time.perf_counter() if now_s is None else now_s
+        line = {
+            "method": "POST",
+            "path": "/v1/plans",
+            "status": status,
+            "duration_ms": round((now - arrival_s) * 1000.0, 3),
+        }
+        line.update(fields)
+        log_edge.info("request", extra=line)
+
+
+@router.post(
+    "/v1/plans",
+    operation_id="create_plan",
+    response_model=Plan,
+    responses=_RESPONSES,
+    summary="Plan a route answered by the deadline (or in the background)",
+    description="With wait=true (the default) the answer is the plan, by arrival + "
+    "deadline_ms + the documented tolerance, and it always carries a route for a reachable "
+    "pair (the instant route when there was no time to search: status instant); it is "
+    "stored for GET only with keep=true. A deadline below the service's measured floor is "
+    "refused with 503 naming it. With wait=false the plan runs in the background (202): poll "
+    "GET /v1/plans/{plan_id} or stream /v1/plans/{plan_id}/events; it is kept "
+    "background_ttl_s after it finishes. Callers are told apart by X-API-Key (optional) or "
+    "their address, each with limits (429). The body must be application/json: numbers as "
+    "JSON numbers, each key once.",
+)
+async def create_plan(request: Request, state: StateDep) -> Response:
+    """The same handler behind the framework (the app serves this path itself first)."""
+    arrival_s: float = getattr(request.state, "arrival_s", None) or time.perf_counter()
+    answer = await answer_plan(
+        state,
+        arrival_s,
+        request.headers.get("content-type"),
+        await request.body(),
+        request.headers.get(API_KEY_HEADER),
+        request.client.host if request.client else None,
+        request.receive,
+    )
+    if answer is None:
+        return Response(status_code=499)
+    request.state.log = answer.log
+    return Response(
+        answer.body,
+        status_code=answer.status,
+        media_type="application/json",
+        headers=answer.headers,
+    )
 
 
 def _server_timing(timings: dict[str, float]) -> str:
@@ -288,12 +522,14 @@ def _server_timing(timings: dict[str, float]) -> str:
     )
 
 
-def _observe(state: AppState, job: PlanJob, result: dict[str, Any], now_s: float) -> None:
+def _observe(
+    state: AppState, job: PlanJob, result: dict[str, Any], timings: dict[str, float], now_s: float
+) -> None:
     m = state.metrics
     m.plans.labels(outcome=result["status"]).inc()
     total_s = now_s - job.arrival_s
     m.latency.observe(total_s)
-    m.overhead.observe(max(0.0, total_s - result["timings"]["search_ms"] / 1000.0))
+    m.overhead.observe(max(0.0, total_s - timings["search_ms"] / 1000.0))
     late_ms = (total_s - job.deadline_ms / 1000.0) * 1000.0
     m.late.observe(max(0.0, late_ms) / 1000.0)
     if late_ms > state.settings.deadline_tolerance_ms:  # the promise broken: count and say so
@@ -304,7 +540,6 @@ def _observe(state: AppState, job: PlanJob, result: dict[str, Any], now_s: float
         )
     if result.get("gap") is not None:
         m.gap.observe(result["gap"])
-    m.queued.set(state.admission.queued)
 
 
 def _gone(plan_id: str, lookup: Lookup, state: AppState) -> JSONResponse:
@@ -367,7 +602,8 @@ async def cancel_plan(plan_id: str, state: StateDep) -> Response:
     if job is None:
         return _gone(plan_id, lookup, state)
     if not job.finished:
-        job.cancel.set()
+        assert job.ticket is not None
+        job.ticket.request_cancel()
         if job.future is not None and job.future.cancel():
             # Never started: finish it here and give its queue slot back.
             assert job.ticket is not None and state.engine is not None

@@ -17,7 +17,7 @@ from fastapi.responses import JSONResponse
 from pydantic import BaseModel, ConfigDict, Field
 
 from dueroute.planner.traffic import TrafficDocumentError
-from dueroute.service.server.deps import AppState, StateDep, require_admin
+from dueroute.service.server.deps import AppState, StateDep, check_admin
 from dueroute.service.server.schemas import ErrorBody
 
 router = APIRouter(tags=["traffic"])
@@ -89,10 +89,10 @@ _ADMIN_RESPONSES: dict[int | str, dict[str, Any]] = {
 }
 
 
-def require_traffic_admin(request: Request, state: StateDep) -> None:
+async def require_traffic_admin(request: Request, state: StateDep) -> None:
     """The policy endpoints' bearer-token check, with a message that names traffic."""
     try:
-        require_admin(request, state)
+        check_admin(request, state)
     except HTTPException as exc:
         if exc.status_code == 404:
             raise HTTPException(
