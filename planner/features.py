@@ -35,7 +35,18 @@ index  name                          meaning (range)
                                      (1 before the first route; [0, 1])
 13     ``cpu_share_last_step``       CPU time the search received / wall time of the last
                                      step (1 under expansion budgets; [0, 1])
+14     ``time_left_log``             log10(1 + wall-clock ms left before the deadline) / 2;
+                                     0 under an expansion budget ([0, 2])
+15     ``expansion_rate_log``        log10(1 + expansions per CPU second so far) / 7: how fast
+                                     this machine searches this query ([0, 1.5])
+16     ``affordable_log``            log10(1 + time left x rate x CPU share) / 6: the
+                                     expansions the time left buys at the measured rate and
+                                     CPU share ([0, 2])
 =====  ============================  =========================================================
+
+Schema 2 added 14-16 (schema 1 had 0-13 only): with them a policy sees the deadline in
+absolute terms, the machine's speed and the CPU it gets, not only the contract's fraction, so
+one policy can serve short and long deadlines on a busy or a quiet machine.
 """
 
 from __future__ import annotations
@@ -48,7 +59,7 @@ from numba import njit
 from dueroute.planner.results import STATS_INDEX, SearchStats
 
 #: Bumped whenever a feature is added, removed, reordered or computed differently.
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 
 #: Feature names in vector order (recorded in every policy file).
 FEATURE_NAMES: tuple[str, ...] = (
@@ -66,6 +77,9 @@ FEATURE_NAMES: tuple[str, ...] = (
     "improvements_log",
     "stale_share",
     "cpu_share_last_step",
+    "time_left_log",
+    "expansion_rate_log",
+    "affordable_log",
 )
 
 N_FEATURES = len(FEATURE_NAMES)
@@ -86,6 +100,9 @@ FEATURE_RANGES: tuple[tuple[float, float], ...] = (
     (0.0, 2.0),
     (0.0, 1.0),
     (0.0, 1.0),
+    (0.0, 2.0),
+    (0.0, 1.5),
+    (0.0, 2.0),
 )
 
 FEATURE_LOW = np.array([lo for lo, _ in FEATURE_RANGES], dtype=np.float32)
@@ -108,6 +125,8 @@ _S_IMPROVEMENTS = STATS_INDEX["improvements"]
 _S_STEPS_DONE = STATS_INDEX["steps_done"]
 _S_STEPS_SINCE = STATS_INDEX["steps_since_improvement"]
 _S_CPU_SHARE = STATS_INDEX["cpu_share_last_step"]
+_S_TIME_LEFT = STATS_INDEX["time_left_ms"]
+_S_RATE = STATS_INDEX["expansion_rate_per_s"]
 _LOW = FEATURE_LOW.astype(np.float64)
 _HIGH = FEATURE_HIGH.astype(np.float64)
 
@@ -150,7 +169,13 @@ def features_into(v, out):
     out[10] = incumbent_rel
     out[11] = math.log1p(max(v[_S_IMPROVEMENTS], 0.0)) / 3.0
     out[12] = stale
-    out[13] = _fin(v[_S_CPU_SHARE], 1.0)
+    cpu_share = _fin(v[_S_CPU_SHARE], 1.0)
+    out[13] = cpu_share
+    time_left_ms = max(_fin(v[_S_TIME_LEFT], 0.0), 0.0)
+    rate = max(_fin(v[_S_RATE], 0.0), 0.0)
+    out[14] = math.log10(1.0 + time_left_ms) / 2.0
+    out[15] = math.log10(1.0 + rate) / 7.0
+    out[16] = math.log10(1.0 + time_left_ms * 1e-3 * rate * max(cpu_share, 0.0)) / 6.0
     for i in range(out.shape[0]):
         x = out[i]
         if x < _LOW[i]:

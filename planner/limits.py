@@ -29,8 +29,11 @@ MAX_WEIGHT = WEIGHTS[-1]
 CONTROLLER_SPECS = ("learned", "decreasing", "ana", "random", "fixed:W")
 
 #: The controller a request gets when it names none (the command line, the HTTP API and the
-#: settings all use this one).
-DEFAULT_CONTROLLER = "decreasing"
+#: settings all use this one): the best over the served range (deadlines 2-50 ms x 1, 2, 4
+#: searches per core) in ``dueroute evaluate --served`` (policies/default.md). Plain A*; the
+#: shipped policy ties with it, because at these deadlines the service can afford it almost
+#: no decision (one costs ~250 us between search steps), so it runs the same search.
+DEFAULT_CONTROLLER = "fixed:1"
 
 #: Controller used for ``learned`` when no policy is active.
 FALLBACK_CONTROLLER = "decreasing"

@@ -219,6 +219,7 @@ STATS_FIELDS: tuple[str, ...] = (
     "done",
     "expansion_rate_per_s",
     "instant_only",
+    "time_left_ms",
 )
 STATS_INDEX = {name: i for i, name in enumerate(STATS_FIELDS)}
 STATS_LEN = len(STATS_FIELDS)
@@ -236,6 +237,10 @@ _INT_FIELDS = frozenset(
     ]
 )
 _BOOL_FIELDS = frozenset(["done", "instant_only"])
+#: Fields a keyword-built :class:`SearchStats` may leave out (0 then): ``time_left_ms`` is
+#: wall-clock time left under a deadline, 0 under an expansion budget (no clock to read,
+#: unless a simulation of deadlines sets it, see ``policies.env``).
+_OPTIONAL_FIELDS = frozenset(["expansion_rate_per_s", "instant_only", "time_left_ms"])
 
 
 class SearchStats:
@@ -278,9 +283,10 @@ class SearchStats:
         done: bool
         expansion_rate_per_s: float
         instant_only: bool
+        time_left_ms: float
 
     def __init__(self, *, mode: str = "weighted", **fields: Any) -> None:
-        missing = set(STATS_FIELDS) - set(fields) - {"expansion_rate_per_s", "instant_only"}
+        missing = set(STATS_FIELDS) - set(fields) - _OPTIONAL_FIELDS
         extra = set(fields) - set(STATS_FIELDS)
         if missing or extra:
             raise TypeError(

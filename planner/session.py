@@ -194,6 +194,7 @@ _V_TOUCHED = STATS_INDEX["nodes_touched"]
 _V_DONE = STATS_INDEX["done"]
 _V_RATE = STATS_INDEX["expansion_rate_per_s"]
 _V_INSTANT = STATS_INDEX["instant_only"]
+_V_TIME_LEFT = STATS_INDEX["time_left_ms"]
 _MODE_CODE = {"weighted": K.MODE_WEIGHTED, "ana": K.MODE_ANA}
 _EMPTY_I32 = np.zeros(0, dtype=np.int32)
 
@@ -1301,6 +1302,7 @@ class Search:
         else:
             assert self.deadline_ms is not None
             v[_V_FRAC] = max(0.0, 1.0 - elapsed_ms / self.deadline_ms)
+            v[_V_TIME_LEFT] = max(0.0, self.deadline_ms - elapsed_ms)
         v[_V_WEIGHT] = self.weight if math.isfinite(self.weight) else 1.0
         v[_V_STEPS_DONE] = self.steps_done
         v[_V_STEPS_SINCE] = self.steps_done - (

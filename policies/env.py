@@ -26,9 +26,19 @@ from dueroute.planner.graph import RoadGraph, great_circle_m
 from dueroute.planner.heuristics import largest_component_nodes
 from dueroute.planner.limits import DEFAULT_LANDMARKS, WEIGHTS
 from dueroute.planner.session import Planner, Search
+from dueroute.policies.calibrate import Calibration, load_calibration, measure_calibration
 from dueroute.policies.export import ACTION_KINDS, action_meanings
 
 ENV_ID = "dueroute/WeightControl-v0"
+
+#: Contract kinds of :class:`EnvConfig` ``regime``.
+REGIMES = ("budget", "deadline")
+
+#: Spread of the simulated measurements under regime ``deadline``: the CPU share a search
+#: reads is its share times U(0.9, 1.1) (the clock's noise), the expansion rate the calibrated
+#: rate times U(0.8, 1.25) per episode (queries differ in memory locality).
+SHARE_NOISE = (0.9, 1.1)
+RATE_NOISE = (0.8, 1.25)
 
 #: Resets redraw a query whose first (fixed-weight) step already ends the search, at most
 #: this many times, so every episode has at least one decision to make.
@@ -83,9 +93,59 @@ class EnvConfig:
         },
     )
     traffic_seed: int = field(default=7, metadata={"help": "seed of the random scenarios"})
+    regime: str = field(
+        default="budget",
+        metadata={
+            "help": "contracts: 'budget' searches every episode under budget_expansions; "
+            "'deadline' simulates the service: a deadline drawn log-uniformly from "
+            "deadline_ms_min..deadline_ms_max and a load from searches_per_core, turned into "
+            "expansions and decision steps by the calibration map"
+        },
+    )
+    deadline_ms_min: float = field(
+        default=1.0, metadata={"help": "shortest simulated deadline, regime 'deadline' (ms)"}
+    )
+    deadline_ms_max: float = field(
+        default=50.0, metadata={"help": "longest simulated deadline, regime 'deadline' (ms)"}
+    )
+    searches_per_core: str = field(
+        default="1,2,3,4",
+        metadata={
+            "help": "simulated loads, regime 'deadline': searches sharing a core, drawn "
+            "uniformly; a search gets 1/L of a core (comma list of integers)"
+        },
+    )
+    calibration: str = field(
+        default="",
+        metadata={
+            "help": "deadline-to-expansions map (JSON from 'dueroute bench calibrate --out'), "
+            "regime 'deadline'; '' = measure it on the training graph first"
+        },
+    )
+
+    @property
+    def loads(self) -> tuple[int, ...]:
+        """``searches_per_core`` as integers (checked in ``__post_init__``)."""
+        return tuple(int(x) for x in self.searches_per_core.split(",") if x.strip())
 
     def __post_init__(self) -> None:
         problems = []
+        if self.regime not in REGIMES:
+            problems.append(f"regime must be one of {REGIMES}, got {self.regime!r}")
+        if not (0 < self.deadline_ms_min <= self.deadline_ms_max <= 60_000):
+            problems.append(
+                "deadline_ms_min and deadline_ms_max must satisfy 0 < min <= max <= 60000, got "
+                f"{self.deadline_ms_min} and {self.deadline_ms_max}"
+            )
+        try:
+            loads = self.loads
+        except ValueError:
+            loads = ()
+        if not loads or any(not 1 <= x <= 64 for x in loads):
+            problems.append(
+                "searches_per_core must be a comma list of integers in 1..64, got "
+                f"{self.searches_per_core!r}"
+            )
         if self.budget_expansions < 1:
             problems.append(f"budget_expansions must be >= 1, got {self.budget_expansions}")
         if not 2 <= self.steps <= 1000:
@@ -256,7 +316,7 @@ class WeightControlEnv(gym.Env):
 
     Observation
     -----------
-    ``Box(FEATURE_LOW, FEATURE_HIGH, (14,), float32)``: :func:`planner.features.compute_features`
+    ``Box(FEATURE_LOW, FEATURE_HIGH, (17,), float32)``: :func:`planner.features.compute_features`
     of the search after the step (schema in :mod:`planner.features`):
 
     ===  ==========================  =====================================================
@@ -274,12 +334,29 @@ class WeightControlEnv(gym.Env):
     11   improvements_log            log(1 + routes found) / 3
     12   stale_share                 steps since the last new route / steps done
     13   cpu_share_last_step         see below
+    14   time_left_log               log10(1 + ms left) / 2 (regime ``deadline``; else 0)
+    15   expansion_rate_log          log10(1 + expansions per CPU second) / 7 (idem)
+    16   affordable_log              log10(1 + expansions the time left buys) / 6 (idem)
     ===  ==========================  =====================================================
 
-    Under an expansion budget the CPU share a step receives changes nothing about what the
-    step does, so the environment replaces the measured value (wall-clock noise) with a draw
-    from ``U(0.25, 1)``: the policy learns to ignore it instead of meeting unseen values when
-    it serves under wall-clock deadlines on a busy machine, and episodes stay reproducible.
+    Under an expansion budget (regime ``budget``) the CPU share a step receives changes
+    nothing about what the step does, so the environment replaces the measured value
+    (wall-clock noise) with a draw from ``U(0.25, 1)``, and there is no clock (features 14-16
+    read 0); episodes stay reproducible.
+
+    Served regime
+    -------------
+    With ``regime="deadline"`` every reset draws the contract the service would run: a
+    deadline ``d`` log-uniform in ``deadline_ms_min..deadline_ms_max`` and a load ``L`` from
+    ``searches_per_core`` (CPU share ``s = 1 / L``). The measured calibration map
+    (:mod:`policies.calibrate`) gives the decision steps the service would allow a policy
+    (``steps_at``; a contract with no decision is redrawn) and the expansions the search
+    makes by then (``expansions_at``, the decisions' cost taken out), so the episode is an
+    expansion budget that stands for the deadline: reproducible, and the same search. The
+    observation then carries what the service would measure: time left ``d x fraction left``,
+    the calibrated expansion rate (x U(0.8, 1.25) per episode) and the share ``s``
+    (x U(0.9, 1.1)). ``options`` of ``reset`` may fix ``deadline_ms`` and
+    ``searches_per_core``.
 
     Actions
     -------
@@ -313,7 +390,9 @@ class WeightControlEnv(gym.Env):
     ----
     ``quality``, ``optimal_cost_s``, ``incumbent_cost_s``, ``query_index``, ``weight``,
     ``status`` (``running`` or a final status of ``dueroute.planner.results.STATUSES``),
-    ``traffic_index`` (entry of the cost pool; 0 = free flow or ``traffic``).
+    ``traffic_index`` (entry of the cost pool; 0 = free flow or ``traffic``), ``deadline_ms``
+    (``None`` under regime ``budget``), ``searches_per_core``, ``budget_expansions`` and
+    ``steps`` (the episode's contract).
     """
 
     metadata: dict[str, Any] = {"render_modes": []}
@@ -327,6 +406,7 @@ class WeightControlEnv(gym.Env):
         planner: Planner | None = None,
         optimal: OptimalCosts | None = None,
         cost_pool: list[tuple[Any, OptimalCosts]] | None = None,
+        calibration: Calibration | None = None,
         **overrides: Any,
     ) -> None:
         self.config = dataclasses.replace(config or EnvConfig(), **overrides)
@@ -353,6 +433,24 @@ class WeightControlEnv(gym.Env):
         self.cost_pool = cost_pool
         self.optimal = cost_pool[0][1]
         self._traffic_index = 0
+        self.calibration: Calibration | None = None
+        if cfg.regime == "deadline":
+            if calibration is None:
+                if cfg.calibration:
+                    calibration = load_calibration(cfg.calibration)
+                else:
+                    calibration = measure_calibration(
+                        self.planner, sample_queries(graph, 80, 77), seed=77
+                    )
+            self.calibration = calibration
+        # the contract of the current episode (regime "deadline": simulated)
+        self._deadline_ms = math.nan
+        self._per_core = 1
+        self._share = 1.0
+        self._share_seen = 1.0
+        self._rate_per_s = 0.0
+        self._budget = cfg.budget_expansions
+        self._steps = cfg.steps
 
         self.weights = WEIGHTS
         self.action_meanings = action_meanings(cfg.action_kind, WEIGHTS)
@@ -381,7 +479,14 @@ class WeightControlEnv(gym.Env):
     def _observe(self) -> tuple[np.ndarray, dict[str, Any]]:
         assert self._search is not None
         stats = self._search.stats()
-        stats = stats.replace(cpu_share_last_step=float(self.np_random.uniform(0.25, 1.0)))
+        if self.calibration is None:
+            stats = stats.replace(cpu_share_last_step=float(self.np_random.uniform(0.25, 1.0)))
+        else:  # what the service would measure under the simulated deadline and load
+            stats = stats.replace(
+                cpu_share_last_step=self._share_seen,
+                time_left_ms=self._deadline_ms * stats.contract_fraction_left,
+                expansion_rate_per_s=self._rate_per_s,
+            )
         info = {
             "quality": self._quality,
             "optimal_cost_s": self._optimal_s,
@@ -390,8 +495,38 @@ class WeightControlEnv(gym.Env):
             "weight": stats.weight,
             "status": self._search.status or "running",
             "traffic_index": self._traffic_index,
+            "deadline_ms": None if self.calibration is None else self._deadline_ms,
+            "searches_per_core": self._per_core,
+            "budget_expansions": self._budget,
+            "steps": self._steps,
         }
         return compute_features(stats), info
+
+    def _draw_contract(self, options: dict[str, Any] | None = None) -> None:
+        """Set the episode's contract. Regime ``deadline``: a deadline (log-uniform) and a
+        load, redrawn (up to :data:`MAX_REDRAWS` times) while the service would give the
+        policy no decision at all (one step); ``options`` may fix ``deadline_ms`` and
+        ``searches_per_core``."""
+        cfg, cal = self.config, self.calibration
+        if cal is None:
+            return
+        options = options or {}
+        rng = self.np_random
+        lo, hi = math.log(cfg.deadline_ms_min), math.log(cfg.deadline_ms_max)
+        for _ in range(MAX_REDRAWS):
+            d = options.get("deadline_ms")
+            deadline_ms = float(d) if d is not None else math.exp(float(rng.uniform(lo, hi)))
+            given = options.get("searches_per_core")
+            per_core = int(given) if given is not None else int(rng.choice(cfg.loads))
+            share = 1.0 / per_core
+            steps = cal.steps_at(deadline_ms, share, cfg.steps)
+            if steps >= 2 or {"deadline_ms", "searches_per_core"} <= set(options):
+                break
+        self._deadline_ms, self._per_core, self._share = deadline_ms, per_core, share
+        self._steps = steps
+        self._budget = cal.expansions_at(deadline_ms, share, steps - 1)
+        self._share_seen = min(1.0, share * float(rng.uniform(*SHARE_NOISE)))
+        self._rate_per_s = cal.expansion_rate_per_ms * 1000.0 * float(rng.uniform(*RATE_NOISE))
 
     def _draw_costs(self) -> int:
         if len(self.cost_pool) == 1:
@@ -413,8 +548,8 @@ class WeightControlEnv(gym.Env):
         self._search = self.planner.start(
             origin,
             destination,
-            budget_expansions=self.config.budget_expansions,
-            steps=self.config.steps,
+            budget_expansions=self._budget,
+            steps=self._steps,
             costs=version,
         )
         self._search.run_step(self.config.initial_weight)
@@ -442,12 +577,14 @@ class WeightControlEnv(gym.Env):
                 raise ValueError(
                     f"traffic_index must be in 0..{len(self.cost_pool) - 1}, got {traffic}"
                 )
+            self._draw_contract(options)
             if not self._open(index, traffic):
                 raise ValueError(f"query {index} has no route under cost pool entry {traffic}")
         else:
             opened = False
             for _ in range(MAX_REDRAWS):
                 query = int(self.np_random.integers(self.queries.shape[0]))
+                self._draw_contract(options)
                 if not self._open(query, self._draw_costs()):
                     continue  # a closure cut this query off: draw again
                 opened = True

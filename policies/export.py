@@ -26,6 +26,8 @@ key                        value
 ``graph_fingerprint``      sha256 of the training graph (``RoadGraph.fingerprint``)
 ``graph_name``             name of the training graph
 ``created_utc``            ISO 8601 time the file was written
+``training_regime``        JSON object (optional; files before it lack it): the contracts the
+                           policy was trained for, see :func:`training_regime`
 =========================  ===================================================================
 """
 
@@ -93,10 +95,12 @@ def policy_metadata(
     graph_fingerprint: str,
     graph_name: str = "",
     created_utc: str | None = None,
+    regime: dict[str, Any] | None = None,
 ) -> dict[str, str]:
     """The ``metadata_props`` of a policy file (see the module docstring)."""
     created = created_utc or datetime.now(UTC).replace(microsecond=0).isoformat()
-    return {
+    extra = {} if regime is None else {"training_regime": json.dumps(regime, sort_keys=True)}
+    return extra | {
         "format": POLICY_FORMAT,
         "schema_version": str(SCHEMA_VERSION),
         "feature_names": json.dumps(list(FEATURE_NAMES)),
@@ -111,6 +115,47 @@ def policy_metadata(
         "graph_name": graph_name,
         "created_utc": created,
     }
+
+
+def training_regime(
+    *,
+    contract: str,
+    graph_fingerprint: str,
+    graph_name: str,
+    decision_steps_max: int,
+    budget_expansions: int | None = None,
+    deadline_ms: tuple[float, float] | None = None,
+    searches_per_core: tuple[int, ...] = (1,),
+    calibration: dict[str, Any] | None = None,
+    traffic_scenarios: int = 0,
+) -> dict[str, Any]:
+    """The ``training_regime`` metadata: what contracts, loads and graph the policy saw.
+
+    ``contract`` is ``budget`` (every episode ``budget_expansions``) or ``deadline`` (the
+    service's deadlines, ``deadline_ms`` = (min, max) drawn log-uniformly, simulated with the
+    measured ``calibration`` map at CPU shares ``1 / searches_per_core``); the feature schema
+    (version and names) is this build's.
+    """
+    out: dict[str, Any] = {
+        "contract": contract,
+        "graph_fingerprint": graph_fingerprint,
+        "graph_name": graph_name,
+        "feature_schema": {"version": SCHEMA_VERSION, "names": list(FEATURE_NAMES)},
+        "decision_steps_max": int(decision_steps_max),
+        "traffic_scenarios": int(traffic_scenarios),
+    }
+    if contract == "budget":
+        out["budget_expansions"] = int(budget_expansions or 0)
+        out["searches_per_core"] = [1]
+        out["cpu_shares"] = [1.0]
+    else:
+        assert deadline_ms is not None
+        out["deadline_ms"] = [float(deadline_ms[0]), float(deadline_ms[1])]
+        out["deadline_sampling"] = "log-uniform"
+        out["searches_per_core"] = [int(x) for x in searches_per_core]
+        out["cpu_shares"] = [round(1.0 / x, 4) for x in searches_per_core]
+        out["calibration"] = calibration
+    return out
 
 
 def build_model(network: QNetwork, metadata: dict[str, str]) -> onnx.ModelProto:

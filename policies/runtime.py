@@ -130,7 +130,31 @@ class Policy:
             "graph_fingerprint": self.metadata.get("graph_fingerprint"),
             "graph_name": self.metadata.get("graph_name"),
             "created_utc": self.metadata.get("created_utc"),
+            "training_regime": self.training_regime,
         }
+
+    @property
+    def training_regime(self) -> dict[str, Any] | None:
+        """The ``training_regime`` metadata (``None``: a file written before it existed)."""
+        raw = self.metadata.get("training_regime")
+        if raw is None:
+            return None
+        value = json.loads(raw)  # checked by check_policy
+        return value if isinstance(value, dict) else None
+
+    def graph_warning(self, fingerprint: str, name: str = "") -> str | None:
+        """A warning when the policy was trained on another graph than ``fingerprint`` (the
+        graph it steers searches on); ``None`` when they match."""
+        trained = self.metadata.get("graph_fingerprint", "")
+        if trained == fingerprint:
+            return None
+        trained_name = self.metadata.get("graph_name") or "?"
+        return (
+            f"the policy was trained on graph {trained_name!r} (fingerprint {trained[:12]}...), "
+            f"not on {name or 'this graph'!r} (fingerprint {fingerprint[:12]}...): its "
+            "features are scale-free, but its decisions were learned on another road network; "
+            "retrain on this graph ('dueroute train GRAPH') or expect weaker choices"
+        )
 
 
 def nearest_index(weights: tuple[float, ...], w: float) -> int:
@@ -322,6 +346,13 @@ def _inspect(data: bytes) -> _Inspection:
             json.loads(meta["training_config"])
         except ValueError:
             problems.append("training_config is not valid JSON")
+    if "training_regime" in meta:
+        try:
+            regime = json.loads(meta["training_regime"])
+        except ValueError:
+            regime = None
+        if not isinstance(regime, dict):
+            problems.append("training_regime must be a JSON object")
 
     n_actions = None
     if meanings is not None:

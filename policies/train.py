@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import dataclasses
 import json
+import math
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -28,7 +29,7 @@ from dueroute.policies.dqn import (
     write_curve_csv,
 )
 from dueroute.policies.env import EnvConfig, WeightControlEnv, quality, sample_queries
-from dueroute.policies.export import export_policy, policy_metadata
+from dueroute.policies.export import export_policy, policy_metadata, training_regime
 
 
 @dataclass(frozen=True)
@@ -61,14 +62,17 @@ def greedy_quality(
 
     Under a traffic pool query ``i`` runs on pool entry ``i mod len(pool)`` (entry 0 when a
     closure cuts it off there; a query without a route under entry 0 either is left out).
+    Under regime ``deadline`` query ``i`` gets the contract :func:`validation_contract`.
     """
     out = np.full(len(query_indices), np.nan)
     pool = len(env.cost_pool)
     for k, i in enumerate(query_indices):
         obs = None
+        contract = validation_contract(env, i)
         for traffic in dict.fromkeys((i % pool, 0)):
             try:
-                obs, info = env.reset(seed=0, options={"query_index": i, "traffic_index": traffic})
+                options = {"query_index": i, "traffic_index": traffic} | contract
+                obs, info = env.reset(seed=0, options=options)
                 break
             except ValueError:
                 continue
@@ -80,6 +84,19 @@ def greedy_quality(
             done = term or trunc
         out[k] = quality(info["optimal_cost_s"], info["incumbent_cost_s"])
     return out
+
+
+def validation_contract(env: WeightControlEnv, i: int) -> dict[str, Any]:
+    """The simulated contract of validation query ``i`` under regime ``deadline`` (else
+    ``{}``): deadlines spread evenly over the log range by the golden-ratio sequence, loads in
+    turn, so every validation run judges the same mix (no random draw)."""
+    cfg = env.config
+    if env.calibration is None:
+        return {}
+    lo, hi = math.log(cfg.deadline_ms_min), math.log(cfg.deadline_ms_max)
+    u = (i * 0.6180339887498949) % 1.0
+    loads = cfg.loads
+    return {"deadline_ms": math.exp(lo + u * (hi - lo)), "searches_per_core": loads[i % len(loads)]}
 
 
 def train_policy(
@@ -108,6 +125,7 @@ def train_policy(
             planner=env.planner,
             optimal=optimal,
             cost_pool=env.cost_pool,
+            calibration=env.calibration,
         )
         indices = range(val_queries.shape[0])
 
@@ -120,15 +138,42 @@ def train_policy(
         "env": dataclasses.asdict(env_config),
         "validation": dataclasses.asdict(validation),
     }
+    cal = env.calibration
+    if cal is not None:
+        config["calibration"] = cal.to_dict()
+        lo, hi = env_config.deadline_ms_min, env_config.deadline_ms_max
+        # a representative budget: the map at the range's geometric mean, one search per core
+        contract_expansions = cal.expansions_at(math.sqrt(lo * hi))
+        regime = training_regime(
+            contract="deadline",
+            graph_fingerprint=graph.fingerprint,
+            graph_name=graph.name,
+            decision_steps_max=env_config.steps,
+            deadline_ms=(lo, hi),
+            searches_per_core=env_config.loads,
+            calibration=cal.to_dict(),
+            traffic_scenarios=env_config.traffic_scenarios,
+        )
+    else:
+        contract_expansions = env_config.budget_expansions
+        regime = training_regime(
+            contract="budget",
+            graph_fingerprint=graph.fingerprint,
+            graph_name=graph.name,
+            decision_steps_max=env_config.steps,
+            budget_expansions=env_config.budget_expansions,
+            traffic_scenarios=env_config.traffic_scenarios,
+        )
     meta = policy_metadata(
         weights=env.weights,
         action_kind=env_config.action_kind,
         initial_weight=env_config.initial_weight,
-        contract_expansions=env_config.budget_expansions,
+        contract_expansions=contract_expansions,
         decision_steps=env_config.steps,
         training_config=config,
         graph_fingerprint=graph.fingerprint,
         graph_name=graph.name,
+        regime=regime,
     )
     out = Path(out)
     data = export_policy(result.network, meta, out)
@@ -152,8 +197,9 @@ def train_policy(
         "mean_return_last_episodes": float(np.mean(tail)) if tail.size else None,
         "best_validation_quality": result.best_eval_return,
         "best_validation_episode": result.best_eval_episode,
-        "contract_expansions": env_config.budget_expansions,
+        "contract_expansions": contract_expansions,
         "decision_steps": env_config.steps,
+        "regime": env_config.regime,
         "action_kind": env_config.action_kind,
     }
 

@@ -8,7 +8,13 @@ from __future__ import annotations
 import argparse
 from typing import Any
 
-from dueroute.service.cli import bench_deadline, bench_import, bench_search, bench_traffic
+from dueroute.service.cli import (
+    bench_calibrate,
+    bench_deadline,
+    bench_import,
+    bench_search,
+    bench_traffic,
+)
 
 
 def register(sub: Any) -> argparse.ArgumentParser:
@@ -17,6 +23,6 @@ def register(sub: Any) -> argparse.ArgumentParser:
         "bench", help="measure speed (and import memory) against references in the same run"
     )
     bench_sub = parser.add_subparsers(dest="bench_command", required=True, metavar="BENCH")
-    for module in (bench_search, bench_deadline, bench_traffic, bench_import):
+    for module in (bench_search, bench_deadline, bench_traffic, bench_import, bench_calibrate):
         module.register(bench_sub)
     return parser

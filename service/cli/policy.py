@@ -132,6 +132,22 @@ def register(sub: Any) -> None:
         help="ALT landmarks for the heuristic (default: as in training; 0 = great-circle only)",
     )
     add_traffic_flag(ev, "controller")
+    ev.add_argument(
+        "--served",
+        action="store_true",
+        help="judge the way the service runs the controllers: wall-clock deadlines "
+        "(--deadlines-ms, default 2,5,10,20,50) x loads (--loads) with searches in threads, "
+        "interleaved, paired tests per cell; writes served_*.{json,md,csv,png} (time it under "
+        "flock /tmp/dueroute-timing.lock on a quiet machine)",
+    )
+    add_list_option(
+        ev,
+        "--loads",
+        int,
+        [1, 2, 4],
+        "with --served: searches per core run at once",
+        metavar="L,L",
+    )
     ev.add_argument("--no-progress", action="store_true", help="hide the progress bar")
     add_json_flag(ev)
     ev.set_defaults(func=cmd_evaluate)
@@ -143,6 +159,14 @@ def register(sub: Any) -> None:
         help="validate a policy file and explain every problem (exit 2 if any)",
     )
     chk.add_argument("file", metavar="FILE.onnx", help="policy file to check")
+    chk.add_argument(
+        "graph",
+        metavar="GRAPH",
+        nargs="?",
+        default=None,
+        help="also say whether the policy was trained on this graph (by fingerprint; a "
+        "mismatch is a warning, exit status 0). " + GRAPH_HELP,
+    )
     add_json_flag(chk)
     chk.set_defaults(func=cmd_check)
 
@@ -263,6 +287,8 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
         raise InvalidRequest(f"--deadlines-ms must all be > 0, got {args.deadlines_ms}")
     if args.importance_count < 0:
         raise InvalidRequest("--importance-count must be >= 0")
+    if any(not 1 <= x <= 64 for x in args.loads):
+        raise InvalidRequest(f"--loads must all be in 1..64, got {args.loads}")
     controllers = tuple(args.controllers) if args.controllers else CONTROLLERS
     for spec in controllers:
         if spec != LEARNED:
@@ -295,6 +321,8 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
             f"--seed {args.seed} is the seed the policy's training queries were drawn with; "
             "evaluate on held-out queries with another seed"
         )
+    if args.served:
+        return _evaluate_served(args, graph, policy, landmarks, costs, controllers, env_cfg)
     try:
         summary = evaluate(
             graph,
@@ -313,6 +341,60 @@ def cmd_evaluate(args: argparse.Namespace) -> int:
     summary["out"] = str(args.out)
     emit(summary, args.json, _format_evaluate)
     return 0
+
+
+def _evaluate_served(
+    args: argparse.Namespace,
+    graph: Any,
+    policy: Any,
+    landmarks: Any,
+    costs: Any,
+    controllers: tuple[str, ...],
+    env_cfg: dict[str, Any],
+) -> int:
+    from dueroute.planner.session import Planner
+    from dueroute.policies.env import sample_queries
+    from dueroute.policies.evaluate import SERVED_DEADLINES_MS, ServedSettings, evaluate_served
+
+    if any(not d <= 60_000 for d in args.deadlines_ms):
+        raise InvalidRequest(f"--deadlines-ms must all be in (0, 60000], got {args.deadlines_ms}")
+    exclude = None
+    if env_cfg.get("query_seed") is not None:  # leave the training pairs out
+        exclude = sample_queries(
+            graph, int(env_cfg.get("n_queries", 2000)), int(env_cfg["query_seed"])
+        )
+    settings = ServedSettings(
+        n_queries=args.count,
+        seed=args.seed,
+        deadlines_ms=tuple(args.deadlines_ms) or SERVED_DEADLINES_MS,
+        loads=tuple(args.loads),
+        controllers=controllers,
+        exclude=exclude,
+        costs=costs,
+        traffic_source=args.traffic,
+    )
+    try:
+        summary = evaluate_served(
+            graph,
+            policy,
+            args.out,
+            settings,
+            planner=Planner(graph, landmarks=landmarks),
+            progress=not args.no_progress,
+        )
+    except OSError as exc:
+        raise InvalidRequest(f"cannot write the report to {args.out}: {exc}") from exc
+    except ValueError as exc:
+        raise InvalidRequest(str(exc)) from None
+    summary["out"] = str(args.out)
+    emit(summary, args.json, _format_served)
+    return 0
+
+
+def _format_served(s: dict[str, Any]) -> str:
+    from dueroute.policies.evaluate import served_markdown
+
+    return served_markdown(s) + f"\nreport written to {s['out']} in {s['seconds']:.0f} s"
 
 
 def _training_config(policy: Any) -> dict[str, Any]:
@@ -338,10 +420,38 @@ def cmd_check(args: argparse.Namespace) -> int:
 
     problems = check_policy(args.file)
     result: dict[str, Any] = {"file": args.file, "ok": not problems, "problems": problems}
+    result["warnings"] = []
     if not problems:
-        result["policy"] = load_policy(args.file).info()
+        policy = load_policy(args.file)
+        result["policy"] = policy.info()
+        if args.graph is not None:
+            from dueroute.service.cli.common import load_graph_arg
+
+            graph = load_graph_arg(args.graph)
+            warning = policy.graph_warning(graph.fingerprint, graph.name)
+            result["graph"] = {
+                "name": graph.name,
+                "fingerprint": graph.fingerprint,
+                "trained_on_it": warning is None,
+            }
+            result["warnings"] = [warning] if warning else []
     emit(result, args.json, _format_check)
     return 2 if problems else 0
+
+
+def _regime_lines(regime: dict[str, Any] | None) -> list[str]:
+    if not regime:
+        return ["  training regime: not recorded (a file written before regimes were recorded)"]
+    if regime.get("contract") == "deadline":
+        lo, hi = regime["deadline_ms"]
+        shares = ", ".join(f"{x:g}" for x in regime.get("cpu_shares", []))
+        cal = regime.get("calibration") or {}
+        return [
+            f"  training regime: wall-clock deadlines {lo:g}-{hi:g} ms "
+            f"({regime.get('deadline_sampling', '?')}), CPU shares {shares}, simulated with "
+            f"the map measured on {cal.get('machine', '?')} ({cal.get('measured_utc', '?')})"
+        ]
+    return [f"  training regime: expansion budget {regime.get('budget_expansions', 0):,}"]
 
 
 def _format_check(r: dict[str, Any]) -> str:
@@ -356,6 +466,13 @@ def _format_check(r: dict[str, Any]) -> str:
                 f"  trained on {p['graph_name'] or '?'} ({(p['graph_fingerprint'] or '?')[:16]}) "
                 f"with {p['contract_expansions']:,} expansions in {p['decision_steps']} steps, "
                 f"{p['created_utc']}",
+                *_regime_lines(p.get("training_regime")),
+                *(
+                    [f"  graph {r['graph']['name']}: the policy was trained on it"]
+                    if r.get("graph") and r["graph"]["trained_on_it"]
+                    else []
+                ),
+                *(f"  warning: {w}" for w in r.get("warnings", [])),
             ]
         )
     lines = [f"{r['file']}: {len(r['problems'])} problem(s), not usable as a policy"]

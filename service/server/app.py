@@ -285,6 +285,7 @@ def warm_up(state: AppState) -> None:
 
         snap_to_road(graph, float(graph.lat[0]), float(graph.lon[0]), settings.snap_max_m)
     engine = PlanningEngine(graph, planner, steps=settings.steps)
+    state.policies.set_graph(graph.fingerprint, str(graph.meta.get("name") or ""))
     from dueroute.service.server.traffic_store import LiveTraffic
 
     t_traffic = time.perf_counter()

@@ -27,6 +27,11 @@ it, so plans in flight finish with the policy they started with while new plans 
 
 Validation is exactly ``dueroute policy check`` (:func:`policies.runtime.check_policy`); nothing
 is written or swapped unless it reports no problem.
+
+Once the served graph is known (:meth:`PolicyStore.set_graph`, at the end of the warm-up), a
+policy trained on another graph (its ``graph_fingerprint``) is still served, but with a warning:
+in the log when it becomes active (or when the graph is set) and in ``warnings`` on
+``GET /v1/policy`` and in dry-run answers.
 """
 
 from __future__ import annotations
@@ -162,6 +167,26 @@ class PolicyStore:
         #: Files found damaged at start-up (``file`` relative to the policy directory,
         #: ``sha256``, ``problem``, ``action``); an upload that rewrites one removes it.
         self._damaged: list[dict[str, Any]] = []
+        #: (fingerprint, name) of the graph the service searches, once known
+        self._graph: tuple[str, str] | None = None
+
+    def set_graph(self, fingerprint: str, name: str = "") -> None:
+        """Record the served graph; logs a warning if the active policy was trained on another."""
+        self._graph = (fingerprint, name)
+        self._warn_if_foreign(self._active)
+
+    def graph_warnings(self, snap: ActivePolicy) -> list[str]:
+        """Why ``snap`` may not fit the served graph (empty: it fits, or nothing to compare)."""
+        if snap.policy is None or self._graph is None:
+            return []
+        warning = snap.policy.graph_warning(*self._graph)
+        return [warning] if warning else []
+
+    def _warn_if_foreign(self, snap: ActivePolicy) -> None:
+        for warning in self.graph_warnings(snap):
+            log.warning(
+                "policy trained on another graph", extra={"sha256": snap.sha256, "detail": warning}
+            )
 
     # -------------------------------------------------------------------------------------
     @property
@@ -180,7 +205,9 @@ class PolicyStore:
     def info(self, snap: ActivePolicy | None = None, **kwargs: Any) -> dict[str, Any]:
         """``snap.info(**kwargs)`` (default: the active policy) with the store's view added:
         the policy a rollback would return to and the damage found at start-up."""
-        out = (snap if snap is not None else self._active).info(**kwargs)
+        snap = snap if snap is not None else self._active
+        out = snap.info(**kwargs)
+        out["warnings"] = self.graph_warnings(snap)
         with self._lock:
             out["previous_sha256"] = self._history[-1] if self._history else None
             out["damaged"] = self.damaged
@@ -427,6 +454,7 @@ class PolicyStore:
             if persist:
                 self._write_pointer()
         log.info("policy activated", extra={"sha256": sha, "source": source, "previous": old})
+        self._warn_if_foreign(snap)
         return snap
 
     def _file(self, sha: str) -> Path:

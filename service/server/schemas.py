@@ -349,6 +349,15 @@ class PolicyInfo(BaseModel):
     graph_name: str | None = None
     created_utc: str | None = None
     trained_on: TrainedOn | None = None
+    training_regime: dict[str, Any] | None = Field(
+        None,
+        description="what the policy was trained for: contract kind, deadline range, CPU "
+        "shares, graph fingerprint, feature schema, the machine's deadline-to-expansions map",
+    )
+    warnings: list[str] = Field(
+        default_factory=list,
+        description="why the policy may not fit this service, e.g. trained on another graph",
+    )
 
 
 class Health(BaseModel):

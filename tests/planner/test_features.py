@@ -147,6 +147,13 @@ def _reference_features(stats) -> np.ndarray:
         math.log1p(stats.improvements) / 3.0,
         (stats.steps_since_improvement / steps if steps else 0.0) if has else 1.0,
         stats.cpu_share_last_step,
+        math.log10(1.0 + max(stats.time_left_ms, 0.0)) / 2.0,
+        math.log10(1.0 + max(stats.expansion_rate_per_s, 0.0)) / 7.0,
+        math.log10(
+            1.0
+            + stats.time_left_ms / 1000.0 * stats.expansion_rate_per_s * stats.cpu_share_last_step
+        )
+        / 6.0,
     ]
     return np.clip(np.asarray(vals, dtype=np.float32), FEATURE_LOW, FEATURE_HIGH)
 
@@ -158,3 +165,28 @@ def test_numba_features_equal_the_table_read_in_python():
     for weights in ([1.0] * 6, [5.0, 3.0, 1.0, 2.0, 1.0, 1.0]):
         for stats, x in trace(graph, 0, graph.n_nodes - 1, weights, budget=300):
             np.testing.assert_allclose(x, _reference_features(stats), rtol=1e-6, atol=1e-7)
+
+
+def test_clock_features_equal_the_table_read_in_python():
+    """Schema 2's clock features (time left, expansion rate, what the time left buys at the CPU
+    share) follow the table: the search's own vector with clock values set, and a real
+    deadline search (whose stats carry the measured rate and time left)."""
+    graph = grid()
+    stats = Planner(graph).start(0, graph.n_nodes - 1, budget_expansions=300, steps=3).stats()
+    for left_ms, rate, share in ((0.0, 0.0, 1.0), (5.0, 2e6, 0.5), (49.0, 9e6, 0.25)):
+        s = stats.replace(
+            time_left_ms=left_ms, expansion_rate_per_s=rate, cpu_share_last_step=share
+        )
+        np.testing.assert_allclose(
+            compute_features(s), _reference_features(s), rtol=1e-6, atol=1e-7
+        )
+    # 10 ms left at 2e6 expansions/s and half the CPU buys 1e4 expansions: log10(1 + 1e4) / 6
+    s = stats.replace(time_left_ms=10.0, expansion_rate_per_s=2e6, cpu_share_last_step=0.5)
+    assert compute_features(s)[IDX["affordable_log"]] == pytest.approx(math.log10(1e4 + 1) / 6)
+    search = Planner(graph).start(0, graph.n_nodes - 1, deadline_ms=1000.0, steps=4)
+    search.run_step(1.0)
+    live = search.stats()
+    assert 0.0 <= live.time_left_ms <= 1000.0
+    np.testing.assert_allclose(
+        compute_features(live), _reference_features(live), rtol=1e-6, atol=1e-7
+    )

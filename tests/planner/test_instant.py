@@ -132,7 +132,7 @@ def test_steps_follow_the_deadline() -> None:
     expected = steps_for_deadline(1.0, 20, DECISION_COST.us("builtin"))
     res = plan(planner, 0, g.n_nodes - 1, deadline_ms=1.0, controller="decreasing", steps=20)
     assert res.steps == expected < 20
-    res = plan(planner, 0, g.n_nodes - 1, budget_expansions=1000, steps=20)
+    res = plan(planner, 0, g.n_nodes - 1, budget_expansions=1000, steps=20, controller="decreasing")
     assert res.steps == 20  # budget contracts keep their steps (reproducible)
     # a constant weight needs no decisions: one step, no control time, and the same search as
     # the same contract cut into steps (the kernel carries its state across calls)

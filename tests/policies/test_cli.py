@@ -191,3 +191,74 @@ def test_evaluate_and_train_under_traffic(trained, tmp_path, capsys):
     )  # fmt: skip
     err = capsys.readouterr().err.strip()
     assert rc == 2 and err.startswith("dueroute: error: traffic file not found")
+
+
+def test_train_deadline_regime_and_served_evaluation(trained, tmp_path, capsys):
+    """``bench calibrate`` writes a map; ``train --regime deadline`` records it and the regime
+    in the policy; ``policy check FILE GRAPH`` says the graph matches, and warns for another
+    graph; ``evaluate --served`` writes the per-cell report (tiny sizes, no timing judged)."""
+    graph_path, _ = trained
+    cal = tmp_path / "cal.json"
+    rc = main(
+        ["bench", "calibrate", str(graph_path), "--count", "6", "--deadlines-ms", "0.05,0.2"]
+        + ["--landmarks", "0", "--out", str(cal), "--json"]
+    )
+    assert rc == 0 and json.loads(cal.read_text())["deadlines_ms"] == [0.05, 0.2]
+    capsys.readouterr()
+    out = tmp_path / "served.onnx"
+    rc = main(
+        ["train", str(graph_path), "--out", str(out), "--regime", "deadline"]
+        + ["--calibration", str(cal), "--deadline-ms-min", "1", "--deadline-ms-max", "20"]
+        + ["--searches-per-core", "1,2", "--episodes", "8", "--count", "10"]
+        + ["--learning-starts", "4", "--batch-size", "4", "--eval-every-episodes", "4"]
+        + ["--validation-count", "3", "--landmarks", "0", "--no-progress", "--json"]
+    )
+    assert rc == 0
+    capsys.readouterr()
+    # seeded and expansion-counted: the same command and calibration give the same network
+    again = tmp_path / "again.onnx"
+    argv = ["train", str(graph_path), "--out", str(again), "--regime", "deadline"]
+    argv += ["--calibration", str(cal), "--deadline-ms-min", "1", "--deadline-ms-max", "20"]
+    argv += ["--searches-per-core", "1,2", "--episodes", "8", "--count", "10"]
+    argv += ["--learning-starts", "4", "--batch-size", "4", "--eval-every-episodes", "4"]
+    argv += ["--validation-count", "3", "--landmarks", "0", "--no-progress", "--json"]
+    assert main(argv) == 0
+    capsys.readouterr()
+    import numpy as np
+
+    from dueroute.planner.features import FEATURE_HIGH, FEATURE_LOW
+    from dueroute.policies.runtime import load_policy
+
+    probe = np.random.default_rng(0).uniform(FEATURE_LOW, FEATURE_HIGH, (16, len(FEATURE_LOW)))
+    probe = probe.astype(np.float32)
+    np.testing.assert_array_equal(
+        load_policy(out).q_values(probe), load_policy(again).q_values(probe)
+    )
+    assert main(["policy", "check", str(out), str(graph_path), "--json"]) == 0
+    report = json.loads(capsys.readouterr().out)
+    regime = report["policy"]["training_regime"]
+    assert regime["contract"] == "deadline" and regime["deadline_ms"] == [1.0, 20.0]
+    assert regime["searches_per_core"] == [1, 2] and regime["calibration"]["queries"] == 6
+    assert report["graph"]["trained_on_it"] and report["warnings"] == []
+    other = save_graph(make_grid_graph(6, 6, seed=9), tmp_path / "other.npz")
+    assert main(["policy", "check", str(out), str(other)]) == 0
+    text = capsys.readouterr().out
+    assert "warning: the policy was trained on graph" in text and "deadlines 1-20 ms" in text
+
+    report_dir = tmp_path / "served"
+    rc = main(
+        ["evaluate", str(graph_path), "--policy", str(out), "--served", "--count", "4"]
+        + ["--deadlines-ms", "1,3", "--loads", "1,2", "--controllers", "fixed:1,ana,learned"]
+        + ["--out", str(report_dir), "--no-progress", "--json"]
+    )
+    assert rc == 0
+    summary = json.loads(capsys.readouterr().out)
+    assert len(summary["cells"]) == 4 and summary["targets"]["judged_cells"] == 0
+    cell = summary["cells"][0]
+    assert set(cell["controllers"]) == {"fixed:1", "ana", "learned"}
+    assert "p_value" in cell["learned_vs_best_baseline"]
+    for name in ("served_summary.json", "served_results.md", "served_per_query.csv"):
+        assert (report_dir / name).is_file(), name
+    assert (report_dir / "served_quality.png").stat().st_size > 1000
+    assert main(["evaluate", str(graph_path), "--served", "--loads", "0", "--out", "x"]) == 2
+    assert "--loads must all be in 1..64" in capsys.readouterr().err

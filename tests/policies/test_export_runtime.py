@@ -177,7 +177,17 @@ def test_shipped_default_policy_is_valid_for_this_build():
     policy = default_policy()
     assert policy.weights == WEIGHTS
     config = json.loads(policy.metadata["training_config"])
-    assert config["env"]["budget_expansions"] == policy.contract_expansions
+    regime = policy.training_regime
+    assert regime is not None and regime["contract"] == config["env"]["regime"]
+    if regime["contract"] == "budget":
+        assert config["env"]["budget_expansions"] == policy.contract_expansions
+    else:  # the representative budget: the map at the deadline range's geometric mean
+        from dueroute.policies.calibrate import Calibration
+
+        lo, hi = regime["deadline_ms"]
+        cal = Calibration.from_dict(regime["calibration"])
+        assert cal.expansions_at((lo * hi) ** 0.5) == policy.contract_expansions
+    assert regime["graph_fingerprint"] == policy.metadata["graph_fingerprint"]
     assert DEFAULT_POLICY_PATH.with_suffix(".md").is_file()
 
 

@@ -264,3 +264,28 @@ def test_shipped_default_is_used_but_an_upload_outlives_it(tmp_path: Path):
     store = PolicyStore(tmp_path / "p", max_bytes=1_000_000)
     assert store.startup(None, default).sha256 == hashlib.sha256(policy_bytes(seed=9)).hexdigest()
     assert store.rollback().sha256 == hashlib.sha256(policy_bytes(seed=8)).hexdigest()
+
+
+def test_a_policy_from_another_graph_is_served_with_a_warning(admin, tiny_graph_path, caplog):
+    """The fingerprint the policy file records (its graph_fingerprint metadata) is compared
+    with the served graph's: a mismatch is said on GET /v1/policy and in the log; a policy
+    trained on this graph carries no warning."""
+    import logging
+
+    from dueroute.planner.graph import load_graph
+
+    fingerprint = load_graph(tiny_graph_path).fingerprint
+    foreign = policy_bytes()  # trained on "test", fingerprint 000...
+    with caplog.at_level(logging.WARNING, logger="dueroute.service.policy"):
+        r = admin.put("/v1/policy", content=foreign, headers={**AUTH, **OCTET})
+    assert r.status_code == 200, r.text
+    warnings = admin.get("/v1/policy").json()["warnings"]
+    assert len(warnings) == 1 and "trained on graph 'test'" in warnings[0]
+    assert fingerprint[:12] in warnings[0] and r.json()["warnings"] == warnings
+    assert any(rec.getMessage() == "policy trained on another graph" for rec in caplog.records)
+    own = policy_bytes(meta=policy_meta(graph_fingerprint=fingerprint))
+    r = admin.put("/v1/policy", content=own, headers={**AUTH, **OCTET})
+    assert r.status_code == 200 and r.json()["warnings"] == []
+    assert admin.get("/v1/policy").json()["warnings"] == []
+    dry = admin.put("/v1/policy?dry_run=true", content=foreign, headers={**AUTH, **OCTET})
+    assert dry.status_code == 200 and len(dry.json()["warnings"]) == 1
