@@ -11,6 +11,7 @@ from __future__ import annotations
 import asyncio
 import threading
 import time
+from typing import Any
 
 import pytest
 
@@ -171,16 +172,21 @@ def test_a_later_deadline_yields_its_slot_and_resumes():
     adm.shutdown()
 
 
+def _hold_the_only_slot(adm: Admission) -> tuple[threading.Event, Any]:
+    """A plan that holds the slot (and never checks its ticket) until the gate is set."""
+    gate = threading.Event()
+    now = time.perf_counter()
+    future = adm.submit(adm.admit(now, now + WAIT), lambda t: gate.wait(WAIT))
+    while adm.busy == 0:
+        time.sleep(0.001)
+    return gate, future
+
+
 def test_a_waiting_plan_leaves_for_the_instant_lane_before_its_deadline():
     """A plan that never gets a slot still runs (without one) just before its deadline, so a
     waiting request is answered, never dropped."""
     adm = Admission(workers=1, min_search_ms=0.0)
-    now = time.perf_counter()
-    gate = threading.Event()
-    blocker = adm.admit(now, now + WAIT)
-    f_block = adm.submit(blocker, lambda t: gate.wait(WAIT))
-    while adm.busy == 0:
-        time.sleep(0.001)
+    gate, f_block = _hold_the_only_slot(adm)
     soon = adm.admit(time.perf_counter(), time.perf_counter() + 0.05)
     seen: dict[str, bool] = {}
     f_soon = adm.submit(soon, lambda t: seen.update(slot=t.holds_slot))
@@ -194,11 +200,7 @@ def test_a_waiting_plan_leaves_for_the_instant_lane_before_its_deadline():
 def test_cancel_leaves_the_queue_at_once():
     adm = Admission(workers=1, min_search_ms=0.0)
     now = time.perf_counter()
-    gate = threading.Event()
-    blocker = adm.admit(now, now + WAIT)
-    f_block = adm.submit(blocker, lambda t: gate.wait(WAIT))
-    while adm.busy == 0:
-        time.sleep(0.001)
+    gate, f_block = _hold_the_only_slot(adm)
     queued = adm.admit(now, now + 2 * WAIT)
     f = adm.submit(queued, lambda t: t.cancel.is_set())
     while adm.queued == 0:
