@@ -41,6 +41,7 @@ from urllib.parse import urlsplit
 import numpy as np
 
 from dueroute.planner.errors import InvalidRequest
+from dueroute.service.loadtest.lean_http import LeanClient, LeanHTTPError
 
 #: Host names accepted as loopback without resolving them (resolution could be redirected).
 LOOPBACK_NAMES = frozenset({"localhost", "localhost."})
@@ -588,11 +589,11 @@ async def _one_request(
     try:
         resp = await client.post("/v1/plans", json=body, timeout=timeout_s)
         rec.latency_ms = (time.perf_counter() - t0) * 1000.0
-    except httpx.TimeoutException:
+    except (httpx.TimeoutException, TimeoutError):
         rec.latency_ms = (time.perf_counter() - t0) * 1000.0
         rec.error = f"timeout after {timeout_s:g} s"
         return rec, None, None
-    except httpx.HTTPError as exc:
+    except (httpx.HTTPError, LeanHTTPError) as exc:
         rec.latency_ms = (time.perf_counter() - t0) * 1000.0
         rec.error = f"transport: {type(exc).__name__}"
         return rec, None, None
@@ -895,13 +896,21 @@ async def run_loadtest(
                     result.server["traffic"] = _traffic_summary(resp.json())
             except (httpx.HTTPError, ValueError):
                 pass  # context for the report only
-        await _warm_up(client, config, queries)
-        for controller, concurrency, deadline_ms in config.cells():
-            cell = CellResult(controller, concurrency, deadline_ms)
-            result.cells.append(cell)
-            await run_cell(client, config, cell, queries, reference, on_record)
-            if on_cell is not None:
-                on_cell(cell)
+        # The plan requests go through the lean client (a fraction of httpx's CPU per request,
+        # which this machine's cores would otherwise take from the service); an in-process
+        # transport (tests) keeps httpx.
+        plans_client: Any = client if transport is not None else LeanClient(config.url)
+        try:
+            await _warm_up(plans_client, config, queries)
+            for controller, concurrency, deadline_ms in config.cells():
+                cell = CellResult(controller, concurrency, deadline_ms)
+                result.cells.append(cell)
+                await run_cell(plans_client, config, cell, queries, reference, on_record)
+                if on_cell is not None:
+                    on_cell(cell)
+        finally:
+            if plans_client is not client:
+                await plans_client.aclose()
     result.finished_at = time.time()
     return result
 
