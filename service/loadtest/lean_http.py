@@ -12,10 +12,15 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
+import time
 from typing import Any
 from urllib.parse import urlsplit
 
 import orjson
+
+#: A kept-alive connection idle for longer is not reused (uvicorn closes idle connections
+#: after 5 s by default; a request sent on a connection the server is closing is lost).
+MAX_IDLE_S = 2.0
 
 
 class LeanHTTPError(OSError):
@@ -48,7 +53,8 @@ class LeanClient:
         self.host = parts.hostname
         self.port = parts.port or 80
         self._head = f"Host: {parts.netloc}\r\nUser-Agent: {user_agent}\r\n"
-        self._idle: list[tuple[asyncio.StreamReader, asyncio.StreamWriter]] = []
+        #: kept-alive connections and when they went idle
+        self._idle: list[tuple[asyncio.StreamReader, asyncio.StreamWriter, float]] = []
 
     async def post(self, path: str, json: Any, timeout: float) -> LeanResponse:
         body = orjson.dumps(json)
@@ -56,7 +62,14 @@ class LeanClient:
             f"POST {path} HTTP/1.1\r\n{self._head}Content-Type: application/json\r\n"
             f"Content-Length: {len(body)}\r\n\r\n"
         ).encode() + body
-        conn = self._idle.pop() if self._idle else None
+        conn = None
+        now = time.monotonic()
+        while self._idle and conn is None:
+            reader, writer, since = self._idle.pop()
+            if now - since < MAX_IDLE_S:
+                conn = (reader, writer)
+            else:  # the server may have closed it (its keep-alive timeout): never reuse
+                _close(writer)
         try:
             async with asyncio.timeout(timeout):
                 if conn is None:
@@ -80,12 +93,12 @@ class LeanClient:
         if headers.get("connection", "").lower() == "close":
             _close(writer)
         else:
-            self._idle.append(conn)
+            self._idle.append((reader, writer, time.monotonic()))
         return LeanResponse(status, headers, content)
 
     async def aclose(self) -> None:
         idle, self._idle = self._idle, []
-        for _, writer in idle:
+        for _, writer, _since in idle:
             _close(writer)
             with contextlib.suppress(Exception):
                 await writer.wait_closed()

@@ -201,3 +201,26 @@ def test_the_named_load_test_scenarios_run_against_a_real_server(edge_server):
     summary = asyncio.run(run_scenario(slow, queries))
     assert summary["slow_outcomes"].get("closed by the service with 408", 0) == 6
     assert summary["polite"][1]["requests"] > 0
+
+
+def test_the_load_testers_lean_client_reads_what_the_service_sends(edge_server):
+    """The load tester's own HTTP/1.1 client (RFC 9112 framing: Content-Length bodies on a
+    kept-alive connection) gets the same answers as httpx."""
+    from dueroute.service.loadtest.lean_http import LeanClient
+
+    async def ask() -> list[Any]:
+        client = LeanClient(edge_server.url)
+        try:
+            ok = await client.post("/v1/plans", json=_plan(0, 7, deadline_ms=200), timeout=10)
+            bad = await client.post("/v1/plans", json={"origin": 1}, timeout=10)
+            again = await client.post("/v1/plans", json=_plan(3, 9, deadline_ms=200), timeout=10)
+            return [ok, bad, again, len(client._idle)]
+        finally:
+            await client.aclose()
+
+    ok, bad, again, idle = asyncio.run(ask())
+    reference = httpx.post(edge_server.url + "/v1/plans", json=_plan(0, 7, deadline_ms=200))
+    assert ok.status_code == 200 and ok.json()["cost_s"] == reference.json()["cost_s"]
+    assert ok.json()["route"]["type"] == "Feature"
+    assert bad.status_code == 422 and "origin" in bad.json()["detail"]
+    assert again.status_code == 200 and idle == 1  # one connection, kept alive throughout
