@@ -446,7 +446,17 @@ class Admission:
 
         pool = self._pool()
         futures = [pool.submit(run) for _ in range(self.workers)]
-        return [f.result() for f in futures]
+        results = [f.result() for f in futures]
+        # Then every other thread the pool may need: a thread started while the service is
+        # busy waits for the interpreter lock to even begin (seen: 6 ms), past short deadlines.
+        spare = max(0, self.max_inflight)
+        gate = threading.Barrier(spare + 1) if spare else None
+        if gate is not None:
+            held = [pool.submit(gate.wait, 60) for _ in range(spare)]
+            gate.wait(timeout=60)
+            for f in held:
+                f.result()
+        return results
 
     @property
     def busy(self) -> int:

@@ -231,6 +231,7 @@ class PlanJob:
     _sub_lock: threading.Lock = field(default_factory=threading.Lock)
     #: Guards ``trace``, ``improvement_count`` and the publication of the final plan.
     lock: threading.Lock = field(default_factory=threading.Lock)
+    _claimed: bool = False
 
     def __post_init__(self) -> None:
         self.trace_limit = max(self.trace_limit, self.listed)
@@ -244,6 +245,15 @@ class PlanJob:
     @property
     def finished(self) -> bool:
         return self.final_json is not None
+
+    def claim(self) -> bool:
+        """Take the right to run this plan's search (once: its thread, or the handler that
+        found it never started by its deadline)."""
+        with self.lock:
+            if self._claimed:
+                return False
+            self._claimed = True
+            return True
 
     # -- written by the worker thread ----------------------------------------------------
     def add_improvement(self, entry: dict[str, Any]) -> None:
@@ -476,6 +486,12 @@ class PlanningEngine:
         ``error`` and an ``error`` text saying what failed, so no caller or stream waits
         forever and the worker is free for the next plan.
         """
+        if not job.claim():  # the handler ran it already (it never got a thread in time)
+            return job.current()
+        return self.run_claimed(job, ticket)
+
+    def run_claimed(self, job: PlanJob, ticket: Ticket) -> dict[str, Any]:
+        """:meth:`run` for a plan already claimed by the caller."""
         try:
             job.started_s = (
                 ticket.started_s if ticket.started_s is not None else time.perf_counter()

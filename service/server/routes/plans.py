@@ -356,9 +356,15 @@ async def answer_plan(
     else:
         # The search overran its deadline (a starved thread): stop it and answer with what
         # it has now. The worker may finish while this snapshot is taken: a waiting caller
-        # never gets a "running" plan, whichever side won.
-        ticket.request_cancel()
-        result = dict(job.current())
+        # never gets a "running" plan, whichever side won. A plan whose thread never even
+        # started is opened here, for its instant route (microseconds), so that it still
+        # answers with a route.
+        if job.claim():
+            ticket.instant_only = True
+            engine.run_claimed(job, ticket)
+        else:
+            ticket.request_cancel()
+        result = dict(job.final or job.current())
         if result["status"] == "running":
             result["status"] = job.interim_status()
         encoded = None
