@@ -363,7 +363,14 @@ async def answer_plan(
             ticket.instant_only = True
             engine.run_claimed(job, ticket)
         else:
-            ticket.request_cancel()
+            ticket.request_cancel()  # it stops at once, with what it has
+            if job.best is None and not job.finished:
+                # its thread started so late that it has not even recorded its instant route
+                # (microseconds once it runs): wait for it, within the deadline tolerance
+                with contextlib.suppress(TimeoutError):
+                    await asyncio.wait_for(
+                        asyncio.shield(waiter), settings.deadline_tolerance_ms / 2000.0
+                    )
         result = dict(job.final or job.current())
         if result["status"] == "running":
             result["status"] = job.interim_status()
