@@ -561,17 +561,6 @@ class RecentQuantile:
         return len(self._samples)
 
 
-#: The largest value recorded in the last window (kept under its old name).
-class RecentMax(RecentQuantile):
-    def __init__(
-        self,
-        window_s: float = 1.0,
-        quantile: float = 1.0,
-        clock: Callable[[], float] = time.perf_counter,
-    ) -> None:
-        super().__init__(window_s=window_s, quantile=quantile, clock=clock)
-
-
 class LoopLag:
     """How late the event loop runs a timer right now: the delay an answer would see.
 

@@ -32,11 +32,15 @@ API_KEY_HEADER = "x-api-key"
 
 
 class CallerRefused(Exception):
-    """The caller is over one of its limits: ``status`` (401, 403 or 429) and why."""
+    """The caller is over one of its limits: ``status`` (401, 403 or 429), the ``reason``
+    (``api_key``, ``anonymous``, ``caller_plans``, ``caller_cpu``: a metric label) and why."""
 
-    def __init__(self, status: int, message: str, retry_after_s: int | None = None) -> None:
+    def __init__(
+        self, status: int, reason: str, message: str, retry_after_s: int | None = None
+    ) -> None:
         super().__init__(message)
         self.status = status
+        self.reason = reason
         self.retry_after_s = retry_after_s
 
 
@@ -109,12 +113,15 @@ class CallerLimits:
             if not self.api_keys:
                 raise CallerRefused(
                     401,
+                    "api_key",
                     "this service has no API keys configured, so X-API-Key cannot be checked; "
                     "send the request without it (anonymous callers are told apart by address)",
                 )
             digest = hashlib.sha256(key.encode()).hexdigest()[:8]
             raise CallerRefused(
-                401, f"unknown API key (sha256 prefix {digest}) in X-API-Key; ask the operator"
+                401,
+                "api_key",
+                f"unknown API key (sha256 prefix {digest}) in X-API-Key; ask the operator",
             )
         return Caller(f"anon:{client_host or 'unknown'}", anonymous=True)
 
@@ -126,6 +133,7 @@ class CallerLimits:
         if deadline_ms > self.anonymous_max_deadline_ms:
             raise CallerRefused(
                 403,
+                "anonymous",
                 f"deadline_ms {deadline_ms:g} is above the cap for anonymous callers "
                 f"({self.anonymous_max_deadline_ms:g}); send an API key in X-API-Key to ask "
                 "longer deadlines",
@@ -133,6 +141,7 @@ class CallerLimits:
         if deadline_ms > self.anonymous_slow_max_ms and self.is_slow(controller):
             raise CallerRefused(
                 403,
+                "anonymous",
                 f"controller {controller!r} with deadline_ms {deadline_ms:g}: anonymous callers "
                 f"may run fixed weights above {self.anonymous_max_weight:g} and 'random' for at "
                 f"most {self.anonymous_slow_max_ms:g} ms; use another controller, a shorter "
@@ -163,6 +172,7 @@ class CallerLimits:
                 self._refused(caller)
                 raise CallerRefused(
                     429,
+                    "caller_plans",
                     f"too many plans at once for this caller: {running} unfinished, the limit "
                     f"is {self.max_plans}; wait for one to finish",
                     retry_after_s=1,
@@ -173,6 +183,7 @@ class CallerLimits:
                 wait_s = -tokens / self.rate_s if self.rate_s > 0 else 60.0
                 raise CallerRefused(
                     429,
+                    "caller_cpu",
                     f"this caller used its search time: {self.rate_s * 1000:g} ms of search "
                     f"per second (bursts up to {self.burst_s * 1000:g} ms); it refills in "
                     f"{wait_s * 1000:.0f} ms",

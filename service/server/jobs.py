@@ -238,11 +238,6 @@ class PlanJob:
         self.trace = deque(self.trace, maxlen=self.trace_limit)
 
     @property
-    def cancel(self) -> threading.Event:
-        assert self.ticket is not None
-        return self.ticket.cancel
-
-    @property
     def finished(self) -> bool:
         return self.final_json is not None
 

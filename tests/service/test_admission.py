@@ -18,7 +18,6 @@ import pytest
 from dueroute.service.server.admission import (
     Admission,
     LoopLag,
-    RecentMax,
     RecentQuantile,
     ResponseFloor,
     Shed,
@@ -220,7 +219,7 @@ def test_workers_must_be_positive():
 
 def test_recent_values_expire_even_without_new_ones():
     clock = Clock()
-    m = RecentMax(window_s=1.0, clock=clock)
+    m = RecentQuantile(window_s=1.0, quantile=1.0, clock=clock)
     m.record(clock.t, 0.004)
     clock.t += 0.5
     m.record(clock.t, 0.001)

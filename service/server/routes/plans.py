@@ -224,10 +224,9 @@ async def answer_plan(
         caller = state.callers.identify(api_key, client_host)
         state.callers.check_request(caller, body.deadline_ms, body.controller)
     except CallerRefused as exc:
-        reason = "api_key" if exc.status == 401 else "anonymous"
-        metrics.refusals.labels(reason=reason).inc()
+        metrics.refusals.labels(reason=exc.reason).inc()
         metrics.plans.labels(outcome="rejected").inc()
-        return _refusal(exc.status, str(exc), exc.retry_after_s, outcome=reason)
+        return _refusal(exc.status, str(exc), exc.retry_after_s, outcome=exc.reason)
     floor_ms = state.floor.floor_ms()
     if body.deadline_ms < floor_ms:
         metrics.refusals.labels(reason="floor").inc()
@@ -260,10 +259,9 @@ async def answer_plan(
     try:
         state.callers.acquire(caller)
     except CallerRefused as exc:
-        reason = "caller_plans" if "at once" in str(exc) else "caller_cpu"
-        metrics.refusals.labels(reason=reason).inc()
+        metrics.refusals.labels(reason=exc.reason).inc()
         metrics.plans.labels(outcome="shed").inc()
-        return _refusal(exc.status, str(exc), exc.retry_after_s, outcome=reason)
+        return _refusal(exc.status, str(exc), exc.retry_after_s, outcome=exc.reason)
     try:
         if kept:  # room first: a stored plan is never dropped to make room later
             state.plans.check_room(reserve_bytes(trace_limit))
