@@ -607,11 +607,8 @@ class _Resolver:
                 f"{json.dumps(raw['osm_way'])}"
             )
             return None
-        direction = raw.get("direction", "both")
-        if direction not in DIRECTIONS:
-            problems.append(
-                f"{at}.direction: must be one of {', '.join(DIRECTIONS)}, got {json.dumps(direction)}"
-            )
+        direction = _direction(at, raw, problems)
+        if direction is None:
             return None
         if direction != "both":
             problems.append(
@@ -722,11 +719,8 @@ class _Resolver:
                 f"got {got}"
             )
             return None
-        direction = raw.get("direction", "both")
-        if direction not in DIRECTIONS:
-            problems.append(
-                f"{at}.direction: must be one of {', '.join(DIRECTIONS)}, got {json.dumps(direction)}"
-            )
+        direction = _direction(at, raw, problems)
+        if direction is None:
             return None
         if line_parts is None:
             return None
@@ -1663,3 +1657,14 @@ __all__ = [
     "rfc3339",
     "sample_scenario",
 ]
+
+
+def _direction(at: str, raw: dict[str, Any], problems: list[str]) -> str | None:
+    """A selection's ``direction`` (default ``both``), or None with the problem recorded."""
+    direction = raw.get("direction", "both")
+    if direction not in DIRECTIONS:
+        problems.append(
+            f"{at}.direction: must be one of {', '.join(DIRECTIONS)}, got {json.dumps(direction)}"
+        )
+        return None
+    return str(direction)
