@@ -32,6 +32,7 @@ from fastapi.exceptions import RequestValidationError
 from fastapi.responses import JSONResponse
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from dueroute.planner.errors import InvalidRequest
 from dueroute.policies.runtime import DEFAULT_POLICY_PATH
 from dueroute.service.server.admission import Admission, ResponseFloor
 from dueroute.service.server.callers import CallerLimits, load_api_keys
@@ -214,8 +215,12 @@ def _caller_limits(settings: Settings, shared: SharedState | None = None) -> Cal
     if settings.api_keys_file is not None:
         try:
             keys = load_api_keys(settings.api_keys_file)
-        except (OSError, ValueError) as exc:
-            raise ValueError(f"api_keys_file: {exc}") from None
+        except OSError as exc:
+            raise InvalidRequest(
+                f"cannot read the API keys file {settings.api_keys_file}: {exc.strerror or exc}"
+            ) from None
+        except ValueError as exc:  # says the line and what a line must be
+            raise InvalidRequest(f"the API keys file is not valid: {exc}") from None
     cpu = settings.caller_cpu_ms_per_s
     # with a shared store, a caller's search-time budget holds across replicas
     make: Any = CallerLimits

@@ -224,3 +224,17 @@ def test_the_load_testers_lean_client_reads_what_the_service_sends(edge_server):
     assert ok.json()["route"]["type"] == "Feature"
     assert bad.status_code == 422 and "origin" in bad.json()["detail"]
     assert again.status_code == 200 and idle == 1  # one connection, kept alive throughout
+
+
+def test_a_bad_api_keys_file_stops_the_start_with_a_message(tmp_path, tiny_graph_path):
+    from dueroute.planner.errors import InvalidRequest
+    from dueroute.service.server.app import create_app
+    from tests.service.conftest import settings_for
+
+    missing = settings_for(tiny_graph_path, tmp_path, api_keys_file=tmp_path / "none.txt")
+    with pytest.raises(InvalidRequest, match="cannot read the API keys file .*none.txt"):
+        create_app(missing)
+    bad = tmp_path / "keys.txt"
+    bad.write_text("fleet:short\n")
+    with pytest.raises(InvalidRequest, match=r"keys.txt:1: expected 'name:key' with a key of"):
+        create_app(settings_for(tiny_graph_path, tmp_path, api_keys_file=bad))
