@@ -699,7 +699,6 @@ class Search:
         #: the cancel object stops the kernel itself (see :func:`plan`): no polling needed
         self._cancel_bound = False
         self._stop_asked = False  # stop() was called
-        self._nudged = False  # the bound cancel object asked the kernel to return
         #: told ``True`` before and ``False`` after a long kernel run (see :func:`plan`)
         self._on_kernel: Callable[[bool], None] | None = None
         self.mode = mode
@@ -1000,7 +999,6 @@ class Search:
     def nudge(self) -> None:
         """Make the kernel return to Python at its next check (any thread), where the search
         asks its cancel object whether to stop (it may also wait there: a yield point)."""
-        self._nudged = True
         ws = self._ws
         if ws is not None:
             ws.istate[K.I_STOP] = 1
@@ -1204,15 +1202,15 @@ class Search:
         elif status == K.GAP_REACHED:
             self._finish_unproven(ws, "gap_target")
         elif status == K.STOPPED:
-            nudged, self._nudged = self._nudged, False
             if self._stop_asked:
                 self.close()
                 return
             # A nudge (or a stop flag left by a search that used this workspace before and
-            # was stopped as it ended: not ours, ignored): ask the cancel object, go on if
-            # it says so.
+            # was stopped as it ended): clear the flag first, so a nudge that comes while
+            # this runs sets it again and is never lost, then ask the cancel object and go
+            # on if it says so.
             ws.istate[K.I_STOP] = 0
-            if nudged and self.cancel is not None and self.cancel.is_set():
+            if self.cancel is not None and self.cancel.is_set():
                 self.close()
 
     def _finish_unproven(self, ws: _Workspace, reason: str) -> None:

@@ -16,6 +16,7 @@ import hashlib
 import json
 import math
 import threading
+import weakref
 from dataclasses import dataclass, field
 from functools import lru_cache
 from pathlib import Path
@@ -88,15 +89,17 @@ class Policy:
 
         Runs the same ONNX model in the same onnxruntime session as :meth:`q_values`, through
         an I/O binding made once per thread: the input and output buffers are bound by address,
-        so a call copies 14 floats in, runs, and reads the Q-values in place, with no
+        so a call copies the feature row in, runs, and reads the Q-values in place, with no
         allocation or name lookup (about a third of ``run``'s cost).
         """
         io = getattr(_BINDINGS, "by_policy", None)
         if io is None:
-            io = _BINDINGS.by_policy = {}
-        bound = io.get(id(self))
+            # keyed by the policy itself, weakly: a new policy never gets the binding (and
+            # buffers) of a freed one with the same id, and a freed policy's binding goes too
+            io = _BINDINGS.by_policy = weakref.WeakKeyDictionary()
+        bound = io.get(self)
         if bound is None:
-            bound = io[id(self)] = _Bound(self._session, int(features.shape[-1]), self.n_actions)
+            bound = io[self] = _Bound(self._session, int(features.shape[-1]), self.n_actions)
         bound.x[0, :] = features
         self._session.run_with_iobinding(bound.binding)
         q = bound.y[0]

@@ -81,6 +81,8 @@ class LeanClient:
                 length = headers.get("content-length")
                 if length is None:
                     raise LeanHTTPError("answer without Content-Length")
+                if not length.isdigit():
+                    raise LeanHTTPError(f"answer with Content-Length {length[:40]!r}")
                 content = await reader.readexactly(int(length))
         except (asyncio.IncompleteReadError, asyncio.LimitOverrunError, ConnectionError) as exc:
             if conn is not None:

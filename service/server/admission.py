@@ -33,6 +33,7 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import itertools
+import logging
 import math
 import os
 import threading
@@ -42,6 +43,38 @@ from collections.abc import Callable
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from typing import Any
+
+log = logging.getLogger("dueroute.service.admission")
+
+#: Each search thread's own niceness (what :meth:`Admission._set_searching` restores).
+_THREAD_NICE = threading.local()
+
+
+def _nice_can_be_restored() -> bool:
+    """Whether a thread of this process can lower its niceness and raise it back (Linux lets
+    an unprivileged process only lower its priority unless RLIMIT_NICE allows more)."""
+    if not hasattr(os, "setpriority"):
+        return False
+    answer: list[bool] = []
+
+    def probe() -> None:  # in a throw-away thread: whatever it leaves behind goes with it
+        tid = threading.get_native_id()
+        try:
+            base = os.getpriority(os.PRIO_PROCESS, tid)
+            if base >= 19:
+                answer.append(False)
+                return
+            os.setpriority(os.PRIO_PROCESS, tid, base + 1)
+            os.setpriority(os.PRIO_PROCESS, tid, base)
+            answer.append(True)
+        except OSError:
+            answer.append(False)
+
+    thread = threading.Thread(target=probe, name="dueroute-nice-probe")
+    thread.start()
+    thread.join()
+    return bool(answer and answer[0])
+
 
 #: A running search is preempted only for a waiter whose deadline is earlier by more than this
 #: (two plans with nearly the same deadline do not take turns).
@@ -79,7 +112,6 @@ class Ticket:
     preempted: int = 0  # times it yielded its slot
     _preempt: bool = False
     _slot_since: float = 0.0
-    _base_nice: int | None = None
     _nudge: Callable[[], None] | None = field(default=None, repr=False)
     _wake: threading.Event = field(default_factory=threading.Event, repr=False)
     _scheduler: Admission | None = field(default=None, repr=False)
@@ -166,6 +198,14 @@ class Admission:
         self.min_search_s = min_search_ms / 1000.0
         self.clock = clock
         self.worker_nice = worker_nice
+        if worker_nice > 0 and not _nice_can_be_restored():
+            log.warning(
+                "search threads run at the process's priority: this process may lower a "
+                "thread's niceness but not raise it back (not root, RLIMIT_NICE 0), so "
+                "worker_nice is not used",
+                extra={"worker_nice": worker_nice},
+            )
+            self.worker_nice = 0
         self.max_inflight = max_inflight if max_inflight is not None else 16 * workers
         self.instant_lane = instant_lane if instant_lane is not None else workers
         self._lock = threading.Lock()
@@ -205,16 +245,19 @@ class Admission:
         the process, so that everything else (the event loop, opening a query, an
         instant-lane plan, building an answer) gets a core first when every slot is busy.
         Python code never runs at the lower priority: a thread holding the GIL or a lock
-        while it waits for a core would stall every other thread (priority inversion).
+        while it waits for a core would stall every other thread (priority inversion). Only
+        used where the priority can be restored (:func:`_nice_can_be_restored`).
         """
-        if self.worker_nice <= 0 or not hasattr(os, "setpriority"):
+        if self.worker_nice <= 0:
             return
-        with contextlib.suppress(OSError):  # not permitted or not supported: keep going
+        with contextlib.suppress(OSError):  # not supported after all: keep going
             tid = threading.get_native_id()
-            if t._base_nice is None:
-                t._base_nice = os.getpriority(os.PRIO_PROCESS, tid)
-            target = min(19, t._base_nice + self.worker_nice) if searching else t._base_nice
-            os.setpriority(os.PRIO_PROCESS, tid, target)
+            base = getattr(_THREAD_NICE, "base", None)
+            if base is None:
+                base = _THREAD_NICE.base = os.getpriority(os.PRIO_PROCESS, tid)
+            os.setpriority(
+                os.PRIO_PROCESS, tid, min(19, base + self.worker_nice) if searching else base
+            )
 
     # ---------------------------------------------------------------------------------------
     # prediction
@@ -224,17 +267,19 @@ class Admission:
         with self._lock:
             return self._predict_locked(now_s, search_deadline_s)
 
-    def _remaining_s(self, t: Ticket, now_s: float, start_s: float) -> float:
-        """Expected slot time ``t`` still needs from ``start_s`` (at most until its deadline)."""
-        expected = t.budget_s * self.used_share.value
+    def _remaining_s(self, t: Ticket, now_s: float, start_s: float, share: float) -> float:
+        """Expected slot time ``t`` still needs from ``start_s`` (at most until its deadline),
+        if searches use ``share`` of their budget."""
+        expected = t.budget_s * share
         held = t.slot_s + (now_s - t._slot_since if t.holds_slot else 0.0)
         return max(0.0, min(t.search_deadline_s - start_s, expected - held))
 
     def _predict_locked(self, now_s: float, deadline_s: float) -> float:
+        share = self.used_share.value
         free: list[float] = []
         for t in self._running.values():
             if t.search_deadline_s <= deadline_s + PREEMPT_MARGIN_S:
-                free.append(now_s + self._remaining_s(t, now_s, now_s))
+                free.append(now_s + self._remaining_s(t, now_s, now_s, share))
             else:  # it would be preempted for this plan
                 free.append(now_s + YIELD_LATENCY_S)
         free += [now_s] * (self.workers - len(free))
@@ -245,7 +290,7 @@ class Admission:
         for t in ahead:  # EDF: each takes the slot that frees first
             free.sort()
             start = free[0]
-            free[0] = start + self._remaining_s(t, now_s, start)
+            free[0] = start + self._remaining_s(t, now_s, start, share)
         return min(free)
 
     # ---------------------------------------------------------------------------------------
@@ -328,6 +373,8 @@ class Admission:
         earliest-deadline waiter and wakes that thread alone (:meth:`_dispatch_locked`), so a
         freed slot wakes one thread, not every waiting one.
         """
+        if t.cancel.is_set():
+            return
         with self._lock:
             self._waiting[t.ticket_id] = t
             self._dispatch_locked()
@@ -360,6 +407,9 @@ class Admission:
         while self._waiting and len(self._running) < self.workers:
             first = min(self._waiting.values(), key=lambda w: (w.search_deadline_s, w.ticket_id))
             del self._waiting[first.ticket_id]
+            if first.cancel.is_set():  # it leaves the queue anyway: the slot goes on
+                first._wake.set()
+                continue
             self._running[first.ticket_id] = first
             first.holds_slot = True
             first._slot_since = self.clock()
@@ -400,12 +450,12 @@ class Admission:
             t._preempt = False
             if not t.holds_slot:
                 return
-            t.preempted += 1
-            self.preempted_total += 1
             self._waiting[t.ticket_id] = t  # waits first: the slot goes to the urgent one
             self._drop_slot_locked(t)
             if t.holds_slot:  # nobody more urgent after all: keep searching
                 return
+            t.preempted += 1
+            self.preempted_total += 1
         self._wait_for_slot(t, leave_before_s=0.0)
 
     def _finish(self, t: Ticket) -> None:
@@ -449,7 +499,7 @@ class Admission:
         results = [f.result() for f in futures]
         # Then every other thread the pool may need: a thread started while the service is
         # busy waits for the interpreter lock to even begin (seen: 6 ms), past short deadlines.
-        spare = max(0, self.max_inflight)
+        spare = self.max_inflight
         gate = threading.Barrier(spare + 1) if spare else None
         if gate is not None:
             held = [pool.submit(gate.wait, 60) for _ in range(spare)]

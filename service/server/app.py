@@ -37,6 +37,7 @@ from dueroute.policies.runtime import DEFAULT_POLICY_PATH
 from dueroute.service.server.admission import Admission, ResponseFloor
 from dueroute.service.server.callers import CallerLimits, load_api_keys
 from dueroute.service.server.deps import AppState
+from dueroute.service.server.http_edge import BodyTooLarge
 from dueroute.service.server.jobs import PlanningEngine
 from dueroute.service.server.messages import validation_message
 from dueroute.service.server.metrics import ServiceMetrics
@@ -191,7 +192,7 @@ class EdgeMiddleware:
 
 
 def _too_large_text(size: int, limit: int) -> str:
-    return f"request body is {size} bytes or more; the limit for this endpoint is {limit} bytes"
+    return str(BodyTooLarge(size, limit))
 
 
 async def _too_large(send: Send, size: int, limit: int) -> None:

@@ -48,8 +48,6 @@ class EdgeHttpProtocol(HttpToolsProtocol):
 
     header_timeout_s: float = 5.0
     max_connections: int = 1024
-    refused_connections = 0  # counted on the class: connections refused at the bound
-    timed_out_headers = 0
 
     _rx_s = 0.0
     _header_timer: asyncio.TimerHandle | None = None
@@ -57,7 +55,6 @@ class EdgeHttpProtocol(HttpToolsProtocol):
     def connection_made(self, transport: asyncio.Transport) -> None:  # type: ignore[override]
         super().connection_made(transport)
         if len(self.connections) > self.max_connections:
-            type(self).refused_connections += 1
             transport.write(
                 _raw_response(
                     503,
@@ -79,8 +76,10 @@ class EdgeHttpProtocol(HttpToolsProtocol):
             return
         cycle = self.cycle
         if cycle is not None and not cycle.response_complete:
-            return  # headers done: the request is the app's now
-        type(self).timed_out_headers += 1
+            # the previous request's answer is still being made while the next one's headers
+            # arrive (pipelining, keep-alive): give those headers their time again
+            self._arm_header_timer()
+            return
         self.transport.write(
             _raw_response(
                 408,

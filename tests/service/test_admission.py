@@ -131,8 +131,7 @@ def test_free_slots_go_in_deadline_order():
     for name, due in (("c", 3.0), ("b", 2.0), ("d", 4.0)):
         t = adm.admit(now, now + WAIT + due)
         futures.append(adm.submit(t, lambda t, n=name: log.append(n)))
-    while adm.queued < 3:
-        time.sleep(0.001)
+    _until(lambda: adm.queued >= 3)
     gate.set()
     for f in futures:
         f.result(WAIT)
@@ -147,8 +146,7 @@ def test_a_later_deadline_yields_its_slot_and_resumes():
     stop_long, stop_short = threading.Event(), threading.Event()
     long = adm.admit(now, now + 2 * WAIT)
     f_long = adm.submit(long, lambda t: _search(t, log, "long", stop_long))
-    while adm.busy == 0:
-        time.sleep(0.001)
+    _until(lambda: adm.busy != 0)
     short = adm.admit(now, now + WAIT)
     assert not short.instant_only  # it preempts: a slot is predicted at once
     f_short = adm.submit(short, lambda t: _search(t, log, "short", stop_short))
@@ -171,13 +169,20 @@ def test_a_later_deadline_yields_its_slot_and_resumes():
     adm.shutdown()
 
 
+def _until(condition: Any) -> None:
+    """Wait for ``condition()`` (a broken scheduler fails here instead of hanging)."""
+    end = time.perf_counter() + WAIT
+    while not condition():
+        assert time.perf_counter() < end, "the scheduler never got there"
+        time.sleep(0.001)
+
+
 def _hold_the_only_slot(adm: Admission) -> tuple[threading.Event, Any]:
     """A plan that holds the slot (and never checks its ticket) until the gate is set."""
     gate = threading.Event()
     now = time.perf_counter()
     future = adm.submit(adm.admit(now, now + WAIT), lambda t: gate.wait(WAIT))
-    while adm.busy == 0:
-        time.sleep(0.001)
+    _until(lambda: adm.busy != 0)
     return gate, future
 
 
@@ -202,8 +207,7 @@ def test_cancel_leaves_the_queue_at_once():
     gate, f_block = _hold_the_only_slot(adm)
     queued = adm.admit(now, now + 2 * WAIT)
     f = adm.submit(queued, lambda t: t.cancel.is_set())
-    while adm.queued == 0:
-        time.sleep(0.001)
+    _until(lambda: adm.queued != 0)
     queued.cancel.set()
     adm.wake()
     assert f.result(WAIT) is True  # ran (to answer "cancelled") without waiting for the slot
@@ -262,3 +266,13 @@ def test_loop_lag_measures_a_blocked_loop():
         return lag.estimate_ms()
 
     assert asyncio.run(scenario()) >= 20.0
+
+
+def test_search_threads_keep_their_priority_where_it_could_not_be_restored(monkeypatch):
+    """An unprivileged process may lower a thread's priority but not raise it back
+    (Linux setpriority(2), RLIMIT_NICE): then worker_nice is not used at all."""
+    import dueroute.service.server.admission as admission
+
+    assert isinstance(admission._nice_can_be_restored(), bool)
+    monkeypatch.setattr(admission, "_nice_can_be_restored", lambda: False)
+    assert Admission(workers=1, min_search_ms=0.0, worker_nice=10).worker_nice == 0
